@@ -1,0 +1,31 @@
+# report-kit: the two commands a fresh machine needs are `make demo` and `make test`.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed
+DEMO   ?= projects/tutoring-clubs
+
+.PHONY: demo test venv bench clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+$(STAMP): $(BIN)/python pyproject.toml
+	$(BIN)/python -m pip install --quiet -e ".[test]"
+	$(BIN)/python -m ipykernel install --sys-prefix --name python3 > /dev/null
+	touch $(STAMP)
+
+venv: $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/report-kit run $(DEMO)
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+bench: $(STAMP)
+	$(BIN)/python benchmarks/randomization.py
+
+clean:
+	rm -rf $(VENV) build *.egg-info

@@ -1,0 +1,93 @@
+"""Regenerate the invented example projects' data (deterministic).
+
+Every scenario, place and number here is invented. Run from the repository root:
+``python projects/generate_examples.py``. The committed CSV files are the output;
+report-kit never writes into ``data/``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+ROOT = Path(__file__).resolve().parent
+
+
+def tutoring_clubs(rng: np.random.Generator) -> None:
+    """Blocked cluster trial: after-school tutoring clubs, schools randomized within districts."""
+    districts = ["Ashvale", "Brindle", "Corran", "Dunmere"]
+    rows, ends = [], []
+    pid = 1000
+    for d_idx, district in enumerate(districts):
+        schools = [f"{district[:3].upper()}-{k + 1:02d}" for k in range(6)]
+        treated = set(rng.choice(schools, size=3, replace=False))
+        district_effect = rng.normal(0, 4)
+        for school in schools:
+            z = int(school in treated)
+            school_effect = rng.normal(0, 3)
+            for _ in range(int(rng.integers(11, 17))):
+                pid += 1
+                gender = rng.choice(["F", "M"])
+                age = int(rng.integers(110, 135))
+                base = 50 + district_effect + school_effect + rng.normal(0, 9)
+                attended = int(rng.random() < (0.72 if z else 0.04))
+                gain = 4.5 * attended + (1.0 if gender == "F" and attended else 0.0)
+                reading = base * 0.8 + 12 + gain + rng.normal(0, 6)
+                maths = base * 0.6 + 20 + 0.5 * gain + rng.normal(0, 7)
+                passed = int(reading + rng.normal(0, 5) > 57)
+                rows.append(dict(pupil_id=f"P{pid}", district=district, school=school, assigned=z,
+                                 gender=gender, age_months=age, reading_baseline=round(base, 1)))
+                lost = rng.random() < (0.05 if z else 0.09)
+                ends.append(dict(pupil_id=f"P{pid}", attended=attended,
+                                 reading_endline=None if lost else round(reading, 1),
+                                 maths_endline=None if lost or rng.random() < 0.02 else round(maths, 1),
+                                 passed_exam=None if lost else passed))
+    out = ROOT / "tutoring-clubs" / "data"
+    out.mkdir(parents=True, exist_ok=True)
+    pd.DataFrame(rows).to_csv(out / "pupils.csv", index=False)
+    endline = pd.DataFrame(ends)
+    endline["passed_exam"] = endline["passed_exam"].astype("Int64")
+    endline.to_csv(out / "endline.csv", index=False)
+
+
+def quiet_hours(rng: np.random.Generator) -> None:
+    """Small complete randomization: 12 library branches, 6 given a weekly quiet hour."""
+    names = ["Alder", "Birchgate", "Cobble", "Dovecote", "Elmstead", "Fennick",
+             "Gorse", "Hollin", "Ivybank", "Juniper", "Kestrel", "Larchmont"]
+    z = np.zeros(12, dtype=int)
+    z[rng.choice(12, size=6, replace=False)] = 1
+    base = rng.normal(420, 60, size=12).round()
+    visits = (base * 1.02 + 35 * z + rng.normal(0, 25, size=12)).round()
+    satisfaction = np.clip(3.4 + 0.35 * z + rng.normal(0, 0.4, size=12), 1, 5).round(2)
+    pd.DataFrame(dict(branch=names, quiet_hour=z, visits_before=base, visits_after=visits,
+                      satisfaction=satisfaction)).to_csv(ROOT / "quiet-hours" / "data" / "branches.csv", index=False)
+
+
+def arrival_signs(rng: np.random.Generator) -> None:
+    """Matched pairs: 14 pairs of similar bus routes; one route per pair gets live arrival signs."""
+    rows = []
+    for pair in range(1, 15):
+        base = rng.normal(900, 200)
+        treat_first = int(rng.random() < 0.5)
+        for k in range(2):
+            z = int(k == 0) if treat_first else int(k == 1)
+            riders = base + rng.normal(0, 40) + 45 * z
+            complaints = max(0, int(rng.poisson(12 - 3 * z)))
+            rows.append(dict(route=f"R{pair:02d}{'ab'[k]}", pair=f"pair-{pair:02d}", signs=z,
+                             riders_before=round(base + rng.normal(0, 30)), weekly_riders=round(riders),
+                             complaints=complaints))
+    pd.DataFrame(rows).to_csv(ROOT / "arrival-signs" / "data" / "routes.csv", index=False)
+
+
+def main() -> None:
+    for d in ("tutoring-clubs", "quiet-hours", "arrival-signs"):
+        (ROOT / d / "data").mkdir(parents=True, exist_ok=True)
+    tutoring_clubs(np.random.default_rng(20261201))
+    quiet_hours(np.random.default_rng(7))
+    arrival_signs(np.random.default_rng(11))
+
+
+if __name__ == "__main__":
+    main()

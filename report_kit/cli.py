@@ -1,0 +1,134 @@
+"""The ``report-kit`` command line: parse, call the library once, print.
+
+Exit codes: 0 success; 1 invalid inputs (the message says what and where);
+2 usage error; 3 verification found a difference. Errors never show a
+traceback unless REPORT_KIT_DEBUG=1 is set.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+
+import click
+
+from . import __version__
+from .errors import ReportKitError, UsageError
+
+
+def _progress(message: str) -> None:
+    click.echo(f"  · {message}", err=True)
+
+
+def _fail(err: Exception, code: int) -> None:
+    click.echo(f"report-kit: error: {err}", err=True)
+    sys.exit(code)
+
+
+class Group(click.Group):
+    """Maps every report-kit error to its exit code, without a traceback."""
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except ReportKitError as err:
+            _fail(err, err.exit_code)
+        except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException, SystemExit):
+            raise
+        except KeyboardInterrupt:
+            _fail(Exception("interrupted; no run folder was left behind"), 130)
+        except Exception as err:  # noqa: BLE001 - the last line of defence against tracebacks
+            if os.environ.get("REPORT_KIT_DEBUG") == "1":
+                raise
+            _fail(Exception(f"internal error ({type(err).__name__}: {err}); "
+                            "set REPORT_KIT_DEBUG=1 to see the traceback"), 1)
+
+
+@click.group(cls=Group, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="report-kit")
+def main() -> None:
+    """report-kit: randomized-experiment analysis from a project folder to an audited report."""
+
+
+@main.command()
+@click.argument("path", type=click.Path(path_type=Path))
+@click.option("--title", help="Title written into design.yaml.")
+def new(path: Path, title: str | None) -> None:
+    """Scaffold a project folder with a commented design.yaml."""
+    from .scaffold import new_project
+
+    created = new_project(path, title=title)
+    click.echo(f"created {created}/design.yaml and {created}/data/units.csv (an invented sample to replace)")
+    click.echo(f"next: edit design.yaml, then `report-kit check {created}`")
+
+
+@main.command()
+@click.argument("path", type=click.Path(path_type=Path))
+def check(path: Path) -> None:
+    """Validate the spec and the data and verify the assignment; write nothing."""
+    from .assignment import check_assignment
+    from .pipeline import load_project
+
+    study = load_project(path)
+    d = study.spec.design
+    z = study.z
+    click.echo(f"ok: {study.spec.path}")
+    click.echo(f"  {len(z)} units ({int(z.sum())} treated, {len(z) - int(z.sum())} control), "
+               f"mechanism {d.mechanism}, {len(study.spec.outcomes)} outcome(s)")
+    for f in study.inputs:
+        click.echo(f"  input {f.path}: {f.rows} rows, sha256 {f.sha256[:16]}…")
+    result = check_assignment(study)
+    click.echo(f"  {result.describe()}")
+    if result.status == "mismatch":
+        raise ReportKitError(f"{study.spec.path}: design.seed does not reproduce column "
+                             f"'{d.treatment}' ({len(result.differing_ids)} unit(s) differ)")
+
+
+@main.command()
+@click.argument("path", type=click.Path(path_type=Path))
+@click.option("-o", "--output", type=click.Path(path_type=Path), help="Where to write (default data/assignment.csv).")
+@click.option("--force", is_flag=True, help="Overwrite an existing assignment file.")
+def assign(path: Path, output: Path | None, force: bool) -> None:
+    """Draw the assignment from design.seed and write it beside the data."""
+    from .assignment import write_assignment
+    from .data import load_units_for_assignment
+    from .pipeline import project_dir_of
+    from .spec import load_spec
+
+    spec = load_spec(project_dir_of(path))
+    frame = load_units_for_assignment(spec)
+    target = write_assignment(spec, frame, out=output, force=force)
+    click.echo(f"wrote {target} ({len(frame)} units, drawn from design.seed {spec.design.seed})")
+
+
+@main.command()
+@click.argument("path", type=click.Path(path_type=Path))
+@click.option("--renderer", type=click.Choice(["builtin", "quarto"]), default=None,
+              help="builtin (nbconvert + weasyprint, default) or quarto (when on PATH).")
+@click.option("--compare-to", type=click.Path(path_type=Path), help="A previous run: adds 'Changes since the previous run'.")
+@click.option("--no-pdf", is_flag=True, help="Skip the PDF (HTML only).")
+def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool) -> None:
+    """Analyse, execute the report notebooks and render to runs/<run-id>/."""
+    from .pipeline import RunOptions, run_project
+
+    options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
+                         argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
+    outcome = run_project(path, options, progress=_progress,
+                          on_run_id=lambda d: click.echo(f"report: {d}/report.html"))
+    click.echo(f"done: {outcome.report_html}")
+    if outcome.report_pdf:
+        click.echo(f"      {outcome.report_pdf}")
+
+
+@main.command()
+def schema() -> None:
+    """Print the JSON Schema of design.yaml."""
+    from .spec import design_schema
+
+    click.echo(json.dumps(design_schema(), indent=2))
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,54 @@
+"""The exception tree of report-kit.
+
+Every error the library raises on purpose derives from :class:`ReportKitError`.
+The command line catches that base class once and maps it to an exit code:
+
+=========================  =========  ==========================================
+class                      exit code  raised when
+=========================  =========  ==========================================
+``SpecError``              1          ``design.yaml`` is missing, unreadable or invalid
+``DataError``              1          an input table is missing, unreadable or invalid
+``DesignError``            1          data and design disagree (e.g. a cluster split across arms)
+``UsageError``             2          a command was called the wrong way (bad path, bad option)
+``VerificationError``      3          ``verify`` found a difference
+=========================  =========  ==========================================
+
+Degenerate-but-computable situations warn with :class:`ReportKitWarning`
+instead of failing.
+"""
+
+from __future__ import annotations
+
+
+class ReportKitError(Exception):
+    """Base class of every error report-kit raises on purpose."""
+
+    exit_code: int = 1
+
+
+class SpecError(ReportKitError):
+    """The design spec is invalid; the message names file, key path and expectation."""
+
+
+class DataError(ReportKitError):
+    """An input table is invalid; the message names file, row/id and column."""
+
+
+class DesignError(ReportKitError):
+    """Data and design disagree, or a design cannot support the requested analysis."""
+
+
+class UsageError(ReportKitError):
+    """A command was called the wrong way."""
+
+    exit_code = 2
+
+
+class VerificationError(ReportKitError):
+    """A re-run or a checksum disagreed with the recorded run."""
+
+    exit_code = 3
+
+
+class ReportKitWarning(UserWarning):
+    """Degenerate but computable input (e.g. a zero-variance arm)."""

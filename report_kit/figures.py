@@ -1,0 +1,48 @@
+"""Report figures built from ``results.json`` entries (matplotlib, our own look).
+
+Owns the report's figure style: a light grid, a single ink colour for
+estimates, a dashed reference line at zero. Functions return a Figure; the
+caller saves it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+import pandas as pd
+
+INK = "#1d4e63"
+ACCENT = "#b5562b"
+MUTED = "#8a8f98"
+
+
+def _figure(height: float, width: float = 7.0):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(width, height))
+    ax.spines[["top", "right", "left"]].set_visible(False)
+    ax.grid(axis="x", color="#e3e5e8", linewidth=0.8)
+    ax.set_axisbelow(True)
+    return fig, ax
+
+
+def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, level: int = 95):
+    """Horizontal interval plot: one line per estimate, a square at the point estimate."""
+    rows = rows.reset_index(drop=True)
+    fig, ax = _figure(0.55 * len(rows) + 1.0)
+    ypos = np.arange(len(rows))[::-1]
+    for y, (_, r) in zip(ypos, rows.iterrows()):
+        colour = ACCENT if r.get("estimator") == "adjusted" else INK
+        ax.plot([r["ci_low"], r["ci_high"]], [y, y], color=colour, linewidth=2.2, solid_capstyle="butt")
+        ax.plot([r["estimate"]], [y], marker="s", markersize=7, color=colour)
+    labels = [f"{labeler(r['outcome'])}\n{r.get('method', r['estimator'])}" for _, r in rows.iterrows()]
+    ax.set_yticks(ypos, labels, fontsize=8)
+    ax.axvline(0, color=MUTED, linestyle="--", linewidth=1)
+    ax.set_xlabel(f"Effect estimate with {level}% confidence interval (outcome units)")
+    ax.tick_params(axis="y", length=0)
+    fig.tight_layout()
+    return fig

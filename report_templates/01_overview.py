@@ -1,0 +1,61 @@
+# %% [markdown]
+# ## About this study
+
+# %% tags=["parameters"]
+run_dir = ""
+project_dir = ""
+compare_to = ""
+
+# %%
+import pandas as pd
+
+from report_kit.reporting import CAUTIONS, RunView, callout, say, show_table
+
+view = RunView.open(run_dir, project_dir)
+res = view.results
+spec = view.spec
+d = res["design"]
+
+# %%
+if spec.summary:
+    say(spec.summary.strip())
+callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in CAUTIONS) + "</ul>", "caution")
+
+# %% [markdown]
+# ## Design
+
+# %%
+MECH_WORDS = {
+    "complete": "complete randomization (a fixed number of units treated)",
+    "bernoulli": "independent coin flips per unit (Bernoulli)",
+    "blocked": "randomization within blocks",
+    "cluster": "whole clusters randomized",
+    "blocked_cluster": "whole clusters randomized within blocks",
+    "matched_pairs": "one unit of each matched pair treated",
+}
+rows = [
+    ("Assignment mechanism", MECH_WORDS.get(d["mechanism"], d["mechanism"])),
+    ("Units", f"{d['n_units']:,}"),
+    ("Assigned to treatment", f"{d['n_treated']:,}"),
+    ("Assigned to control", f"{d['n_control']:,}"),
+]
+if d.get("n_blocks") is not None:
+    rows.append(("Blocks" if d["mechanism"] != "matched_pairs" else "Pairs", f"{d['n_blocks']:,}"))
+if d.get("n_clusters") is not None:
+    rows.append(("Clusters", f"{d['n_clusters']:,}"))
+if d.get("n_assignments") is not None:
+    rows.append(("Possible assignments", f"{int(d['n_assignments']):,}"))
+check_words = {
+    "reproduced": "re-drawn from the recorded seed: identical",
+    "mismatch": "re-drawn from the recorded seed: DIFFERENT (see check output)",
+    "not_checked": "not checked (no assignment seed recorded)",
+}
+rows.append(("Assignment check", check_words.get(d["assignment_check"], d["assignment_check"])))
+show_table(view, pd.DataFrame(rows, columns=["Item", "Value"]), "design", caption="The design as randomized")
+
+# %%
+outs = pd.DataFrame(
+    [(o.label, o.column, o.family, o.alternative, o.statistic.replace("_", " ")) for o in spec.outcomes],
+    columns=["Outcome", "Column", "Family", "Alternative", "Test statistic"],
+)
+show_table(view, outs, "outcomes", caption="Pre-specified outcomes")
