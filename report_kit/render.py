@@ -34,9 +34,68 @@ def combine(notebooks: list[Path]):
     parts = [nbformat.read(p, as_version=4) for p in notebooks]
     combined = nbformat.v4.new_notebook(metadata=parts[0].metadata)
     for part in parts:
-        combined.cells.extend(c for c in part.cells if "parameters" not in c.metadata.get("tags", [])
-                              and "injected-parameters" not in c.metadata.get("tags", []))
+        combined.cells.extend(c for c in part.cells if _shows_something(c))
     return combined
+
+
+def _heading_only(cell) -> str | None:
+    text = cell.source.strip()
+    if cell.cell_type == "markdown" and text.startswith("#") and "\n" not in text:
+        return text
+    return None
+
+
+def _first_html(cell) -> tuple[int, str] | None:
+    import mistune
+
+    for i, out in enumerate(cell.get("outputs", [])):
+        data = out.get("data", {})
+        if "text/html" in data:
+            return i, "".join(data["text/html"])
+        if "text/markdown" in data:
+            return i, mistune.html("".join(data["text/markdown"]))
+        if out.get("output_type") in ("display_data", "execute_result", "stream"):
+            return None
+    return None
+
+
+def keep_headings_with_content(notebook):
+    """Fold each heading-only Markdown cell into the first output of the next cell.
+
+    The PDF then never ends a page with a lone section heading: heading and its
+    first block share one ``break-inside: avoid`` box.
+    """
+    import mistune
+    import nbformat
+
+    cells = list(notebook.cells)
+    kept = []
+    i = 0
+    while i < len(cells):
+        heading = _heading_only(cells[i])
+        nxt = cells[i + 1] if i + 1 < len(cells) else None
+        first = _first_html(nxt) if heading and nxt is not None and nxt.cell_type == "code" else None
+        if first is None:
+            kept.append(cells[i])
+            i += 1
+            continue
+        index, body = first
+        out = nxt.outputs[index]
+        merged = f'<div class="rk-keep">{mistune.html(heading)}{body}</div>'
+        nxt.outputs[index] = nbformat.v4.new_output("display_data", data={"text/html": merged},
+                                                     metadata=out.get("metadata", {}))
+        kept.append(nxt)
+        i += 2
+    notebook.cells = kept
+    return notebook
+
+
+def _shows_something(cell) -> bool:
+    """Markdown cells and code cells with outputs; parameter cells and silent code are dropped."""
+    tags = cell.metadata.get("tags", [])
+    if "parameters" in tags or "injected-parameters" in tags:
+        return False
+    return cell.cell_type == "markdown" or bool(cell.get("outputs"))
 
 
 def body_html(notebook) -> str:
@@ -45,7 +104,7 @@ def body_html(notebook) -> str:
 
     exporter = HTMLExporter(template_name="basic", exclude_input=True, exclude_input_prompt=True,
                             exclude_output_prompt=True, anchor_link_text="")
-    body, _ = exporter.from_notebook_node(notebook)
+    body, _ = exporter.from_notebook_node(keep_headings_with_content(notebook))
     return body
 
 

@@ -1,0 +1,199 @@
+"""Tests of report_kit.power."""
+
+from __future__ import annotations
+
+import json
+import statistics
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from statsmodels.stats.power import NormalIndPower, TTestIndPower
+
+from report_kit import power as pw
+from report_kit.errors import UsageError
+from report_kit.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
+
+# ---------------------------------------------------------------------------
+# MDE from a standard error
+# ---------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(("n1", "n0", "alpha", "target"), [(50, 50, 0.05, 0.8), (120, 60, 0.05, 0.9),
+                                                          (400, 400, 0.01, 0.8)])
+def test_mde_normal_matches_statsmodels_normal_power(n1, n0, alpha, target):
+    # Reference: statsmodels.stats.power.NormalIndPower.solve_power (effect in SD
+    # units; SE of the standardized difference is sqrt(1/n1 + 1/n0)). statsmodels
+    # counts the far tail too, which the MDE formula neglects: tolerance 1e-4.
+    expected = NormalIndPower().solve_power(nobs1=n1, ratio=n0 / n1, alpha=alpha, power=target)
+    got = pw.mde(np.sqrt(1 / n1 + 1 / n0), alpha=alpha, power=target)
+    assert got == pytest.approx(expected, rel=1e-4)
+
+
+def test_mde_multiplier_is_about_2_8():
+    # Bloom (1995): at alpha = 0.05 two-sided and 80% power the MDE is about
+    # 2.8 standard errors (value from memory).
+    assert pw.mde(1.0) == pytest.approx(2.8, abs=0.005)
+    # one-sided uses z_{0.95} + z_{0.8} = 1.645 + 0.842 (from memory)
+    assert pw.mde(1.0, alternative="greater") == pytest.approx(2.486, abs=0.001)
+    assert pw.mde(2.0, df=10) > pw.mde(2.0)
+
+
+def test_mde_validation_messages():
+    with pytest.raises(UsageError, match=r"`se` must be a positive number; got -1"):
+        pw.mde(-1)
+    with pytest.raises(UsageError, match=r"`alpha` must be in \(0, 1\); got 1.5"):
+        pw.mde(1, alpha=1.5)
+    with pytest.raises(UsageError, match=r"`alternative` must be one of \{'two-sided', 'greater', 'less'\}; got 'both'"):
+        pw.mde(1, alternative="both")
+
+
+# ---------------------------------------------------------------------------
+# analytic power of a planned design
+# ---------------------------------------------------------------------------
+
+SM_ALTERNATIVE = {"two-sided": "two-sided", "greater": "larger", "less": "smaller"}
+
+
+@pytest.mark.parametrize(("n1", "n0", "d", "alternative"), [
+    (50, 50, 0.5, "two-sided"), (30, 70, 0.3, "two-sided"), (20, 20, 0.8, "greater"),
+    (40, 25, -0.6, "less"), (200, 100, 0.1, "two-sided"),
+])
+def test_planned_power_matches_statsmodels_ttest(n1, n0, d, alternative):
+    # Reference: statsmodels.stats.power.TTestIndPower.power (noncentral t,
+    # df = n1 + n0 - 2, both tails for two-sided).
+    expected = TTestIndPower().power(effect_size=d, nobs1=n1, alpha=0.05, ratio=n0 / n1,
+                                     alternative=SM_ALTERNATIVE[alternative])
+    got = pw.planned_power(n_treated=n1, n_control=n0, sd=2.0, effect=2.0 * d, alternative=alternative)
+    assert got["power"] == pytest.approx(expected, rel=1e-9)
+
+
+@pytest.mark.parametrize(("n1", "n0", "target"), [(50, 50, 0.8), (30, 70, 0.9), (15, 15, 0.5)])
+def test_planned_mde_matches_statsmodels_solve_power(n1, n0, target):
+    # Reference: statsmodels TTestIndPower. Its solve_power stops at a loose
+    # tolerance (agreement to 1e-5); its power at our MDE must hit the target
+    # to 1e-9.
+    expected = TTestIndPower().solve_power(nobs1=n1, ratio=n0 / n1, alpha=0.05, power=target)
+    got = pw.planned_power(n_treated=n1, n_control=n0, sd=3.0, power=target)
+    assert got["mde"] == pytest.approx(3.0 * expected, rel=1e-5)
+    assert got["mde_std"] == pytest.approx(expected, rel=1e-5)
+    at_mde = TTestIndPower().power(effect_size=got["mde_std"], nobs1=n1, ratio=n0 / n1, alpha=0.05)
+    assert at_mde == pytest.approx(target, abs=1e-9)
+    assert got["power"] is None
+
+
+def test_cluster_design_uses_design_effect():
+    # Design effect 1 + (m - 1) rho (Kish 1965; Donner & Klar 2000).
+    base = pw.planned_power(n_treated=400, n_control=400, effect=0.2)
+    clus = pw.planned_power(n_treated=400, n_control=400, effect=0.2, icc=0.05, cluster_size=20)
+    assert clus["design_effect"] == pytest.approx(1 + 19 * 0.05)
+    assert clus["std_error"] / base["std_error"] == pytest.approx(np.sqrt(1.95))
+    assert clus["df"] == 38 and clus["power"] < base["power"]
+    # With rho = 1 every cluster acts as one unit: the design is a t test on
+    # 20 + 20 cluster means (reference: statsmodels TTestIndPower).
+    whole = pw.planned_power(n_treated=400, n_control=400, effect=0.5, icc=1.0, cluster_size=20)
+    expected = TTestIndPower().power(effect_size=0.5, nobs1=20, ratio=1.0, alpha=0.05)
+    assert whole["power"] == pytest.approx(expected, rel=1e-9)
+
+
+def test_planned_power_validation_messages():
+    with pytest.raises(UsageError, match=r"`icc` must be in \[0, 1\]; got 1.5"):
+        pw.planned_power(n_treated=10, n_control=10, icc=1.5)
+    with pytest.raises(UsageError, match="more than two clusters"):
+        pw.planned_power(n_treated=10, n_control=10, cluster_size=10)
+    with pytest.raises(UsageError, match=r"`n_treated` must be a positive number"):
+        pw.planned_power(n_treated=0, n_control=10)
+    json.dumps(pw.planned_power(n_treated=10, n_control=12, effect=1.0), allow_nan=False)
+
+
+# ---------------------------------------------------------------------------
+# simulated power
+# ---------------------------------------------------------------------------
+
+
+def randomization_test(draws: int, seed: int):
+    """A Monte Carlo Fisher test of |mean difference| written for this test file."""
+    rng = np.random.default_rng(seed)
+
+    def test(y, z):
+        n1 = z.sum()
+        perms = rng.permuted(np.tile(z, (draws, 1)), axis=1)
+        null = np.abs(perms @ y / n1 - (1 - perms) @ y / (z.size - n1))
+        obs = abs(y[z == 1].mean() - y[z == 0].mean())
+        return (1 + np.sum(null >= obs - 1e-12)) / (draws + 1)
+    return test
+
+
+def test_simulated_power_is_near_analytic_on_large_complete_design():
+    # Reference: statsmodels TTestIndPower.power for the same design; the
+    # randomization test is asymptotically as powerful as the t test
+    # (Lehmann & Romano 2005, ch. 15, from memory). Tolerance: 4 simulation SEs.
+    n, n1, effect = 200, 100, 0.4
+    z_fixed = np.array([1] * n1 + [0] * (n - n1))
+    res = pw.simulated_power(
+        lambda rng: rng.normal(size=n), effect,
+        lambda rng: rng.permutation(z_fixed), randomization_test(399, 7),
+        n_sims=800, seed=123,
+    )
+    expected = TTestIndPower().power(effect_size=effect, nobs1=n1, ratio=1.0, alpha=0.05)
+    assert abs(res["power"] - expected) < 4 * np.sqrt(expected * (1 - expected) / 800)
+    assert res["rejections"] == round(res["power"] * 800)
+    json.dumps(res, allow_nan=False)
+
+
+def test_simulated_power_is_reproducible_and_validates():
+    y0 = np.random.default_rng(0).normal(size=30)
+    z_fixed = np.array([1] * 15 + [0] * 15)
+    args = (y0, 0.5, lambda rng: rng.permutation(z_fixed))
+    a = pw.simulated_power(*args, randomization_test(99, 1), n_sims=40, seed=5)
+    b = pw.simulated_power(*args, randomization_test(99, 1), n_sims=40, seed=5)
+    assert a == b
+    with pytest.raises(UsageError, match=r"`test` must return a p-value in \[0, 1\]; got 2.0"):
+        pw.simulated_power(*args, lambda y, z: 2.0, n_sims=3, seed=5)
+    with pytest.raises(UsageError, match=r"`n_sims` must be a positive integer; got 0"):
+        pw.simulated_power(*args, lambda y, z: 0.5, n_sims=0, seed=5)
+    with pytest.raises(UsageError, match=r"`draw_assignment` returned shape \(3,\)"):
+        pw.simulated_power(y0, 0.5, lambda rng: np.zeros(3), lambda y, z: 0.5, n_sims=3, seed=5)
+    # a test that always rejects gives power 1 with zero Monte Carlo error
+    one = pw.simulated_power(*args, lambda y, z: 0.0, n_sims=10, seed=5)
+    assert one["power"] == 1.0 and one["mc_std_error"] == 0.0
+
+
+# ---------------------------------------------------------------------------
+# study as run
+# ---------------------------------------------------------------------------
+
+
+def make_study() -> Study:
+    frame = pd.DataFrame({
+        "uid": range(8),
+        "z": [1, 1, 1, 1, 0, 0, 0, 0],
+        "y": [3.0, 4.0, 5.0, 6.0, 1.0, 2.0, 4.0, np.nan],
+        "w": [1.0, 0.0, 1.0, 1.0, 0.0, 0.0, 1.0, 0.0],
+    })
+    spec = Spec(
+        path=Path("/nonexistent/design.yaml"), spec_version=1, title="Invented study", summary="",
+        data=DataSpec(units="data/units.csv", id="uid"),
+        design=DesignSpec(mechanism="complete", treatment="z"),
+        analysis=AnalysisSpec(alpha=0.1),
+        outcomes=(OutcomeSpec(column="y", label="Y"), OutcomeSpec(column="w", label="W", family="secondary")),
+    )
+    return Study(spec=spec, frame=frame, inputs=())
+
+
+def test_study_power_as_run():
+    study = make_study()
+    estimates = [
+        {"outcome": "y", "estimand": "ATE", "estimator": "adjusted", "subgroup": None, "std_error": 0.5, "df": 4.0},
+        {"outcome": "y", "estimand": "ATE", "estimator": "unadjusted", "subgroup": None, "std_error": 1.2, "df": 5.0},
+    ]
+    section = pw.study_power(study, estimates, planned=[pw.planned_power(n_treated=4, n_control=4)])
+    json.dumps(section, allow_nan=False)
+    assert section["alpha"] == 0.1 and section["target_power"] == 0.8
+    y_row, w_row = section["as_run"]
+    assert y_row["std_error"] == 1.2 and y_row["mde"] == pytest.approx(pw.mde(1.2, 0.1, 0.8, 5.0))
+    assert y_row["sd_control"] == pytest.approx(statistics.stdev([1.0, 2.0, 4.0]))
+    assert y_row["mde_std"] == pytest.approx(y_row["mde"] / y_row["sd_control"])
+    assert w_row["mde"] is None and w_row["std_error"] is None
+    assert section["planned"][0]["method"] == "analytic"
