@@ -123,6 +123,61 @@ def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool)
 
 
 @main.command()
+@click.argument("run_a", type=click.Path(path_type=Path))
+@click.argument("run_b", type=click.Path(path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print the differences as JSON.")
+@click.option("--max-items", default=20, show_default=True, help="Changed cells and results listed before summarising.")
+def diff(run_a: Path, run_b: Path, as_json: bool, max_items: int) -> None:
+    """What changed between two runs: inputs (row level, by id) and results."""
+    from .compare import compare_runs, format_diff_text
+
+    result = compare_runs(run_a, run_b)
+    if as_json:
+        click.echo(json.dumps(result.to_dict(), indent=2, sort_keys=False))
+    else:
+        text = format_diff_text(result, max_items=max_items)
+        for line in text.splitlines():
+            emphasised = line.lstrip().startswith("!!")
+            click.echo(click.style(line, bold=True) if emphasised else line)
+
+
+@main.command()
+@click.argument("target", type=click.Path(path_type=Path))
+def verify(target: Path) -> None:
+    """Re-run a run folder (or an archive .zip) from its recorded inputs; exit 3 on any difference."""
+    from .errors import VerificationError
+    from .pipeline import analyse_project
+    from .verify import format_verify_text, verify_run
+
+    click.echo(f"verifying {target} (re-running the analysis from the recorded inputs)…", err=True)
+    report = verify_run(target, analyse=analyse_project)
+    click.echo(format_verify_text(report))
+    if not report.ok:
+        raise VerificationError("verification found differences (listed above)")
+
+
+@main.command()
+@click.argument("run_dir", type=click.Path(path_type=Path))
+@click.option("-o", "--output", type=click.Path(path_type=Path), help="Zip file to write (default: beside the run).")
+def archive(run_dir: Path, output: Path | None) -> None:
+    """One .zip with design.yaml, the inputs, the run folder, manifest, RO-Crate and checksums."""
+    from .archive import archive_run
+
+    click.echo(f"archived: {archive_run(run_dir, output)}")
+
+
+@main.command()
+@click.argument("path", type=click.Path(path_type=Path))
+@click.option("--force", is_flag=True, help="Replace an existing lock (the report will show the new one).")
+def lock(path: Path, force: bool) -> None:
+    """Record design.yaml as the locked plan (design.lock) before outcomes are analysed."""
+    from .pipeline import project_dir_of
+    from .planlock import lock_plan
+
+    click.echo(f"locked: {lock_plan(project_dir_of(path), force=force)}")
+
+
+@main.command()
 def schema() -> None:
     """Print the JSON Schema of design.yaml."""
     from .spec import design_schema

@@ -157,6 +157,9 @@ def copy_inputs(study: Study, run_dir: Path) -> None:
     dest = run_dir / "inputs"
     dest.mkdir()
     shutil.copy2(study.spec.path, dest / SPEC_FILENAME)
+    lock = study.spec.project_dir / "design.lock"
+    if lock.is_file():
+        shutil.copy2(lock, dest / "design.lock")
     for f in study.inputs:
         target = dest / f.path
         target.parent.mkdir(parents=True, exist_ok=True)

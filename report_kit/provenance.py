@@ -78,7 +78,22 @@ _CHUNK = 1 << 20
 # --------------------------------------------------------------------------- hashing
 
 def sha256_file(path: Path | str) -> str:
-    """SHA-256 of a file's bytes as 64 lower-case hex digits (FIPS 180-4)."""
+    """SHA-256 digest of a file's bytes.
+
+    Parameters
+    ----------
+    path : path-like
+        The file; read in 1 MiB chunks, so its size does not matter.
+
+    Returns
+    -------
+    str
+        The digest as 64 lower-case hexadecimal digits.
+
+    References
+    ----------
+    NIST (2015). *Secure Hash Standard (SHS)*, FIPS PUB 180-4, section 6.2.
+    """
     path = Path(path)
     if not path.is_file():
         raise UsageError(f"cannot hash {path}: no such file")
@@ -207,7 +222,27 @@ def write_results_json(path: Path | str, results: dict) -> str:
     shortest round-trip float repr, NaN/inf as ``null``, numpy scalars as
     plain numbers, newline at the end (see :func:`to_json_value`). Keep
     timestamps and absolute paths out of ``results``; they would break the
-    byte identity of two runs on the same inputs.
+    byte identity of two runs on the same inputs. The file is written to a
+    temporary name in the same folder and renamed into place.
+
+    Parameters
+    ----------
+    path : path-like
+        Where to write (its folder must exist).
+    results : dict
+        The results, with string keys in the order of ``results.json``'s schema.
+
+    Returns
+    -------
+    str
+        SHA-256 of the bytes written (64 hex digits).
+
+    References
+    ----------
+    Bray, T. (ed.) (2017). *The JavaScript Object Notation (JSON) Data
+    Interchange Format*, RFC 8259 (numbers, UTF-8). Python's ``float.__repr__``
+    gives the shortest string that reads back to the same double (Python
+    documentation, "Floating Point Arithmetic: Issues and Limitations").
     """
     if not isinstance(results, dict):
         raise UsageError(f"`results` must be a dict; got {type(results).__name__}")
