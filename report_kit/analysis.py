@@ -2,19 +2,28 @@
 
 Owns the order of the analysis and nothing else: each section of the results
 comes from one library module (``estimate``, ``randomization``, ``balance``,
-``attrition``, ``multiplicity``, ``power``). Deterministic: the same study gives
-the same dict, whatever the machine.
+``attrition``, ``multiplicity``, ``power``). All procedures that need
+assignments share one :class:`~report_kit.designs.AssignmentSource`, so the
+tests, the balance and attrition checks and Westfall–Young see the same draws.
+Deterministic: the same study gives the same dict, whatever the machine.
 """
 
 from __future__ import annotations
 
 import logging
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from .estimate import difference_in_means
+from .attrition import study_attrition
+from .balance import participant_flow, study_balance
+from .errors import ReportKitWarning
+from .estimate import study_estimates
 from .model import Study
+from .multiplicity import SharedNull, study_multiplicity
+from .power import study_power
+from .randomization import StudyRandomization, study_assignments, study_randomization
 
 log = logging.getLogger(__name__)
 
@@ -29,9 +38,9 @@ class Analysis:
     arrays: dict[str, np.ndarray] = field(default_factory=dict)
 
 
-def design_summary(study: Study, *, n_assignments: str | None = None,
+def design_summary(study: Study, rand: StudyRandomization | None = None, *,
                    assignment_check: str = "not_checked") -> dict:
-    """The ``design`` section: counts of units, arms, blocks and clusters."""
+    """The ``design`` section: counts of units, arms, blocks, clusters and assignments."""
     z = study.z
     block, cluster = study.block, study.cluster
     return {
@@ -41,28 +50,75 @@ def design_summary(study: Study, *, n_assignments: str | None = None,
         "n_control": int(z.size - z.sum()),
         "n_blocks": None if block is None else int(len(set(block.tolist()))),
         "n_clusters": None if cluster is None else int(len(set(cluster.tolist()))),
-        "n_assignments": n_assignments,
+        "n_assignments": None if rand is None else rand.n_assignments,
         "assignment_check": assignment_check,
+        "inference_method": None if rand is None else rand.method,
+        "draws": None if rand is None else int(rand.draws),
     }
 
 
-def basic_estimates(study: Study) -> list[dict]:
-    """Unadjusted difference in means with the Neyman SE, one row per outcome."""
-    rows = []
-    for outcome in study.spec.outcomes:
-        y = study.outcome(outcome.column)
-        keep = ~np.isnan(y)
-        est = difference_in_means(y[keep], study.z[keep], alpha=study.spec.analysis.alpha)
-        rows.append({"outcome": outcome.column, "subgroup": None, **est.to_dict()})
-    return rows
+def shared_nulls(study: Study, rand: StudyRandomization) -> dict[str, SharedNull]:
+    """Per family, every outcome's null statistics on the shared draws (for Westfall–Young)."""
+    families: dict[str, list[str]] = {}
+    for o in study.spec.outcomes:
+        families.setdefault(o.family, []).append(o.column)
+    out = {}
+    for family, columns in families.items():
+        joint = rand.joint_null(columns)
+        out[family] = SharedNull(outcomes=joint.outcomes, observed=joint.observed, null=joint.null,
+                                 method=joint.method, weights=joint.weights)
+    return out
+
+
+def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]:
+    """Null distributions of the primary outcomes' test statistics, for the report's plots."""
+    arrays = {}
+    for o in study.spec.outcomes:
+        if o.family != "primary":
+            continue
+        dist = rand.distributions[o.column]
+        arrays[f"null::{o.column}"] = np.asarray(dist.null[:, 0], dtype=float)
+        arrays[f"observed::{o.column}"] = np.asarray([dist.observed[0]], dtype=float)
+    return arrays
 
 
 def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
     """Run every analysis step on a validated study and return the results."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ReportKitWarning)
+        results, arrays = _sections(study, assignment_check)
+    notes = sorted({str(w.message) for w in caught if issubclass(w.category, ReportKitWarning)})
+    for note in notes:
+        log.warning("%s", note)
+    results["notes"] = notes
+    return Analysis(results=results, arrays=arrays)
+
+
+def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
+    spec = study.spec
+    log.info("estimates")
+    estimates = study_estimates(study)
+    log.info("randomization tests")
+    rand = study_randomization(study)
+    mechanism, source = study_assignments(study)
+    weights = mechanism.weights if source.method == "exact" else None
+    log.info("balance, flow, attrition")
+    balance = study_balance(study, source.chunks, source.method, weights=weights)
+    attrition = study_attrition(study, source.chunks, source.method, weights=weights)
+    log.info("multiplicity and power")
+    multiplicity = study_multiplicity(rand.tests, spec.outcomes, shared_nulls(study, rand),
+                                      lead=spec.analysis.multiplicity)
     results = {
         "schema": SCHEMA,
-        "design": design_summary(study, assignment_check=assignment_check),
-        "estimates": basic_estimates(study),
+        "design": design_summary(study, rand, assignment_check=assignment_check),
+        "estimates": estimates,
+        "tests": rand.tests,
+        "intervals": rand.intervals,
+        "balance": balance,
+        "flow": participant_flow(study, estimates),
+        "attrition": attrition,
+        "multiplicity": multiplicity,
+        "power": study_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }
-    return Analysis(results=results)
+    return results, plot_arrays(study, rand)

@@ -46,3 +46,24 @@ def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, leve
     ax.tick_params(axis="y", length=0)
     fig.tight_layout()
     return fig
+
+
+def randomization_plot(null: np.ndarray, observed: float, *, label: str, statistic: str,
+                       method: str, count_text: str):
+    """Histogram of the statistic over the assignments, with the observed value marked."""
+    fig, ax = _figure(2.6)
+    null = np.asarray(null, dtype=float)
+    null = null[np.isfinite(null)]
+    bins = min(60, max(10, int(np.sqrt(null.size))))
+    ax.hist(null, bins=bins, color="#c9d6de", edgecolor="white", linewidth=0.4)
+    ax.axvline(observed, color=ACCENT, linewidth=2.0)
+    ymax = ax.get_ylim()[1]
+    ax.text(observed, ymax * 0.95, "  observed", color=ACCENT, fontsize=8, va="top",
+            ha="left" if observed <= np.median(null) else "right")
+    ax.set_yticks([])
+    ax.spines["left"].set_visible(False)
+    ax.grid(False)
+    ax.set_title(label, fontsize=9, loc="left")
+    ax.set_xlabel(f"{statistic.replace('_', ' ')} under the null of no effect — {count_text}", fontsize=8)
+    fig.tight_layout()
+    return fig

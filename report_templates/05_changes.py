@@ -54,6 +54,12 @@ if compare_to:
     changed = diff.inputs_changed
     if not changed:
         say("The inputs are identical to the previous run's.")
+    if diff.design_changes:
+        show_table(view, pd.DataFrame({
+            "Key": [c["key"] for c in diff.design_changes],
+            "Previous run": [str(c.get("old")) for c in diff.design_changes],
+            "This run": [str(c.get("new")) for c in diff.design_changes],
+        }), "changed_spec", caption="Changes to design.yaml since the previous run")
     for change in changed:
         t = change.table
         if t is None:
@@ -69,9 +75,18 @@ if compare_to:
             show_table(view, cells, f"changed_cells_{Path(change.path).stem}",
                        caption=f"Changed cells in {change.path}" + (" (first 25)" if len(t.cells) > 25 else ""))
     moved = [c for c in diff.results.changed if c.difference is not None]
+
+    def readable(change) -> str:
+        key = dict(change.key)
+        if "outcome" not in key:
+            return change.section
+        parts = [view.label(key["outcome"])]
+        parts += [str(key[k]) for k in ("estimand", "subgroup", "statistic", "method", "family") if key.get(k)]
+        return f"{change.section}: " + " · ".join(parts)
+
     if moved:
         show_table(view, pd.DataFrame({
-            "Result": [c.label for c in moved[:30]],
+            "Result": [readable(c) for c in moved[:30]],
             "Field": [c.field for c in moved[:30]],
             "Before": [c.old for c in moved[:30]],
             "Now": [c.new for c in moved[:30]],

@@ -1,0 +1,72 @@
+# %% [markdown]
+# ## Randomization tests
+
+# %% tags=["parameters"]
+run_dir = ""
+project_dir = ""
+compare_to = ""
+
+# %%
+import pandas as pd
+
+from report_kit.figures import randomization_plot
+from report_kit.reporting import RunView, fmt_p, say, show_figure, show_table
+
+view = RunView.open(run_dir, project_dir)
+res = view.results
+d = res["design"]
+tests = pd.DataFrame(res.get("tests") or [])
+level = round(100 * (1 - view.spec.analysis.alpha))
+
+# %%
+if d.get("inference_method") == "exact":
+    how = (f"all {int(d['n_assignments']):,} assignments the design allows were enumerated, so the p-values "
+           "are exact")
+else:
+    how = (f"the design allows {len(d['n_assignments'] or '')}-digit many assignments, so "
+           f"{d['draws']:,} were drawn at random (seed {view.spec.analysis.seed}) and each p-value carries a "
+           "Monte Carlo standard error; p = (1 + #{at least as extreme}) / (1 + draws)")
+say("Each test asks how surprising the observed statistic would be if the programme had no effect on any "
+    "unit (Fisher's sharp null), using the assignment mechanism actually used: "
+    f"{how}. Two-sided tests count assignments at least as far from the null mean as the observed one.")
+
+# %%
+STAT_WORDS = {"mean_difference": "difference in means", "rank_sum": "rank sum", "studentized": "studentized difference",
+              "ks": "Kolmogorov–Smirnov distance"}
+if len(tests):
+    show_table(view, pd.DataFrame({
+        "Outcome": [view.label(o) for o in tests["outcome"]],
+        "Statistic": [STAT_WORDS.get(s, s) for s in tests["statistic"]],
+        "Alternative": tests["alternative"],
+        "Observed": tests["observed"],
+        "p-value": [fmt_p(p) for p in tests["p_value"]],
+        "Assignments used": tests["draws"],
+        "MC std. error": [None if v is None or pd.isna(v) else float(v) for v in tests["mc_std_error"]],
+    }), "tests", caption="Fisher randomization tests of no effect", csv_frame=tests)
+
+# %%
+intervals = pd.DataFrame(res.get("intervals") or [])
+if len(intervals):
+    show_table(view, pd.DataFrame({
+        "Outcome": [view.label(o) for o in intervals["outcome"]],
+        f"{level}% interval, low": intervals["ci_low"],
+        f"{level}% interval, high": intervals["ci_high"],
+        "Hodges–Lehmann estimate": intervals["hodges_lehmann"],
+    }), "intervals", caption="Constant effects not rejected by the randomization test",
+        csv_frame=intervals,
+        note="The interval collects every constant additive effect that the two-sided difference-in-means test "
+             "does not reject; the Hodges–Lehmann estimate is the effect at which the test is most compatible.")
+
+# %%
+arrays = view.arrays()
+for o in view.spec.outcomes:
+    key = f"null::{o.column}"
+    if o.family != "primary" or key not in arrays:
+        continue
+    row = tests[tests["outcome"] == o.column].iloc[0]
+    count = "every assignment" if row["method"] == "exact" else f"{int(row['draws']):,} random assignments"
+    fig = randomization_plot(arrays[key], float(arrays[f"observed::{o.column}"][0]), label=o.label,
+                             statistic=row["statistic"], method=row["method"], count_text=count)
+    show_figure(view, fig, f"randomization_{o.column}",
+                caption=f"{o.label}: the statistic under every re-randomization if there were no effect "
+                        f"(grey) and as observed (line); p = {fmt_p(row['p_value'])}.")
