@@ -19,7 +19,7 @@ import numpy as np
 from .attrition import study_attrition
 from .balance import participant_flow, study_balance
 from .errors import ReportKitWarning
-from .estimate import study_estimates
+from .estimate import study_compliance, study_estimates, study_subgroup_differences
 from .model import Study
 from .multiplicity import SharedNull, study_multiplicity
 from .power import study_power
@@ -112,6 +112,8 @@ def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
         "schema": SCHEMA,
         "design": design_summary(study, rand, assignment_check=assignment_check),
         "estimates": estimates,
+        "subgroup_differences": study_subgroup_differences(study),
+        "compliance": study_compliance(study),
         "tests": rand.tests,
         "intervals": rand.intervals,
         "balance": balance,

@@ -1131,3 +1131,33 @@ def _row(outcome: str, est: Estimate, estimand: str, *, subgroup: str | None = N
            "subgroup": subgroup}
     row.update({key: values[key] for key in ESTIMATE_KEYS if key not in row})
     return row
+
+
+def compliance_rates(z, d) -> dict:
+    """Share of each arm that received the treatment (units with known take-up).
+
+    ``rate_treated = mean(d | z = 1)`` is the take-up among those assigned to
+    treatment; ``rate_control = mean(d | z = 0)`` the crossover among controls.
+    Their difference is the ITT on take-up, the denominator of the Wald CACE
+    (Angrist, Imbens & Rubin 1996).
+    """
+    z = np.asarray(z, dtype=float)
+    d = np.asarray(d, dtype=float)
+    if z.shape != d.shape:
+        raise DesignError(f"`z` and `d` must have the same length; got {z.size} and {d.size}")
+    known = ~np.isnan(d)
+    treated, control = known & (z == 1), known & (z == 0)
+    return {
+        "rate_treated": float(d[treated].mean()) if treated.any() else None,
+        "rate_control": float(d[control].mean()) if control.any() else None,
+        "n_treated": int(treated.sum()),
+        "n_control": int(control.sum()),
+    }
+
+
+def study_compliance(study) -> dict | None:
+    """The ``compliance`` section (extension): take-up by arm, or None without a compliance column."""
+    if study.spec.compliance is None:
+        return None
+    column = study.spec.compliance.received
+    return {"received": column, **compliance_rates(study.z, study.frame[column].to_numpy(dtype=float))}

@@ -30,20 +30,48 @@ def _figure(height: float, width: float = 7.0):
     return fig, ax
 
 
+METHOD_SHORT = {
+    "neyman": "difference in means",
+    "blocked_neyman": "block-weighted",
+    "paired": "paired",
+    "cr2": "difference in means (CR2)",
+    "horvitz_thompson": "Horvitz–Thompson",
+    "lin_hc2": "Lin adjusted",
+    "lin_cr2": "Lin adjusted (CR2)",
+    "wald_delta": "CACE (Wald)",
+}
+
+
 def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, level: int = 95):
-    """Horizontal interval plot: one line per estimate, a square at the point estimate."""
+    """One panel per outcome (each on its own scale); a line per estimate, a square at the point estimate."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
     rows = rows.reset_index(drop=True)
-    fig, ax = _figure(0.55 * len(rows) + 1.0)
-    ypos = np.arange(len(rows))[::-1]
-    for y, (_, r) in zip(ypos, rows.iterrows()):
-        colour = ACCENT if r.get("estimator") == "adjusted" else INK
-        ax.plot([r["ci_low"], r["ci_high"]], [y, y], color=colour, linewidth=2.2, solid_capstyle="butt")
-        ax.plot([r["estimate"]], [y], marker="s", markersize=7, color=colour)
-    labels = [f"{labeler(r['outcome'])}\n{r.get('method', r['estimator'])}" for _, r in rows.iterrows()]
-    ax.set_yticks(ypos, labels, fontsize=8)
-    ax.axvline(0, color=MUTED, linestyle="--", linewidth=1)
-    ax.set_xlabel(f"Effect estimate with {level}% confidence interval (outcome units)")
-    ax.tick_params(axis="y", length=0)
+    outcomes = list(dict.fromkeys(rows["outcome"]))
+    sizes = [int((rows["outcome"] == o).sum()) for o in outcomes]
+    fig, axes = plt.subplots(len(outcomes), 1, figsize=(7.0, 0.42 * sum(sizes) + 0.75 * len(outcomes) + 0.3),
+                             gridspec_kw={"height_ratios": [s + 0.8 for s in sizes]}, squeeze=False)
+    for ax, outcome in zip(axes[:, 0], outcomes):
+        part = rows[rows["outcome"] == outcome].reset_index(drop=True)
+        ypos = np.arange(len(part))[::-1]
+        for y, (_, r) in zip(ypos, part.iterrows()):
+            colour = ACCENT if r.get("estimator") == "adjusted" else INK
+            if r["ci_low"] is not None and r["ci_high"] is not None and np.isfinite([r["ci_low"], r["ci_high"]]).all():
+                ax.plot([r["ci_low"], r["ci_high"]], [y, y], color=colour, linewidth=2.2, solid_capstyle="butt")
+            ax.plot([r["estimate"]], [y], marker="s", markersize=6.5, color=colour)
+        ax.set_yticks(ypos, [METHOD_SHORT.get(m, m) for m in part.get("method", part["estimator"])], fontsize=8)
+        ax.set_ylim(-0.7, len(part) - 0.3)
+        ax.axvline(0, color=MUTED, linestyle="--", linewidth=1)
+        ax.spines[["top", "right", "left"]].set_visible(False)
+        ax.grid(axis="x", color="#e3e5e8", linewidth=0.8)
+        ax.set_axisbelow(True)
+        ax.tick_params(axis="y", length=0)
+        ax.tick_params(axis="x", labelsize=8)
+        ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold")
+    axes[-1, 0].set_xlabel(f"Effect with {level}% confidence interval, in each outcome's own units", fontsize=8)
     fig.tight_layout()
     return fig
 

@@ -147,9 +147,10 @@ def write_analysis(run_dir: Path, result: Analysis) -> None:
     """results.json (canonical bytes) plus the arrays the report plots."""
     provenance.write_results_json(run_dir / "results.json", result.results)
     if result.arrays:
-        (run_dir / "analysis").mkdir(exist_ok=True)
-        with open(run_dir / "analysis" / "arrays.npz", "wb") as fh:
-            np.savez_compressed(fh, **result.arrays)
+        folder = run_dir / "analysis"
+        folder.mkdir(exist_ok=True)
+        for name, array in sorted(result.arrays.items()):
+            np.save(folder / f"{name.replace('::', '__')}.npy", np.ascontiguousarray(array), allow_pickle=False)
 
 
 def copy_inputs(study: Study, run_dir: Path) -> None:

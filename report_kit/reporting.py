@@ -47,11 +47,10 @@ class RunView:
         return cls(run_dir=run_dir, project_dir=project_dir, results=results, spec=spec)
 
     def arrays(self) -> dict[str, np.ndarray]:
-        path = self.run_dir / "analysis" / "arrays.npz"
-        if not path.exists():
+        folder = self.run_dir / "analysis"
+        if not folder.is_dir():
             return {}
-        with np.load(path) as data:
-            return {k: data[k] for k in data.files}
+        return {p.stem.replace("__", "::", 1): np.load(p, allow_pickle=False) for p in sorted(folder.glob("*.npy"))}
 
     def label(self, column: str) -> str:
         for o in self.spec.outcomes:
@@ -94,9 +93,11 @@ def table_html(frame: pd.DataFrame, *, caption: str = "", note: str = "", numeri
             cls = ' class="num"' if not isinstance(value, str) else ""
             cells.append(f"<td{cls}>{html.escape(str(text))}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
-    cap = f"<caption>{html.escape(caption)}</caption>" if caption else ""
+    cap = f'<p class="rk-tcap">{html.escape(caption)}</p>' if caption else ""
     foot = f'<p class="rk-note">{html.escape(note)}</p>' if note else ""
-    return f'<table class="rk-table">{cap}<thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>{foot}'
+    table = f'<table class="rk-table"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
+    size = "rk-long" if len(frame) > 10 else "rk-short"
+    return f'<div class="rk-tablebox {size}">{cap}{table}{foot}</div>'
 
 
 def show_table(view: RunView, frame: pd.DataFrame, name: str, *, caption: str = "", note: str = "",

@@ -27,14 +27,14 @@ say(
 
 # %%
 METHOD_WORDS = {
-    "neyman": "Neyman difference in means",
-    "blocked_neyman": "block-weighted Neyman",
-    "paired": "paired (Imai 2008)",
-    "cr2": "difference in means, CR2 cluster SE",
-    "horvitz_thompson": "Horvitz–Thompson (cluster totals)",
-    "lin_hc2": "Lin covariate-adjusted, HC2",
-    "lin_cr2": "Lin covariate-adjusted, CR2",
-    "wald_delta": "Wald ratio, delta method",
+    "neyman": "Difference in means",
+    "blocked_neyman": "Block-weighted",
+    "paired": "Paired",
+    "cr2": "Difference in means, CR2",
+    "horvitz_thompson": "Horvitz–Thompson",
+    "lin_hc2": "Lin adjusted, HC2",
+    "lin_cr2": "Lin adjusted, CR2",
+    "wald_delta": "Wald ratio",
 }
 
 
@@ -66,10 +66,43 @@ if len(main):
                 caption=f"Estimates with {level}% confidence intervals; the dashed line marks no effect.")
 
 # %%
-other = est[~est.index.isin(main.index)]
-if len(other):
-    say("### Take-up, complier effects and subgroups")
-    table = family_table(other)
-    table.insert(1, "Subgroup", other["subgroup"].fillna("all units").to_numpy())
-    show_table(view, table, "estimates_other", caption="Noncompliance and pre-specified subgroups",
-               csv_frame=other)
+takeup = est[(est["estimand"] == "ITT") & ~est["outcome"].isin([o.column for o in view.spec.outcomes])]
+cace = est[est["estimand"] == "CACE"]
+comp = res.get("compliance")
+if comp:
+    say("### Take-up and the effect on compliers\n\n"
+        f"Of the units assigned to treatment, {100 * comp['rate_treated']:.1f}% received it "
+        f"(column `{comp['received']}`); of the controls, {100 * comp['rate_control']:.1f}% did. "
+        "The effect of assignment (ITT) is the policy-relevant effect of offering the programme. "
+        "The complier average causal effect (CACE) scales it by the difference in take-up: the average effect "
+        "of receiving the programme for units that take it when offered and only then. It assumes that "
+        "assignment affects outcomes only through take-up and that no unit takes it up only when not offered "
+        "(Angrist, Imbens & Rubin 1996).")
+    rows = pd.concat([takeup, cace])
+    table = family_table(rows)
+    table["Outcome"] = [f"Take-up ({o})" if o == comp["received"] else view.label(o) for o in rows["outcome"]]
+    show_table(view, table, "estimates_compliance", caption="Take-up and complier effects", csv_frame=rows)
+
+# %%
+sub = est[est["estimand"] == "subgroup ATE"]
+diffs = pd.DataFrame(res.get("subgroup_differences") or [])
+if len(sub):
+    say("### Pre-specified subgroups\n\nEstimates within each level of the pre-specified subgroup variables, and "
+        "the difference between levels. Subgroup estimates are less precise than the overall estimate; a "
+        "difference between subgroups is evidence only when its own interval excludes zero.")
+    table = family_table(sub)
+    table.insert(1, "Subgroup", sub["subgroup"].to_numpy())
+    show_table(view, table.drop(columns=["Estimand"]), "estimates_subgroups", caption="Effects within subgroups",
+               csv_frame=sub)
+if len(diffs):
+    show_table(view, pd.DataFrame({
+        "Outcome": [view.label(o) for o in diffs["outcome"]],
+        "Contrast": [f"{a} minus {b}" for a, b in zip(diffs["subgroup"], diffs["reference"])],
+        "Difference": diffs["estimate"], "Std. error": diffs["std_error"],
+        f"{level}% CI low": diffs["ci_low"], f"{level}% CI high": diffs["ci_high"],
+    }), "subgroup_differences", caption="Differences between subgroup effects", csv_frame=diffs)
+
+# %%
+notes = res.get("notes") or []
+if notes:
+    say("### Notes from the analysis\n\n" + "\n".join(f"- {n}" for n in notes))

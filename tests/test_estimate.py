@@ -1026,3 +1026,18 @@ def test_estimate_to_dict_is_json_safe_and_keeps_fields():
     assert out["std_error"] is None and type(out["estimate"]) is float
     assert type(out["n_treated"]) is int
     assert set(ESTIMATE_KEYS) - {"outcome", "subgroup"} <= set(out)
+
+
+def test_compliance_rates_match_group_means():
+    # Reference: pandas groupby means (direct computation of take-up by arm).
+    import pandas as pd
+
+    from report_kit.estimate import compliance_rates
+
+    z = np.array([1, 1, 1, 1, 0, 0, 0, 0, 0])
+    d = np.array([1, 0, 1, np.nan, 0, 1, 0, 0, 0], dtype=float)
+    frame = pd.DataFrame({"z": z, "d": d}).dropna()
+    means = frame.groupby("z")["d"].mean()
+    got = compliance_rates(z, d)
+    assert got["rate_treated"] == pytest.approx(means[1]) and got["rate_control"] == pytest.approx(means[0])
+    assert (got["n_treated"], got["n_control"]) == (3, 5)
