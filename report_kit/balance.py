@@ -50,7 +50,7 @@ __all__ = [
     "SMD_THRESHOLDS",
     "CovariateBalance",
     "OmnibusBalance",
-    "balance_table",
+    "balance_rows",
     "covariate_balance",
     "mahalanobis_balance_test",
     "omnibus_balance",
@@ -327,12 +327,12 @@ def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray) -> CovariateBalance
 
 
 def covariate_balance(X, z, names: Sequence[str]) -> tuple[CovariateBalance, ...]:
-    """Per-covariate balance as result objects (see :func:`balance_table`)."""
+    """Per-covariate balance as result objects (see :func:`balance_rows`)."""
     arr, zb, names = _check_covariates(X, z, names)
     return tuple(_one_covariate(name, arr[:, j], zb) for j, name in enumerate(names))
 
 
-def balance_table(X, z, names: Sequence[str]) -> list[dict]:
+def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
     r"""Means by arm, standardized mean difference and variance ratio per covariate.
 
     Parameters
@@ -563,7 +563,7 @@ def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], met
     X = study.frame.loc[:, list(names)].to_numpy(dtype=float)
     z = study.z
     return {
-        "covariates": balance_table(X, z, names),
+        "covariates": balance_rows(X, z, names),
         "omnibus": omnibus_balance(X, z, chunks_factory, method, names, weights=weights),
     }
 

@@ -178,6 +178,58 @@ def lock(path: Path, force: bool) -> None:
 
 
 @main.command()
+@click.argument("path", type=click.Path(path_type=Path))
+@click.option("--sd", type=float, help="Standard deviation of the outcome, in its own units (required).")
+@click.option("--effect", type=float, help="Effect to compute the power for (outcome units).")
+@click.option("--power", "target_power", type=float, default=0.8, show_default=True,
+              help="Target power of the minimum detectable effect.")
+@click.option("--icc", type=float, help="Intraclass correlation within clusters (required for cluster designs).")
+@click.option("--cluster-size", type=float, help="Planned units per cluster (cluster designs without data).")
+@click.option("--n-treated", type=int, help="Planned treated units (designs without data).")
+@click.option("--n-control", type=int, help="Planned control units (designs without data).")
+@click.option("--n-clusters", type=int, help="Planned clusters in all (cluster designs without data).")
+@click.option("--outcome", help="Outcome whose pre-specified test is planned for (default: first primary).")
+@click.option("--simulate", type=int, default=0, show_default=True,
+              help="Simulated experiments under the real mechanism and randomization test (0: analytic only).")
+@click.option("--draws", type=int, default=499, show_default=True,
+              help="Randomization draws of the test in each simulated experiment "
+                   "(every assignment when there are at most 10000).")
+@click.option("--seed", type=int, help="Seed of the simulation (default: analysis.seed).")
+@click.option("--json", "as_json", is_flag=True, help="Print the plan as JSON.")
+def power(path: Path, sd: float | None, effect: float | None, target_power: float, icc: float | None,
+          cluster_size: float | None, n_treated: int | None, n_control: int | None, n_clusters: int | None,
+          outcome: str | None, simulate: int, draws: int, seed: int | None, as_json: bool) -> None:
+    """Power and minimum detectable effect for the design as planned."""
+    from .pipeline import project_dir_of
+    from .power import format_plan_text, plan_power
+
+    if sd is None:
+        raise UsageError("--sd is required: the standard deviation of the outcome in its own units "
+                         "(e.g. from a pilot or an earlier study), as in `report-kit power PATH --sd 12.5`")
+    project = project_dir_of(path)
+    step = max(1, simulate // 10)
+
+    def report(done: int, total: int) -> None:
+        if done == 1:
+            click.echo(f"simulating {total} experiments with the design's own mechanism and test…", err=True)
+        if done % step == 0 or done == total:
+            _progress(f"simulated {done}/{total} experiments")
+
+    try:
+        plan = plan_power(project, sd=sd, effect=effect, power=target_power, icc=icc, cluster_size=cluster_size,
+                          n_treated=n_treated, n_control=n_control, n_clusters=n_clusters, outcome=outcome,
+                          simulate=simulate, draws=draws, seed=seed, progress=report)
+    except UsageError as err:  # name the options as typed: `n_treated` -> --n-treated
+        import re
+
+        names = {"sd", "effect", "power", "icc", "cluster_size", "n_treated", "n_control", "n_clusters",
+                 "outcome", "simulate", "draws", "seed"}
+        text = re.sub(r"`(\w+)`", lambda m: "--" + m[1].replace("_", "-") if m[1] in names else m[0], str(err))
+        raise UsageError(text) from err
+    click.echo(json.dumps(plan.to_dict(), indent=2) if as_json else format_plan_text(plan))
+
+
+@main.command()
 def schema() -> None:
     """Print the JSON Schema of design.yaml."""
     from .spec import design_schema

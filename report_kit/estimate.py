@@ -39,7 +39,7 @@ __all__ = [
     "Noncompliance",
     "SubgroupDifference",
     "SubgroupResult",
-    "difference_in_means",
+    "neyman_difference",
     "estimate_adjusted",
     "estimate_effects",
     "estimate_noncompliance",
@@ -590,7 +590,7 @@ def _warn(message: str) -> None:
 # ---------------------------------------------------------------------------
 
 
-def difference_in_means(y, z, *, alpha: float = 0.05) -> Estimate:
+def neyman_difference(y, z, *, alpha: float = 0.05) -> Estimate:
     """Difference in means with Neyman's conservative variance (complete randomization).
 
     ``tau_hat = mean(y | z=1) - mean(y | z=0)``;

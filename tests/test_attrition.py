@@ -133,7 +133,7 @@ def test_manski_bounds_worked_example():
     assert res["upper"] - res["lower"] == pytest.approx(7.5)
 
 
-def test_manski_bounds_without_attrition_are_the_difference_in_means():
+def test_manski_bounds_without_attrition_equal_the_mean_difference():
     y = np.array([2.0, 4.0, 1.0, 3.0])
     z = np.array([1, 1, 0, 0])
     res = attrition.manski_bounds(y, z, None, -100, 100)

@@ -71,7 +71,7 @@ def test_std_diff_and_variance_ratio_match_direct_computation():
     rng = np.random.default_rng(11)
     x = rng.normal(size=(30, 2)).round(3)
     z = np.array([1, 0] * 15)
-    table = balance.balance_table(x, z, ["age", "score"])
+    table = balance.balance_rows(x, z, ["age", "score"])
     for j, row in enumerate(table):
         t = [float(v) for v in x[z == 1, j]]
         c = [float(v) for v in x[z == 0, j]]
@@ -86,7 +86,7 @@ def test_std_diff_and_variance_ratio_match_direct_computation():
 def test_missing_values_are_counted_and_skipped():
     x = np.array([1.0, np.nan, 3.0, 5.0, np.nan, np.nan, 2.0, 4.0])
     z = np.array([1, 1, 1, 1, 0, 0, 0, 0])
-    (row,) = balance.balance_table(x, z, ["baseline"])
+    (row,) = balance.balance_rows(x, z, ["baseline"])
     assert (row["missing_treated"], row["missing_control"]) == (1, 2)
     # by hand: treated {1, 3, 5} mean 3, sd 2; control {2, 4} mean 3
     assert row["mean_treated"] == 3.0 and row["mean_control"] == 3.0
@@ -102,7 +102,7 @@ def test_flags_follow_common_practice_thresholds(shift, flag):
     base = np.array([-1.0, 1.0, -1.0, 1.0]) * np.sqrt(3 / 4)
     x = np.concatenate([base + shift, base])
     z = np.array([1] * 4 + [0] * 4)
-    (row,) = balance.balance_table(x, z, ["x"])
+    (row,) = balance.balance_rows(x, z, ["x"])
     assert row["std_diff"] == pytest.approx(shift, abs=1e-12)
     assert row["flag"] == flag
 
@@ -110,7 +110,7 @@ def test_flags_follow_common_practice_thresholds(shift, flag):
 def test_constant_covariate_warns_and_gives_none():
     z = np.array([1, 1, 0, 0])
     with pytest.warns(ReportKitWarning, match="constant within both arms"):
-        (row,) = balance.balance_table(np.ones(4), z, ["k"])
+        (row,) = balance.balance_rows(np.ones(4), z, ["k"])
     assert row["std_diff"] is None and row["variance_ratio"] is None and row["flag"] is None
     json.dumps(row, allow_nan=False)
 
@@ -118,15 +118,15 @@ def test_constant_covariate_warns_and_gives_none():
 def test_balance_table_validation_messages():
     z = np.array([1, 0, 1, 0])
     with pytest.raises(UsageError, match=r"`names` must have 2 entries"):
-        balance.balance_table(np.zeros((4, 2)), z, ["a"])
+        balance.balance_rows(np.zeros((4, 2)), z, ["a"])
     with pytest.raises(DataError, match=r"`z` must contain only 0 and 1; got 2"):
-        balance.balance_table(np.zeros(4), [1, 0, 2, 0], ["a"])
+        balance.balance_rows(np.zeros(4), [1, 0, 2, 0], ["a"])
     with pytest.raises(DesignError, match="at least one treated and one control"):
-        balance.balance_table(np.zeros(4), [1, 1, 1, 1], ["a"])
+        balance.balance_rows(np.zeros(4), [1, 1, 1, 1], ["a"])
     with pytest.raises(DataError, match=r"`X` must have shape \(n, p\) with n = 4"):
-        balance.balance_table(np.zeros((3, 1)), z, ["a"])
+        balance.balance_rows(np.zeros((3, 1)), z, ["a"])
     with pytest.raises(UsageError, match="`names` must be unique"):
-        balance.balance_table(np.zeros((4, 2)), z, ["a", "a"])
+        balance.balance_rows(np.zeros((4, 2)), z, ["a", "a"])
 
 
 # ---------------------------------------------------------------------------

@@ -26,7 +26,7 @@ from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageErr
 from report_kit.estimate import (
     ESTIMATE_KEYS,
     Estimate,
-    difference_in_means,
+    neyman_difference,
     estimate_adjusted,
     estimate_effects,
     estimate_noncompliance,
@@ -250,10 +250,10 @@ def test_welch_df_and_interval_match_scipy_welch_test():
     assert (est.ci_low, est.ci_high) == pytest.approx((ci.low, ci.high), rel=1e-10)
 
 
-def test_difference_in_means_and_bernoulli_agree_with_complete():
+def test_neyman_difference_and_bernoulli_agree_with_complete():
     y, z = complete_data()
     base = estimate_effects(y, z, mechanism="complete")[0]
-    assert difference_in_means(y, z) == base
+    assert neyman_difference(y, z) == base
     bern = estimate_effects(y, z, mechanism="bernoulli")[0]
     assert bern.estimate == base.estimate and bern.std_error == base.std_error
 
