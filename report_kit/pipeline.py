@@ -23,7 +23,7 @@ import numpy as np
 from . import provenance
 from .analysis import Analysis, analyse
 from .data import load_study
-from .errors import UsageError
+from .errors import SpecError, UsageError
 from .model import Study
 from .spec import SPEC_FILENAME, load_spec
 
@@ -56,12 +56,12 @@ def project_dir_of(path: Path | str) -> Path:
     """Check that ``path`` is a project folder (holds design.yaml) and return it resolved."""
     path = Path(path)
     if not path.exists():
-        raise UsageError(f"{path}: no such folder")
+        raise SpecError(f"{path}: no such project folder")
     if path.is_file() and path.name == SPEC_FILENAME:
         path = path.parent
     if not path.is_dir() or not (path / SPEC_FILENAME).is_file():
-        raise UsageError(f"{path}: not a project folder (no {SPEC_FILENAME} inside); "
-                         "create one with `report-kit new PATH`")
+        raise SpecError(f"{path}: not a project folder (no {SPEC_FILENAME} inside); "
+                        "create one with `report-kit new PATH`")
     return path.resolve()
 
 

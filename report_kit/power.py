@@ -923,6 +923,7 @@ def format_plan_text(plan: PowerPlan) -> str:
         at = "the MDE" if sim["effect_from"] == "mde" else "effect"
         test = "exact" if sim["test_method"] == "exact" else f"{sim['draws']} draws"
         lines.append(f"  simulated      {sim['power']:.3f} (Monte Carlo SE {sim['mc_std_error']:.3f}) at {at} "
-                     f"{_g(sim['effect'])}: {sim['n_sims']} experiments drawn by the design's mechanism, "
-                     f"each with its randomization test ({sim['statistic']}, {test}); seed {sim['seed']}")
+                     f"{_g(sim['effect'])}")
+        lines.append(f"                 {sim['n_sims']} experiments drawn by the design's mechanism, each with its "
+                     f"randomization test ({sim['statistic']}, {test}); seed {sim['seed']}")
     return "\n".join(lines)

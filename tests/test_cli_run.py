@@ -98,7 +98,7 @@ def test_failed_run_keeps_earlier_run(project_copy):
 def test_wrong_path_exits_1_without_traceback(tmp_path):
     done = subprocess.run([sys.executable, "-m", "report_kit.cli", "run", str(tmp_path / "nope")],
                           capture_output=True, text=True)
-    assert done.returncode == 2 and "no such folder" in done.stderr and "Traceback" not in done.stderr
+    assert done.returncode == 1 and "no such project folder" in done.stderr and "Traceback" not in done.stderr
 
 
 def test_invalid_spec_exits_1(project_copy):

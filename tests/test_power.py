@@ -320,8 +320,11 @@ def test_plan_power_library_messages(tmp_path):
     clubs = copy_project("tutoring-clubs", tmp_path)
     with pytest.raises(UsageError, match=r"cannot simulate: a blocked cluster design needs its blocks"):
         pw.plan_power(without_data(clubs), sd=1, icc=0.1, n_clusters=20, cluster_size=10, simulate=5)
-    share = edit_design(without_data(copy_project("arrival-signs", tmp_path / "b")),
-                        lambda d: d.update(mechanism="complete", probability=0.5) or d.pop("block"))
+    def complete_at_one_half(design):
+        design.update(mechanism="complete", probability=0.5)
+        del design["block"]
+
+    share = edit_design(without_data(copy_project("arrival-signs", tmp_path / "b")), complete_at_one_half)
     with pytest.raises(UsageError, match=r"design.probability 0.5 treats 5 of 10 units; the planned sizes treat 4"):
         pw.plan_power(share, sd=1, n_treated=4, n_control=6)
 
