@@ -31,10 +31,10 @@ def _figure(height: float, width: float = 7.0):
 
 
 METHOD_SHORT = {
-    "neyman": "difference in means",
-    "blocked_neyman": "block-weighted",
-    "paired": "paired",
-    "cr2": "difference in means (CR2)",
+    "neyman": "Difference in means",
+    "blocked_neyman": "Block-weighted",
+    "paired": "Paired",
+    "cr2": "Difference in means (CR2)",
     "horvitz_thompson": "Horvitz–Thompson",
     "lin_hc2": "Lin adjusted",
     "lin_cr2": "Lin adjusted (CR2)",

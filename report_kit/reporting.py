@@ -82,6 +82,12 @@ def fmt_p(p) -> str:
     return "< 0.001" if p < 0.001 else f"{p:.3f}"
 
 
+def p_phrase(p) -> str:
+    """'p = 0.058' or 'p < 0.001' for running text."""
+    text = fmt_p(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
+
+
 def table_html(frame: pd.DataFrame, *, caption: str = "", note: str = "", numeric_digits: int = 3) -> str:
     """A plain HTML table in the report's own style (class ``rk-table``)."""
     head = "".join(f"<th>{html.escape(str(c))}</th>" for c in frame.columns)

@@ -10,7 +10,7 @@ compare_to = ""
 import pandas as pd
 
 from report_kit.figures import randomization_plot
-from report_kit.reporting import RunView, fmt_p, say, show_figure, show_table
+from report_kit.reporting import RunView, fmt_p, p_phrase, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -69,4 +69,4 @@ for o in view.spec.outcomes:
                              statistic=row["statistic"], method=row["method"], count_text=count)
     show_figure(view, fig, f"randomization_{o.column}",
                 caption=f"{o.label}: the statistic under every re-randomization if there were no effect "
-                        f"(grey) and as observed (line); p = {fmt_p(row['p_value'])}.")
+                        f"(grey) and as observed (line); {p_phrase(row['p_value'])}.")

@@ -10,7 +10,7 @@ compare_to = ""
 import pandas as pd
 
 from report_kit.figures_checks import plot_balance
-from report_kit.reporting import RunView, fmt_p, say, show_figure, show_table
+from report_kit.reporting import RunView, fmt_p, p_phrase, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -36,7 +36,7 @@ if bal["covariates"]:
         say(f"**Joint check.** The Mahalanobis distance between the arms' covariate means is "
             f"{omni['statistic']:.3f}; under the real assignment mechanism "
             f"({reference}) "
-            f"a distance at least this large has probability {fmt_p(omni['p_value'])} (Morgan & Rubin 2012). "
+            f"a distance at least this large has probability {fmt_p(omni['p_value']).replace('< ', 'below ')} (Morgan & Rubin 2012). "
             "A small value points to chance imbalance or a problem in how the assignment was carried out.")
     show_figure(view, plot_balance(bal), "balance", caption="Standardized differences by covariate.")
 else:
@@ -67,7 +67,7 @@ if att:
     say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of treated and "
         f"{100 * att['rate_control']:.1f}% of control units "
         f"(a unit counts as lost when any of {', '.join(att.get('attrited_if_missing', []))} is missing). "
-        f"Randomization test of equal attrition: p = {fmt_p(att['p_value'])}.")
+        f"Randomization test of equal attrition: {p_phrase(att['p_value'])}.")
     bounds = pd.DataFrame(att.get("bounds") or [])
     if len(bounds):
         words = {"lee": "Lee (2009) trimming", "manski": "Manski worst case (declared range)"}
