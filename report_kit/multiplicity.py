@@ -8,13 +8,14 @@ exploratory) are adjusted separately.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
 from .balance import TIE_RTOL, _check_method
-from .errors import DataError, DesignError, UsageError
+from .errors import DataError, DesignError, ReportKitWarning, UsageError
 from .model import FAMILIES, MULTIPLICITY
 
 __all__ = [
@@ -260,15 +261,43 @@ def _main_test(tests: Sequence[Mapping], spec) -> Mapping | None:
     return found[0] if found else None
 
 
+def _usable_shared(shared: SharedNull, tested: list[str]) -> SharedNull | None:
+    """The shared draws of the outcomes that have a test, on the draws where all of them are defined.
+
+    An outcome without a test (no observed unit in an arm) is left out, and so
+    is a draw under which some statistic is undefined (e.g. a Bernoulli draw
+    with an empty arm), as the raw randomization p-values count only draws
+    with a defined statistic. ``None`` when nothing is left to adjust.
+    """
+    index = {name: j for j, name in enumerate(shared.outcomes)}
+    absent = [c for c in tested if c not in index]
+    if absent:
+        raise UsageError(f"shared null draws cover outcomes {list(shared.outcomes)}; "
+                         f"the family's tested outcomes {absent} are not among them")
+    if not tested:
+        return None
+    cols = [index[c] for c in tested]
+    null = np.asarray(shared.null, dtype=float)[:, cols]
+    keep = np.isfinite(null).all(axis=1)
+    if not keep.all():
+        warnings.warn(f"Westfall–Young adjustment: {int((~keep).sum())} of {keep.size} assignment draws leave "
+                      "a test statistic undefined (an arm without observed units) and are left out",
+                      ReportKitWarning, stacklevel=3)
+        if not keep.any():
+            return None
+    weights = None if shared.weights is None else np.asarray(shared.weights, dtype=float)[keep]
+    return SharedNull(outcomes=tuple(tested), observed=np.asarray(shared.observed, dtype=float)[cols],
+                      null=null[keep], method=shared.method, kind=shared.kind, weights=weights)
+
+
 def _family_adjustments(columns, pvals, shared: SharedNull | None) -> dict[str, dict[str, float]]:
     tested = [c for c in columns if pvals[c] is not None]
     p = np.array([pvals[c] for c in tested], dtype=float)
     out = {"holm": dict(zip(tested, holm(p).tolist())),
            "bh": dict(zip(tested, benjamini_hochberg(p).tolist()))}
     if shared is not None:
-        if sorted(shared.outcomes) != sorted(tested):
-            raise UsageError(f"shared null draws cover outcomes {list(shared.outcomes)}; "
-                             f"the family's tested outcomes are {tested}")
+        shared = _usable_shared(shared, tested)
+    if shared is not None:
         adj = westfall_young(shared.observed, shared.null, method=shared.method, kind=shared.kind,
                              weights=shared.weights)
         out["westfall_young"] = dict(zip(shared.outcomes, adj.tolist()))

@@ -9,8 +9,11 @@ path, what was found and what was expected. The result is a frozen
 
 from __future__ import annotations
 
+import datetime
 import difflib
 import json
+import math
+import posixpath
 from functools import lru_cache
 from importlib import resources
 from pathlib import Path
@@ -59,31 +62,86 @@ def load_spec(project: Path | str) -> Spec:
     if not path.exists():
         raise SpecError(f"{path}: no design spec found (expected a file named {SPEC_FILENAME})")
     doc = _parse_yaml(path)
-    problems = schema_problems(doc) or cross_field_problems(doc)
+    problems = (non_finite_problems(doc) + schema_problems(doc)) or cross_field_problems(doc)
     if problems:
         lines = "\n".join(f"  {path}: {p}" for p in problems)
         raise SpecError(f"{path}: the design spec is invalid ({len(problems)} problem(s)):\n{lines}")
     return _build_spec(path.resolve(), doc)
 
 
+class _StrictLoader(yaml.SafeLoader):
+    """``yaml.SafeLoader`` that refuses a key given twice in one mapping.
+
+    Plain YAML loaders keep the last value silently, so a plan with two
+    ``alpha:`` lines would quietly use the second one.
+    """
+
+    def construct_mapping(self, node, deep=False):
+        if isinstance(node, yaml.MappingNode):
+            seen: dict = {}
+            for key_node, _ in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge":
+                    continue
+                key = self.construct_object(key_node, deep=True)
+                try:
+                    first = seen.get(key)
+                except TypeError:  # an unhashable key; the base class reports it
+                    continue
+                if first is not None:
+                    raise yaml.constructor.ConstructorError(
+                        None, None, f"the key {key!r} appears twice in one mapping (first on line {first}); "
+                        "give each key once", key_node.start_mark)
+                seen[key] = key_node.start_mark.line + 1
+        return super().construct_mapping(node, deep=deep)
+
+
 def _parse_yaml(path: Path) -> dict:
     try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as err:
-        raise SpecError(f"{path}: cannot read the design spec: {err}") from err
+        raw = path.read_bytes()
+    except IsADirectoryError as err:
+        raise SpecError(f"{path}: is a folder, not a file; the design spec must be a YAML file") from err
+    except OSError as err:
+        reason = "permission denied" if isinstance(err, PermissionError) else (err.strerror or str(err))
+        raise SpecError(f"{path}: cannot read the design spec ({reason})") from err
     try:
-        doc = yaml.safe_load(text)
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as err:
+        line = raw[:err.start].count(b"\n") + 1
+        raise SpecError(f"{path}: is not UTF-8 text (byte 0x{raw[err.start]:02x} on line {line} is not valid "
+                        "UTF-8); save the design spec with UTF-8 encoding") from err
+    try:
+        doc = yaml.load(text, Loader=_StrictLoader)  # noqa: S506 - a SafeLoader subclass
     except yaml.YAMLError as err:
         mark = getattr(err, "problem_mark", None)
         where = f" (line {mark.line + 1}, column {mark.column + 1})" if mark else ""
         problem = getattr(err, "problem", None) or str(err)
+        if "\t" in problem or "'\\t'" in problem:
+            problem += " (YAML indents with spaces, not tabs)"
         raise SpecError(f"{path}: not valid YAML{where}: {problem}") from err
+    if doc is None:
+        raise SpecError(f"{path}: the design spec is empty; expected a mapping of keys such as "
+                        "'spec_version', 'title', 'data', 'design', 'outcomes' (`report-kit new` writes a "
+                        "commented example)")
     if not isinstance(doc, dict):
         raise SpecError(f"{path}: (top level): found {_describe(doc)}; expected a mapping of keys such as 'spec_version', 'title', 'data'")
     return doc
 
 
 # --------------------------------------------------------------------------- schema errors
+
+
+def non_finite_problems(doc, where: str = "(top level)") -> list[str]:
+    """Numbers that are not finite (``.nan``, ``.inf``): JSON Schema bounds cannot catch them."""
+    if isinstance(doc, float) and not math.isfinite(doc):
+        return [f"{where}: found {_describe(doc)}; expected a finite number"]
+    problems: list[str] = []
+    if isinstance(doc, dict):
+        for key, value in doc.items():
+            problems += non_finite_problems(value, _join(where, str(key)))
+    elif isinstance(doc, list):
+        for i, value in enumerate(doc):
+            problems += non_finite_problems(value, f"{'' if where == '(top level)' else where}[{i}]")
+    return problems
 
 
 def schema_problems(doc: dict) -> list[str]:
@@ -108,6 +166,8 @@ def _key_path(parts) -> str:
 def _describe(value) -> str:
     if value is None:
         return "nothing (null)"
+    if isinstance(value, (datetime.date, datetime.datetime)):
+        return f"{value.isoformat()} (a date; put it in quotes to use it as text)"
     kind = {bool: "true/false", int: "a whole number", float: "a number", str: "text",
             list: "a list", dict: "a mapping"}.get(type(value), type(value).__name__)
     shown = repr(value) if not isinstance(value, (list, dict)) else kind
@@ -123,7 +183,7 @@ def _translate(err: jsonschema.ValidationError) -> list[str]:
     kind, value, inst = err.validator, err.validator_value, err.instance
     if kind == "additionalProperties":
         allowed = sorted(err.schema.get("properties", {}))
-        return [_unknown_key(where, key, allowed) for key in sorted(inst) if key not in allowed]
+        return [_unknown_key(where, key, allowed) for key in sorted(inst, key=str) if key not in allowed]
     if kind == "required":
         missing = [k for k in value if k not in inst]
         return [f"{_join(where, k)}: missing required key '{k}'" for k in missing]
@@ -180,6 +240,7 @@ def cross_field_problems(doc: dict) -> list[str]:
     if "cluster" in design and mech not in _NEEDS_CLUSTER:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
+    problems += _role_problems(doc)
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
         col = outcome["column"]
@@ -189,6 +250,68 @@ def cross_field_problems(doc: dict) -> list[str]:
         rng = outcome.get("range")
         if rng is not None and not rng[0] < rng[1]:
             problems.append(f"outcomes[{i}].range: found {rng}; expected [min, max] with min < max")
+    return problems
+
+
+def _repeats(where: str, items: list) -> list[str]:
+    first: dict = {}
+    problems = []
+    for i, item in enumerate(items):
+        if item in first:
+            problems.append(f"{where}[{i}]: '{item}' is already {where}[{first[item]}]; list each once")
+        first.setdefault(item, i)
+    return problems
+
+
+def _role_problems(doc: dict) -> list[str]:
+    """A column plays one role: the id, the treatment, an outcome and a covariate are different columns."""
+    data, design, analysis = doc["data"], doc["design"], doc.get("analysis", {})
+    roles = {data["id"]: "data.id", design["treatment"]: "design.treatment"}
+    problems = []
+    if design["treatment"] == data["id"]:
+        problems.append(f"design.treatment: '{design['treatment']}' is also data.id; the treatment needs its "
+                        "own 0/1 column")
+    for key in ("block", "cluster"):
+        col = design.get(key)
+        if col is not None and col in roles:
+            problems.append(f"design.{key}: '{col}' is also {roles[col]}; expected a column of {key} labels")
+    if design.get("block") is not None and design.get("block") == design.get("cluster"):
+        problems.append(f"design.cluster: '{design['cluster']}' is also design.block; clusters sit inside "
+                        "blocks, so they need their own column")
+    for key in ("block", "cluster"):
+        if design.get(key) is not None:
+            roles.setdefault(design[key], f"design.{key}")
+    outcome_of = {}
+    for i, outcome in enumerate(doc["outcomes"]):
+        col = outcome["column"]
+        if col in roles:
+            problems.append(f"outcomes[{i}].column: '{col}' is also {roles[col]}; an outcome is a result "
+                            "measured after assignment")
+        outcome_of.setdefault(col, f"outcomes[{i}].column")
+    covariates = analysis.get("covariates", [])
+    for i, col in enumerate(covariates):
+        other = roles.get(col) or outcome_of.get(col)
+        if other:
+            problems.append(f"analysis.covariates[{i}]: '{col}' is also {other}; covariates are baseline "
+                            "measurements taken before assignment")
+    problems += _repeats("analysis.covariates", covariates)
+    received = doc.get("compliance", {}).get("received")
+    if received is not None and (received == data["id"] or received in outcome_of):
+        problems.append(f"compliance.received: '{received}' is also "
+                        f"{'data.id' if received == data['id'] else outcome_of[received]}; expected the 0/1 "
+                        "column of treatment actually received")
+    for i, col in enumerate(doc.get("subgroups", [])):
+        if col in (data["id"], design["treatment"]) or col in outcome_of:
+            other = roles.get(col) or outcome_of.get(col)
+            problems.append(f"subgroups[{i}]: '{col}' is also {other}; subgroups are baseline "
+                            "characteristics")
+    problems += _repeats("subgroups", doc.get("subgroups", []))
+    units = posixpath.normpath(data["units"])
+    merge = data.get("merge", [])
+    for i, rel in enumerate(merge):
+        if posixpath.normpath(rel) == units:
+            problems.append(f"data.merge[{i}]: '{rel}' is data.units; list only further tables to join")
+    problems += _repeats("data.merge", [posixpath.normpath(r) for r in merge])
     return problems
 
 
@@ -216,7 +339,8 @@ def _build_spec(path: Path, doc: dict) -> Spec:
         design=DesignSpec(
             mechanism=design["mechanism"], treatment=design["treatment"],
             block=design.get("block"), cluster=design.get("cluster"),
-            probability=design.get("probability"), seed=design.get("seed"),
+            probability=design.get("probability"),
+            seed=None if design.get("seed") is None else int(design["seed"]),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
