@@ -74,16 +74,17 @@ def check(path: Path) -> None:
     study = load_project(path)
     d = study.spec.design
     z = study.z
+    result = check_assignment(study)
+    if result.status == "mismatch":
+        click.echo(result.describe(), err=True)
+        raise ReportKitError(f"{study.spec.path}: design.seed does not reproduce column "
+                             f"'{d.treatment}' ({len(result.differing_ids)} unit(s) differ)")
     click.echo(f"ok: {study.spec.path}")
     click.echo(f"  {len(z)} units ({int(z.sum())} treated, {len(z) - int(z.sum())} control), "
                f"mechanism {d.mechanism}, {len(study.spec.outcomes)} outcome(s)")
     for f in study.inputs:
         click.echo(f"  input {f.path}: {f.rows} rows, sha256 {f.sha256[:16]}…")
-    result = check_assignment(study)
     click.echo(f"  {result.describe()}")
-    if result.status == "mismatch":
-        raise ReportKitError(f"{study.spec.path}: design.seed does not reproduce column "
-                             f"'{d.treatment}' ({len(result.differing_ids)} unit(s) differ)")
 
 
 @main.command()

@@ -1060,7 +1060,9 @@ def study_estimates(study) -> list[dict]:
         rows += [_row(outcome.column, est, effect) for est in estimate_effects(y, z, **kw)]
         if X is not None:
             _check_covariates(study, outcome.column, covariates, y, X)
-            rows.append(_row(outcome.column, estimate_adjusted(y, z, X, **kw), effect))
+            adjusted = _adjusted_or_note(outcome.column, y, z, X, kw)
+            if adjusted is not None:
+                rows.append(_row(outcome.column, adjusted, effect))
         if compliance is not None:
             d = study.frame[compliance.received].to_numpy(dtype=float)
             cace = estimate_noncompliance(y, z, d, **kw).cace
@@ -1097,6 +1099,20 @@ def study_subgroup_differences(study) -> list[dict]:
                              "subgroup": f"{column}={item.pop('level')}",
                              "reference": f"{column}={item.pop('reference')}", **item})
     return rows
+
+
+def _adjusted_or_note(column: str, y, z, X, kw: dict) -> Estimate | None:
+    """The Lin estimate, or None with a warning when the design cannot carry the regression.
+
+    Too many covariates for the units (or a degenerate design) must not cost the
+    report its unadjusted estimates, which are the primary analysis.
+    """
+    try:
+        return estimate_adjusted(y, z, X, **kw)
+    except DesignError as err:
+        warnings.warn(f"outcome '{column}': no covariate-adjusted estimate ({err}); "
+                      "reduce analysis.covariates or set analysis.adjust: false", ReportKitWarning, stacklevel=3)
+        return None
 
 
 def _study_design(study) -> dict:

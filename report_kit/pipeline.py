@@ -59,7 +59,7 @@ def project_dir_of(path: Path | str) -> Path:
         raise SpecError(f"{path}: no such project folder")
     if path.is_file() and path.name == SPEC_FILENAME:
         path = path.parent
-    if not path.is_dir() or not (path / SPEC_FILENAME).is_file():
+    if not path.is_dir() or not (path / SPEC_FILENAME).exists():
         raise SpecError(f"{path}: not a project folder (no {SPEC_FILENAME} inside); "
                         "create one with `report-kit new PATH`")
     return path.resolve()

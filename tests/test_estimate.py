@@ -1041,3 +1041,19 @@ def test_compliance_rates_match_group_means():
     got = compliance_rates(z, d)
     assert got["rate_treated"] == pytest.approx(means[1]) and got["rate_control"] == pytest.approx(means[0])
     assert (got["n_treated"], got["n_control"]) == (3, 5)
+
+
+def test_study_estimates_keeps_unadjusted_when_lin_cannot_be_fitted():
+    # 12 units and 8 covariates: the interacted regression has more coefficients than units.
+    rng = np.random.default_rng(8)
+    z = np.array([1, 0] * 6)
+    frame = pd.DataFrame({"unit_id": np.arange(12), "assigned": z, "score": rng.normal(size=12) + z})
+    names = [f"x{k}" for k in range(8)]
+    for name in names:
+        frame[name] = rng.normal(size=12)
+    with pytest.warns(ReportKitWarning) as caught:
+        rows = study_estimates(make_study(frame, covariates=names))
+    assert any("no covariate-adjusted estimate" in str(w.message) for w in caught)
+    assert [r["estimator"] for r in rows] == ["unadjusted"]
+    y1, y0 = frame["score"][z == 1], frame["score"][z == 0]
+    assert rows[0]["estimate"] == pytest.approx(y1.mean() - y0.mean())  # direct group means
