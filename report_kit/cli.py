@@ -22,6 +22,20 @@ def _progress(message: str) -> None:
     click.echo(f"  · {message}", err=True)
 
 
+def _plan_line(project: Path) -> str:
+    """One line on the plan lock: absent, kept, or how many keys changed since."""
+    from .planlock import plan_deviations
+
+    dev = plan_deviations(project)
+    if not dev["locked"]:
+        return "plan: not locked (report-kit lock PATH freezes design.yaml before outcomes are analysed)"
+    changes = dev["changes"]
+    if not changes:
+        return f"plan: locked on {dev['locked_at']}; design.yaml unchanged since"
+    keys = ", ".join(c["key"] for c in changes[:5]) + (" …" if len(changes) > 5 else "")
+    return f"plan: locked on {dev['locked_at']}; {len(changes)} key(s) changed since: {keys}"
+
+
 def _fail(err: Exception, code: int) -> None:
     click.echo(f"report-kit: error: {err}", err=True)
     sys.exit(code)
@@ -39,6 +53,11 @@ class Group(click.Group):
             raise
         except KeyboardInterrupt:
             _fail(Exception("interrupted; no run folder was left behind"), 130)
+        except BrokenPipeError:
+            # The reader went away (e.g. `report-kit diff A B | head`): stop quietly.
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+            sys.exit(0)
         except Exception as err:  # noqa: BLE001 - the last line of defence against tracebacks
             if os.environ.get("REPORT_KIT_DEBUG") == "1":
                 raise
@@ -52,7 +71,7 @@ def main() -> None:
     """report-kit: randomized-experiment analysis from a project folder to an audited report."""
 
 
-@main.command()
+@main.command(short_help="Scaffold a project folder with a commented design.yaml.")
 @click.argument("path", type=click.Path(path_type=Path))
 @click.option("--title", help="Title written into design.yaml.")
 def new(path: Path, title: str | None) -> None:
@@ -64,7 +83,7 @@ def new(path: Path, title: str | None) -> None:
     click.echo(f"next: edit design.yaml, then `report-kit check {created}`")
 
 
-@main.command()
+@main.command(short_help="Validate spec and data, verify the assignment; write nothing.")
 @click.argument("path", type=click.Path(path_type=Path))
 def check(path: Path) -> None:
     """Validate the spec and the data and verify the assignment; write nothing."""
@@ -85,9 +104,10 @@ def check(path: Path) -> None:
     for f in study.inputs:
         click.echo(f"  input {f.path}: {f.rows} rows, sha256 {f.sha256[:16]}…")
     click.echo(f"  {result.describe()}")
+    click.echo(f"  {_plan_line(study.spec.project_dir)}")
 
 
-@main.command()
+@main.command(short_help="Draw the assignment from design.seed into data/.")
 @click.argument("path", type=click.Path(path_type=Path))
 @click.option("-o", "--output", type=click.Path(path_type=Path), help="Where to write (default data/assignment.csv).")
 @click.option("--force", is_flag=True, help="Overwrite an existing assignment file.")
@@ -104,7 +124,7 @@ def assign(path: Path, output: Path | None, force: bool) -> None:
     click.echo(f"wrote {target} ({len(frame)} units, drawn from design.seed {spec.design.seed})")
 
 
-@main.command()
+@main.command(short_help="Analyse, execute the report notebooks, render to runs/<run-id>/.")
 @click.argument("path", type=click.Path(path_type=Path))
 @click.option("--renderer", type=click.Choice(["builtin", "quarto"]), default=None,
               help="builtin (nbconvert + weasyprint, default) or quarto (when on PATH).")
@@ -116,14 +136,17 @@ def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool)
 
     options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
                          argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
-    outcome = run_project(path, options, progress=_progress,
-                          on_run_id=lambda d: click.echo(f"report: {d}/report.html"))
+    def announce(run_dir: str) -> None:
+        click.echo(f"report: {run_dir}/report.html")
+        _progress(_plan_line(Path(run_dir).parent.parent))
+
+    outcome = run_project(path, options, progress=_progress, on_run_id=announce)
     click.echo(f"done: {outcome.report_html}")
     if outcome.report_pdf:
         click.echo(f"      {outcome.report_pdf}")
 
 
-@main.command()
+@main.command(short_help="What changed between two runs: inputs and results.")
 @click.argument("run_a", type=click.Path(path_type=Path))
 @click.argument("run_b", type=click.Path(path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print the differences as JSON.")
@@ -142,7 +165,7 @@ def diff(run_a: Path, run_b: Path, as_json: bool, max_items: int) -> None:
             click.echo(click.style(line, bold=True) if emphasised else line)
 
 
-@main.command()
+@main.command(short_help="Re-run a run (or archive) from its recorded inputs; exit 3 on a difference.")
 @click.argument("target", type=click.Path(path_type=Path))
 def verify(target: Path) -> None:
     """Re-run a run folder (or an archive .zip) from its recorded inputs; exit 3 on any difference."""
@@ -157,7 +180,7 @@ def verify(target: Path) -> None:
         raise VerificationError("verification found differences (listed above)")
 
 
-@main.command()
+@main.command(short_help="Zip a run with its inputs, manifest, RO-Crate and checksums.")
 @click.argument("run_dir", type=click.Path(path_type=Path))
 @click.option("-o", "--output", type=click.Path(path_type=Path), help="Zip file to write (default: beside the run).")
 def archive(run_dir: Path, output: Path | None) -> None:
@@ -167,7 +190,7 @@ def archive(run_dir: Path, output: Path | None) -> None:
     click.echo(f"archived: {archive_run(run_dir, output)}")
 
 
-@main.command()
+@main.command(short_help="Freeze design.yaml as the plan (design.lock).")
 @click.argument("path", type=click.Path(path_type=Path))
 @click.option("--force", is_flag=True, help="Replace an existing lock (the report will show the new one).")
 def lock(path: Path, force: bool) -> None:
@@ -178,7 +201,7 @@ def lock(path: Path, force: bool) -> None:
     click.echo(f"locked: {lock_plan(project_dir_of(path), force=force)}")
 
 
-@main.command()
+@main.command(short_help="Power and minimum detectable effect for the design as planned.")
 @click.argument("path", type=click.Path(path_type=Path))
 @click.option("--sd", type=float, help="Standard deviation of the outcome, in its own units (required).")
 @click.option("--effect", type=float, help="Effect to compute the power for (outcome units).")
@@ -230,7 +253,7 @@ def power(path: Path, sd: float | None, effect: float | None, target_power: floa
     click.echo(json.dumps(plan.to_dict(), indent=2) if as_json else format_plan_text(plan))
 
 
-@main.command()
+@main.command(short_help="Print the JSON Schema of design.yaml.")
 def schema() -> None:
     """Print the JSON Schema of design.yaml."""
     from .spec import design_schema

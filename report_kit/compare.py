@@ -35,6 +35,11 @@ __all__ = [
 ]
 
 DIFF_SCHEMA = "report-kit/diff/1"
+#: Results that differ by less than this (relative, or absolute near zero) are not
+#: reported as moved: floating-point noise from a different summation order. Same
+#: tolerance as `report-kit verify`.
+RESULT_RTOL = 1e-9
+RESULT_ATOL = 1e-12
 DEFAULT_ALPHA = 0.05
 #: At most this many changed cells and added/removed ids are kept per table.
 CELL_LIMIT = 1000
@@ -711,7 +716,8 @@ def compare_runs(run_a: Path | str, run_b: Path | str, *, alpha: float | None = 
     return RunDiff(
         run_a=a.run_id, run_b=b.run_id, alpha=float(alpha), inputs=inputs,
         design_changes=design_keys,
-        results=diff_results(_without_inputs(a.results), _without_inputs(b.results)),
+        results=diff_results(_without_inputs(a.results), _without_inputs(b.results),
+                             rel_tol=RESULT_RTOL, abs_tol=RESULT_ATOL),
         conclusions=tuple(conclusion_changes(a.results, b.results, alpha)),
     )
 

@@ -72,6 +72,12 @@ def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, leve
         ax.tick_params(axis="x", labelsize=8)
         ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold")
     axes[-1, 0].set_xlabel(f"Effect with {level}% confidence interval, in each outcome's own units", fontsize=8)
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], color=INK, marker="s", linewidth=2.2, label="unadjusted"),
+               Line2D([], [], color=ACCENT, marker="s", linewidth=2.2, label="covariate-adjusted")]
+    axes[0, 0].legend(handles=handles, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, frameon=False,
+                      fontsize=7.5)
     fig.tight_layout()
     return fig
 

@@ -90,7 +90,7 @@ def lock_plan(project_dir: Path | str, *, force: bool = False) -> Path:
     lock = project / LOCK_NAME
     if lock.exists() and not force:
         raise UsageError(f"{lock} already exists; the plan is locked "
-                         "(remove the file or pass force=True to lock again)")
+                         "(pass --force to lock again; the report will then compare with the new lock)")
     spec_path = project / SPEC_NAME
     data = spec_path.read_bytes()
     text = _decode(data, spec_path)

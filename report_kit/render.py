@@ -123,9 +123,16 @@ def page_html(title: str, body: str, *, stamp: str) -> str:
     )
 
 
+def run_id_of(run_dir: Path) -> str:
+    """The run id as the final folder will be named (the build folder is ``.partial-<id>-<random>``)."""
+    name = run_dir.name
+    if name.startswith(".partial-"):
+        name = name[len(".partial-"):].rsplit("-", 1)[0]
+    return name
+
+
 def render_builtin(notebooks: list[Path], run_dir: Path, *, title: str, pdf: bool) -> None:
-    stamp = f"Run {run_dir.name.split('-')[1] if '-' in run_dir.name else run_dir.name} · " \
-            f"{datetime.now(timezone.utc).strftime('%d %B %Y, %H:%M UTC')}"
+    stamp = f"Run {run_id_of(run_dir)} · {datetime.now(timezone.utc).strftime('%d %B %Y, %H:%M UTC')}"
     page = page_html(title, body_html(combine(notebooks)), stamp=stamp)
     (run_dir / "report.html").write_text(page, encoding="utf-8")
     if pdf:

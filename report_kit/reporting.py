@@ -24,9 +24,42 @@ CAUTIONS = (
     "free of harm. Read every estimate with its confidence interval.",
     "Trials that involve people follow their ethics approval, their consent procedures and local "
     "regulations; nothing in this report replaces them.",
-    "This report follows the registered analysis plan in design.yaml. Where it and the study's "
-    "statistician or registered protocol disagree, defer to them.",
+    "This report applies the analysis plan written in design.yaml{plan_status}. Where the study's "
+    "statistician or its registered protocol say otherwise, defer to them.",
 )
+
+LEAD_METHODS = ("neyman", "blocked_neyman", "paired", "cr2")
+
+
+def plan_status(deviations: dict) -> str:
+    """The clause saying whether the plan was locked and kept, for the third caution."""
+    if not deviations.get("locked"):
+        return ", which was not locked before the analysis (see Deviations from the plan)"
+    changes = len(deviations.get("changes") or [])
+    when = deviations.get("locked_at") or "an earlier date"
+    if changes == 0:
+        return f", locked on {when} and unchanged since"
+    return f", locked on {when}; {changes} key(s) changed since — see Deviations from the plan"
+
+
+def cautions(deviations: dict) -> tuple[str, ...]:
+    """The report's standing cautions, the last one stating the plan-lock status."""
+    return CAUTIONS[:-1] + (CAUTIONS[-1].format(plan_status=plan_status(deviations)),)
+
+
+def estimate_role(row: dict, first_seen: set) -> str:
+    """'lead' for the first design-based unadjusted estimate of an outcome, else its role.
+
+    The lead is the estimator the design implies (Neyman, block-weighted, paired,
+    or CR2 for clusters); Lin is 'adjusted'; Horvitz–Thompson is a 'check'.
+    """
+    key = (row["outcome"], row["estimand"], row.get("subgroup"))
+    if row.get("method") in LEAD_METHODS and row["estimator"] == "unadjusted" and key not in first_seen:
+        first_seen.add(key)
+        return "lead"
+    if row["estimator"] == "adjusted":
+        return "adjusted"
+    return "check" if row.get("method") == "horvitz_thompson" else ""
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -11,7 +11,7 @@ from .errors import UsageError
 
 DESIGN_TEMPLATE = """\
 # design.yaml: the pre-analysis plan of this study, read by report-kit.
-# Every key is documented in docs/spec.md; `report-kit schema` prints the JSON Schema.
+# Every key is documented in the report-kit docs (docs/spec.md); `report-kit schema` prints the JSON Schema.
 spec_version: 1
 title: "{title}"
 summary: >

@@ -265,6 +265,18 @@ def _difference_line(d: dict) -> str:
     return f"  {d['label']} {d['field']}: recorded {_value(d['recorded'])}, re-run {_value(d['rerun'])}{tail}"
 
 
+def _verdict(report: VerifyReport) -> str:
+    if report.ok:
+        return "VERIFIED"
+    only_project_moved = (report.input_mismatches and not report.result_differences
+                          and not report.integrity_problems and not report.rerun_error)
+    if only_project_moved:
+        return ("NOT VERIFIED: the project's input files differ from the ones this run recorded (listed above). "
+                "The run folder itself is intact and its results reproduce from its own copies of the inputs; "
+                "if the data were corrected on purpose, verify the newer run instead.")
+    return "NOT VERIFIED: differences listed above"
+
+
 def format_verify_text(report: VerifyReport, *, max_items: int = 50) -> str:
     """The verification outcome as readable plain text, verdict on the last line."""
     if not isinstance(report, VerifyReport):
@@ -292,5 +304,5 @@ def format_verify_text(report: VerifyReport, *, max_items: int = 50) -> str:
             lines.append(f"  ... and {len(report.result_differences) - max_items} more")
     else:
         lines.append(f"Results: the re-run reproduces results.json (numbers within {report.rel_tol:g} relative).")
-    lines += ["", "VERIFIED" if report.ok else "NOT VERIFIED: differences listed above"]
+    lines += ["", _verdict(report)]
     return "\n".join(lines) + "\n"

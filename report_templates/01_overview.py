@@ -9,7 +9,8 @@ compare_to = ""
 # %%
 import pandas as pd
 
-from report_kit.reporting import CAUTIONS, RunView, callout, say, show_table
+from report_kit.planlock import plan_deviations
+from report_kit.reporting import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -19,7 +20,36 @@ d = res["design"]
 # %%
 if spec.summary:
     say(spec.summary.strip())
-callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in CAUTIONS) + "</ul>", "caution")
+deviations = plan_deviations(view.run_dir / "inputs")
+callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(deviations)) + "</ul>", "caution")
+
+# %% [markdown]
+# ## Main results
+
+# %%
+alpha = spec.analysis.alpha
+level = round(100 * (1 - alpha))
+seen: set = set()
+tests = {t["outcome"]: t for t in res.get("tests") or []}
+lead_method = spec.analysis.multiplicity
+adjusted = {m["outcome"]: m["p_adjusted"] for m in res.get("multiplicity") or [] if m.get("lead")}
+lines = []
+for row in res["estimates"]:
+    if estimate_role(row, seen) != "lead" or row["estimand"] not in ("ATE", "ITT") or row["subgroup"]:
+        continue
+    outcome = next((o for o in spec.outcomes if o.column == row["outcome"]), None)
+    if outcome is None:
+        continue
+    test = tests.get(row["outcome"], {})
+    adj = adjusted.get(row["outcome"])
+    adj_text = "" if adj is None or lead_method == "none" else f"; adjusted for multiple outcomes, {p_phrase(adj)}"
+    lines.append(
+        f"<li><b>{outcome.label}</b> ({outcome.family}): estimated effect <b>{fmt(row['estimate'])}</b> "
+        f"({level}% CI {fmt(row['ci_low'])} to {fmt(row['ci_high'])}); randomization test "
+        f"{p_phrase(test.get('p_value'))}{adj_text}.</li>")
+if lines:
+    callout("<b>Pre-specified estimate for each outcome</b> (the design-based estimator the design implies; "
+            "other estimators follow under Average effects as checks):<ul>" + "".join(lines) + "</ul>", "info")
 
 # %% [markdown]
 # ## Design

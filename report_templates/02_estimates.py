@@ -10,7 +10,7 @@ compare_to = ""
 import pandas as pd
 
 from report_kit.figures import effect_plot
-from report_kit.reporting import RunView, say, show_figure, show_table
+from report_kit.reporting import RunView, estimate_role, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -20,6 +20,10 @@ level = round(100 * (1 - alpha))
 
 # %%
 say(
+    "The first row of each outcome is the pre-specified estimate: the design-based estimator the assignment "
+    "mechanism implies. The covariate-adjusted (Lin 2013) estimate is reported beside it, and for cluster "
+    "designs the Horvitz–Thompson estimate, which is unbiased but sensitive to unequal cluster sizes, as a "
+    "robustness check. "
     f"Each row is a design-based estimate of the average effect of assignment with its standard error "
     f"and a {level}% confidence interval. Units missing an outcome are left out of that outcome only; "
     "the counts used are shown per arm. Methods and formulas: docs/methods.md."
@@ -38,9 +42,15 @@ METHOD_WORDS = {
 }
 
 
+ROLE_WORDS = {"lead": "pre-specified", "adjusted": "covariate-adjusted", "check": "robustness check", "": ""}
+seen: set = set()
+roles = {i: estimate_role(r, seen) for i, r in est.iterrows()}
+
+
 def family_table(rows: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame({
         "Outcome": [view.label(o) for o in rows["outcome"]],
+        "Role": [ROLE_WORDS[roles[i]] for i in rows.index],
         "Estimand": rows["estimand"],
         "Method": [METHOD_WORDS.get(m, m) for m in rows.get("method", rows["estimator"])],
         "Estimate": rows["estimate"],
@@ -54,6 +64,9 @@ def family_table(rows: pd.DataFrame) -> pd.DataFrame:
 
 main = est[est["estimand"].isin(["ATE", "ITT"]) & est["subgroup"].isna()]
 main = main[main["outcome"].isin([o.column for o in view.spec.outcomes])]
+ROLE_ORDER = {"lead": 0, "adjusted": 1, "check": 2, "": 3}
+order = {o.column: k for k, o in enumerate(view.spec.outcomes)}
+main = main.loc[sorted(main.index, key=lambda i: (order[main.at[i, "outcome"]], ROLE_ORDER[roles[i]], i))]
 for family in ("primary", "secondary", "exploratory"):
     rows = main[[view.family(o) == family for o in main["outcome"]]]
     if len(rows):

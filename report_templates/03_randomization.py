@@ -52,10 +52,11 @@ if len(intervals):
         f"{level}% interval, low": intervals["ci_low"],
         f"{level}% interval, high": intervals["ci_high"],
         "Hodges–Lehmann estimate": intervals["hodges_lehmann"],
-    }), "intervals", caption="Constant effects not rejected by the randomization test",
+    }), "intervals", caption="Constant effects not rejected by the two-sided difference-in-means test",
         csv_frame=intervals,
-        note="The interval collects every constant additive effect that the two-sided difference-in-means test "
-             "does not reject; the Hodges–Lehmann estimate is the effect at which the test is most compatible.")
+        note="The interval collects every constant additive effect that the two-sided difference-in-means "
+             "randomization test does not reject, whatever statistic or alternative the outcome's own test uses; "
+             "the Hodges–Lehmann estimate is the effect at which that test is most compatible.")
 
 # %%
 arrays = view.arrays()

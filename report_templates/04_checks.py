@@ -26,10 +26,12 @@ if bal["covariates"]:
         "Std. difference": cov["std_diff"],
         "Variance ratio": cov["variance_ratio"],
         "Missing (T / C)": [f"{a} / {b}" for a, b in zip(cov["missing_treated"], cov["missing_control"])],
-        "Size": cov["flag"],
+        "Imbalance": cov["flag"],
     }), "balance", caption="Baseline means by arm", csv_frame=cov,
-        note="Standardized difference = difference in means over sqrt((s1² + s0²)/2). Sizes: small below 0.1, "
-             "moderate from 0.1 to 0.25, large above 0.25 (common practice, not a test).")
+        note="Standardized difference = difference in means over sqrt((s1² + s0²)/2). Imbalance: small below 0.1, "
+             "moderate from 0.1 to 0.25, large above 0.25 in absolute value (common practice, not a test). "
+             "A variance ratio far from 1 (for example below 0.5 or above 2, common practice) means the arms "
+             "differ in spread even when the means agree.")
     omni = bal["omnibus"]
     if omni.get("p_value") is not None:
         reference = "every assignment" if omni["method"] == "exact" else f"{omni['draws']:,} random assignments"
@@ -64,9 +66,11 @@ if len(flow):
 # %%
 att = res.get("attrition")
 if att:
+    lost_if = [view.label(c) for c in att.get("attrited_if_missing", [])]
+    rule = (f"its {lost_if[0].lower()} is missing" if len(lost_if) == 1
+            else "any of " + ", ".join(x.lower() for x in lost_if) + " is missing")
     say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of treated and "
-        f"{100 * att['rate_control']:.1f}% of control units "
-        f"(a unit counts as lost when any of {', '.join(att.get('attrited_if_missing', []))} is missing). "
+        f"{100 * att['rate_control']:.1f}% of control units (a unit counts as lost when {rule}). "
         f"Randomization test of equal attrition: {p_phrase(att['p_value'])}.")
     bounds = pd.DataFrame(att.get("bounds") or [])
     if len(bounds):
@@ -76,7 +80,10 @@ if att:
             "Bounds": [words.get(m, m) for m in bounds["method"]],
             "Lower": bounds["lower"], "Upper": bounds["upper"],
         }), "attrition_bounds", caption="Bounds on the average effect allowing for attrition", csv_frame=bounds,
-            note="Lee bounds assume attrition is monotone in treatment; Manski bounds assume only the outcome's range.")
+            note="These are identification bounds: the range of effects consistent with the data if the missing "
+                 "outcomes were as favourable or unfavourable as possible, computed on all units pooled (blocks "
+                 "and clusters ignored) and without sampling error. Lee bounds assume attrition is monotone in "
+                 "treatment; Manski bounds assume only the outcome's declared range.")
 
 # %% [markdown]
 # ## Several outcomes
@@ -93,7 +100,7 @@ if len(mult):
                           "p (unadjusted)": [fmt_p(raw[o]) for o in wide["outcome"]]})
     for method in ("holm", "bh", "westfall_young"):
         if method in wide.columns:
-            title = names[method] + (" (leading)" if method == lead else "")
+            title = names[method] + (" (pre-specified)" if method == lead else "")
             table[title] = [fmt_p(v) for v in wide[method]]
     show_table(view, table, "multiplicity", caption="Adjusted p-values within each family", csv_frame=mult,
                note="Adjustments are made within each family of outcomes (primary, secondary, exploratory). "

@@ -276,3 +276,18 @@ def test_diff_results_tolerance():
     assert diff_results(a, b, rel_tol=1e-9).identical
     with pytest.raises(UsageError, match="`rel_tol` must be a finite number >= 0; got -1"):
         diff_results(a, b, rel_tol=-1)
+
+
+def test_floating_point_noise_is_not_a_change(tmp_path):
+    # A move of 1e-13 relative is summation-order noise (same 1e-9 rule as verify); 1e-6 is a change.
+    import copy
+
+    noisy = copy.deepcopy(RESULTS_A)
+    noisy["estimates"][0]["ci_high"] *= 1 + 1e-13
+    a = _make_run(tmp_path, "run-a", DESIGN_A, UNITS_A, RESULTS_A)
+    b = _make_run(tmp_path, "run-b", DESIGN_A, UNITS_A, noisy)
+    assert compare_runs(a, b).identical
+    moved = copy.deepcopy(RESULTS_A)
+    moved["estimates"][0]["ci_high"] *= 1 + 1e-6
+    c = _make_run(tmp_path, "run-c", DESIGN_A, UNITS_A, moved)
+    assert [ch.field for ch in compare_runs(a, c).results.changed] == ["ci_high"]
