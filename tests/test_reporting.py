@@ -26,3 +26,27 @@ def test_table_html_escapes_and_marks_numbers():
     assert '<td class="num">1.500</td>' in html and "rk-short" in html
     long = table_html(pd.DataFrame({"v": range(11)}))
     assert "rk-long" in long and long.count("<tr>") == 12
+
+
+def test_cautions_state_the_plan_lock():
+    from report_kit.reporting import cautions
+
+    assert "not locked" in cautions({"locked": False})[-1]
+    kept = cautions({"locked": True, "locked_at": "2026-11-30T10:00:00Z", "changes": []})[-1]
+    assert "locked on 2026-11-30T10:00:00Z and unchanged since" in kept
+    moved = cautions({"locked": True, "locked_at": "x", "changes": [{"key": "analysis.alpha"}]})[-1]
+    assert "1 key(s) changed since" in moved
+    assert any("not proof of benefit or of safety" in c for c in cautions({"locked": False}))
+
+
+def test_estimate_roles():
+    from report_kit.reporting import estimate_role
+
+    seen: set = set()
+    rows = [
+        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "unadjusted", "method": "cr2"},
+        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "unadjusted", "method": "horvitz_thompson"},
+        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "adjusted", "method": "lin_cr2"},
+        {"outcome": "y", "estimand": "CACE", "subgroup": None, "estimator": "unadjusted", "method": "wald_delta"},
+    ]
+    assert [estimate_role(r, seen) for r in rows] == ["lead", "check", "adjusted", ""]
