@@ -906,7 +906,8 @@ def format_plan_text(plan: PowerPlan) -> str:
              f"{_g(a['n_control'], 8)} control" + (" (expected)" if expected else "")]
     if plan.n_blocks is not None:
         lines.append(f"  {'pairs' if plan.mechanism == 'matched_pairs' else 'blocks':<14} {plan.n_blocks} "
-                     "(not used by the analytic formula; the simulation follows them)")
+                     "(the formula ignores them: when pairing or blocking predicts the outcome, give the SD "
+                     "within pairs/blocks as --sd, or the MDE is conservative)")
     if plan.mechanism in _CLUSTERED:
         counts = ("" if plan.clusters_treated is None
                   else f" ({plan.clusters_treated} treated, {plan.n_clusters - plan.clusters_treated} control)")
