@@ -563,7 +563,8 @@ def _input_entries(raw) -> dict:
 def _load_run(path: Path | str, name: str) -> _Run:
     run_dir = Path(path)
     if not run_dir.is_dir() or not (run_dir / RESULTS_NAME).is_file():
-        raise UsageError(f"`{name}` must be a run folder (holding {RESULTS_NAME}); got {str(path)!r}")
+        raise UsageError(f"{path}: {name} is not a run folder (no {RESULTS_NAME} inside); "
+                         "give a folder under <project>/runs/")
     results = load_json_file(run_dir / RESULTS_NAME, what="results file")
     manifest = (load_json_file(run_dir / MANIFEST_NAME, what="manifest")
                 if (run_dir / MANIFEST_NAME).is_file() else {})
@@ -707,7 +708,7 @@ def compare_runs(run_a: Path | str, run_b: Path | str, *, alpha: float | None = 
     """
     if alpha is not None and (not _is_number(alpha) or not 0 < alpha < 1):
         raise UsageError(f"`alpha` must be a number in (0, 1); got {alpha!r}")
-    a, b = _load_run(run_a, "run_a"), _load_run(run_b, "run_b")
+    a, b = _load_run(run_a, "RUN_A"), _load_run(run_b, "RUN_B")
     if alpha is None:
         alpha = _alpha_of(b) or _alpha_of(a) or DEFAULT_ALPHA
     design, design_keys = _design_change(a, b)

@@ -260,7 +260,7 @@ def test_table_errors(tmp_path):
 
 
 def test_not_a_run_folder(tmp_path, runs):
-    with pytest.raises(UsageError, match="`run_a` must be a run folder \\(holding results.json\\); got"):
+    with pytest.raises(UsageError, match="RUN_A is not a run folder \\(no results.json inside\\)"):
         compare_runs(tmp_path, runs[1])
     with pytest.raises(UsageError, match=r"`alpha` must be a number in \(0, 1\); got 0"):
         compare_runs(*runs, alpha=0)
