@@ -122,6 +122,12 @@ def assign(path: Path, output: Path | None, force: bool) -> None:
     frame = load_units_for_assignment(spec)
     target = write_assignment(spec, frame, out=output, force=force)
     click.echo(f"wrote {target} ({len(frame)} units, drawn from design.seed {spec.design.seed})")
+    if spec.design.treatment in frame.columns:
+        click.echo(f"note: {spec.data.units} already has a '{spec.design.treatment}' column; compare it with the "
+                   f"drawn file (`report-kit check` does this) rather than merging the file in", err=True)
+    else:
+        click.echo(f"next: add the '{spec.design.treatment}' column to {spec.data.units} "
+                   f"(or list {target.name} under data.merge)", err=True)
 
 
 @main.command(short_help="Analyse, execute the report notebooks, render to runs/<run-id>/.")
