@@ -26,6 +26,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/randomization.py
+	$(BIN)/python benchmarks/sampler.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info

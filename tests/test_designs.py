@@ -3,8 +3,10 @@
 Outside references: binomial-coefficient identities (C(n, k), products over
 blocks, 2**P for P pairs), brute-force enumeration with ``itertools`` written
 here independently of the library, Pearson's chi-square goodness-of-fit test
-(``scipy.stats.chisquare``) for uniformity, and a re-implementation of the
-documented drawing algorithm (docs/methods/randomization.md).
+(``scipy.stats.chisquare``) for uniformity, a re-implementation of the
+documented drawing algorithm (docs/methods/randomization.md), and a frozen copy
+of the previous Monte Carlo sampler (``previous_sample_chunks``), which the
+current one must reproduce bit for bit.
 """
 
 from __future__ import annotations
@@ -352,3 +354,236 @@ def test_sampling_arguments_are_validated():
         mech.assignments(max_exact=1, draws=10, seed=-1)
     with pytest.raises(UsageError, match="`probability` must be a number strictly between 0 and 1; got 1.5"):
         mechanism_from_arrays("bernoulli", Z10, probability=1.5)
+
+
+# --------------------------------------------------------------------------- the previous sampler (frozen)
+#
+# A frozen copy of the Monte Carlo sampler of report_kit.designs as it was before the per-row
+# correction of threshold-and-adjust was vectorized (Mechanism._sample, _sample_rows, _sorted_keys,
+# _stratum_members, _expand, and the module functions _threshold_and_adjust, _adjust_row,
+# _first_distinct), rewritten as plain functions of a Mechanism. It is the reference that the current
+# sampler must reproduce bit for bit; do not edit it. The only addition is the optional `tally`,
+# which counts how often each branch of the old per-row correction ran (it changes no output), so
+# the identity test can show that it reached the rare branches. benchmarks/sampler.py imports it.
+
+PREVIOUS_CHUNK_CELLS = 1 << 22
+
+
+def previous_sample_chunks(mech, draws: int, seed: int, chunk_size: int | None = None, tally=None):
+    """Previous algorithm: what ``mech.sample_chunks(draws, seed, chunk_size)`` returned before."""
+    if chunk_size is None:
+        chunk_size = int(max(1, min(draws, PREVIOUS_CHUNK_CELLS // max(mech.n, 1))))
+    key_seq, fix_seq = np.random.SeedSequence(seed).spawn(2)
+    keys = np.random.Generator(np.random.PCG64(key_seq))
+    fixes = np.random.Generator(np.random.PCG64(fix_seq))
+    for start in range(0, draws, chunk_size):
+        rows = min(chunk_size, draws - start)
+        yield _previous_sample_rows(mech, rows, keys, fixes, tally)
+
+
+def _previous_sample_rows(mech, rows, keys, fixes, tally):
+    if mech.kind == "bernoulli":
+        return (keys.random((rows, mech.n)) < mech.probability).view(np.uint8)
+    if len(mech.stratum_size) == 1:
+        groups = _previous_threshold_and_adjust(rows, mech.n_groups, mech.stratum_treated[0], keys, fixes, tally)
+    else:
+        groups = _previous_sorted_keys(mech, rows, keys)
+    if not mech.clustered:
+        return groups
+    return np.ascontiguousarray(groups[:, mech.unit_group])
+
+
+def _previous_stratum_members(mech):
+    order = np.argsort(mech.group_stratum, kind="stable")
+    bounds = np.cumsum((0,) + mech.stratum_size)
+    return [order[bounds[s]:bounds[s + 1]] for s in range(len(mech.stratum_size))]
+
+
+def _previous_sorted_keys(mech, rows, keys):
+    u = keys.random((rows, mech.n_groups))
+    out = np.zeros((rows, mech.n_groups), dtype=np.uint8)
+    members = _previous_stratum_members(mech)
+    sizes = np.asarray(mech.stratum_size)
+    for g in np.unique(sizes):
+        strata = np.flatnonzero(sizes == g)
+        cols = np.stack([members[s] for s in strata])  # (S_g, g)
+        order = np.argsort(u[:, cols], axis=2, kind="stable")
+        take = np.arange(g)[None, :] < np.asarray(mech.stratum_treated)[strata][:, None]
+        block = np.zeros((rows, strata.size, g), dtype=np.uint8)
+        np.put_along_axis(block, order, np.broadcast_to(take, order.shape).astype(np.uint8), axis=2)
+        out[:, cols] = block
+    return out
+
+
+def _previous_threshold_and_adjust(rows, size, treated, keys, fixes, tally):
+    words = -(-size // 4)
+    raw = keys.bit_generator.random_raw((rows, words)).astype("<u8", copy=False)
+    key16 = raw.view("<u2")[:, :size]
+    threshold = min(65535, max(1, round(65536 * treated / size)))
+    provisional = key16 < threshold
+    counts = np.count_nonzero(provisional, axis=1)
+    out = provisional.view(np.uint8)
+    for r in np.flatnonzero(counts != treated):
+        _previous_adjust_row(out[r], int(counts[r]), treated, fixes, tally)
+    return out
+
+
+def _previous_adjust_row(row, current, target, rng, tally):
+    surplus = 1 if current > target else 0
+    need = abs(current - target)
+    pool = current if surplus else row.size - current
+    batch = int(math.ceil(1.3 * need * row.size / pool)) + 16
+    cand = rng.integers(0, row.size, size=batch)
+    cand = cand[row[cand] == surplus]
+    ordered = np.sort(cand)
+    if tally is not None:
+        tally["rows adjusted"] += 1
+    if cand.size >= need and not np.any(ordered[1:] == ordered[:-1]):
+        row[cand[:need]] = 1 - surplus
+        return
+    picked = _previous_first_distinct(cand, need)
+    if tally is not None:
+        tally["duplicates"] += 1
+        tally["extra batches"] += picked.size < need
+    while picked.size < need:
+        more = rng.integers(0, row.size, size=batch)
+        picked = _previous_first_distinct(np.concatenate([picked, more[row[more] == surplus]]), need)
+    row[picked] = 1 - surplus
+
+
+def _previous_first_distinct(values, limit):
+    _, first = np.unique(values, return_index=True)
+    return values[np.sort(first)][:limit]
+
+
+# --------------------------------------------------------------------------- identity with the previous sampler
+
+
+def _complete(n: int, k: int):
+    z = np.zeros(n, dtype=int)
+    z[np.arange(k) * 7 % n] = 1  # k distinct units (7 is coprime with every n used here)
+    assert z.sum() == k
+    return mechanism_from_arrays("complete", z)
+
+
+IDENTITY_DESIGNS = {
+    # one stratum (threshold and adjust): complete with n in {5, 12, 101, 1000}, shares near and far
+    # from one half (k = 1 and k = n - 3 leave few units in an arm, so the rare branches of the
+    # correction run: duplicate candidates and extra batches)
+    "complete n=5 k=2": lambda: _complete(5, 2),
+    "complete n=5 k=1": lambda: _complete(5, 1),
+    "complete n=12 k=6": lambda: _complete(12, 6),
+    "complete n=12 k=1": lambda: _complete(12, 1),
+    "complete n=12 k=11": lambda: _complete(12, 11),
+    "complete n=101 k=30": lambda: _complete(101, 30),
+    "complete n=101 k=50": lambda: _complete(101, 50),
+    "complete n=1000 k=500": lambda: _complete(1000, 500),
+    "complete n=1000 k=1": lambda: _complete(1000, 1),
+    "complete n=1000 k=997": lambda: _complete(1000, 997),
+    "cluster": lambda: small_designs()["cluster"],
+    "cluster 40 clusters": lambda: mechanism_from_arrays(
+        "cluster", np.repeat((np.arange(40) % 3 == 0).astype(int), 3), cluster=np.repeat(np.arange(40), 3)),
+    "blocked one block": lambda: mechanism_from_arrays("blocked", Z10, block=np.zeros(10, int)),
+    "blocked_cluster one block": lambda: mechanism_from_arrays(
+        "blocked_cluster", Z_CLUSTER10, block=np.zeros(10, int), cluster=CLUSTER10),
+    # several strata and bernoulli (sorted keys and coins: untouched, checked all the same)
+    "blocked": lambda: small_designs()["blocked"],
+    "blocked_cluster": lambda: small_designs()["blocked_cluster"],
+    "matched_pairs": lambda: small_designs()["matched_pairs"],
+    "bernoulli": lambda: small_designs()["bernoulli"],
+    "bernoulli n=101": lambda: mechanism_from_arrays("bernoulli", np.arange(101) % 4 == 0, probability=0.3),
+}
+IDENTITY_SEEDS = (0, 7, 20261201)
+IDENTITY_CHUNKS = (1, 7, 64, None)
+
+
+def _identity_draws(mech) -> int:
+    return 120 if mech.n >= 1000 else 400
+
+
+def _assert_same_chunks(got: list[np.ndarray], expected: list[np.ndarray]) -> None:
+    assert len(got) == len(expected)
+    for a, b in zip(got, expected):
+        assert a.dtype == b.dtype == np.uint8
+        assert a.shape == b.shape
+        assert a.tobytes() == b.tobytes()
+
+
+@pytest.mark.parametrize("seed", IDENTITY_SEEDS)
+@pytest.mark.parametrize("design", list(IDENTITY_DESIGNS))
+def test_sampler_reproduces_previous_algorithm_bit_for_bit(design, seed):
+    # reference: the frozen copy of the previous sampler above, for every chunk size
+    mech = IDENTITY_DESIGNS[design]()
+    draws = _identity_draws(mech)
+    for chunk_size in IDENTITY_CHUNKS:
+        got = list(mech.sample_chunks(draws, seed, chunk_size))
+        expected = list(previous_sample_chunks(mech, draws, seed, chunk_size))
+        _assert_same_chunks(got, expected)
+
+
+def test_identity_grid_reaches_the_rare_branches_of_the_previous_correction():
+    # the identity test above is only as strong as the branches it runs: over its grid the previous
+    # algorithm must have hit duplicate candidates and needed extra batches many times
+    tally = Counter()
+    for design, build in IDENTITY_DESIGNS.items():
+        mech = build()
+        for seed in IDENTITY_SEEDS:
+            for _ in previous_sample_chunks(mech, _identity_draws(mech), seed, 64, tally):
+                pass
+    assert tally["rows adjusted"] > 5000
+    assert tally["duplicates"] > 1000
+    assert tally["extra batches"] > 40
+
+
+def test_identity_grid_reaches_every_path_of_the_current_correction(monkeypatch):
+    # the current correction groups rows in several ways (one by one, windows that succeed, windows
+    # cut short by a row that needs a further batch; duplicates found by a table or by sorting); the
+    # identity grid must run each of them, or the identity test would not cover them
+    from report_kit import designs
+
+    seen = Counter()
+    window, each, first = designs._adjust_window, designs._adjust_each, designs._first_occurrences
+
+    def counting_window(out, rows, *args):
+        settled = window(out, rows, *args)
+        seen["window cut short" if settled < rows.size else "window"] += 1
+        return settled
+
+    def counting_each(out, rows, *args):
+        seen["one by one"] += rows.size
+        return each(out, rows, *args)
+
+    def counting_first(keys, span):
+        seen["table" if span <= 4 * keys.size else "sort"] += 1
+        return first(keys, span)
+
+    monkeypatch.setattr(designs, "_adjust_window", counting_window)
+    monkeypatch.setattr(designs, "_adjust_each", counting_each)
+    monkeypatch.setattr(designs, "_first_occurrences", counting_first)
+    for build in IDENTITY_DESIGNS.values():
+        mech = build()
+        for seed in IDENTITY_SEEDS:
+            for chunk_size in IDENTITY_CHUNKS:
+                for _ in mech.sample_chunks(_identity_draws(mech), seed, chunk_size):
+                    pass
+    assert min(seen[path] for path in ("window", "window cut short", "one by one", "table", "sort")) >= 10
+
+
+def test_sampler_matches_previous_algorithm_on_long_runs():
+    # many chunks in a row carry the random streams over chunk boundaries (reference: frozen copy above)
+    for mech, draws in ((_complete(12, 6), 5000), (_complete(1000, 1), 1500), (_complete(101, 97), 3000)):
+        for chunk_size in (None, 333):
+            _assert_same_chunks(list(mech.sample_chunks(draws, 11, chunk_size)),
+                                list(previous_sample_chunks(mech, draws, 11, chunk_size)))
+
+
+def test_numpy_bounded_integers_do_not_depend_on_call_boundaries():
+    # property of numpy's Generator.integers the sampler relies on (values are drawn one after
+    # another from the bit generator): one call for a + b values equals a call for a then one for b
+    for high in (2, 5, 12, 101, 1000, 65536):
+        one = np.random.Generator(np.random.PCG64(3))
+        two = np.random.Generator(np.random.PCG64(3))
+        sizes = [1, 19, 3, 146, 7, 2]
+        joined = np.concatenate([one.integers(0, high, size=s) for s in sizes])
+        assert np.array_equal(joined, two.integers(0, high, size=sum(sizes)))
+        assert one.bit_generator.state == two.bit_generator.state
