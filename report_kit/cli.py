@@ -223,7 +223,8 @@ def lock(path: Path, force: bool) -> None:
               help="Simulated experiments under the real mechanism and randomization test (0: analytic only).")
 @click.option("--draws", type=int, default=499, show_default=True,
               help="Randomization draws of the test in each simulated experiment "
-                   "(every assignment when there are at most 10000).")
+                   "(every assignment instead when there are at most max(--draws, 10000) "
+                   "and at most analysis.max_exact).")
 @click.option("--seed", type=int, help="Seed of the simulation (default: analysis.seed).")
 @click.option("--json", "as_json", is_flag=True, help="Print the plan as JSON.")
 def power(path: Path, sd: float | None, effect: float | None, target_power: float, icc: float | None,
