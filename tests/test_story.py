@@ -74,3 +74,20 @@ def test_correction_story(project_copy, tmp_path):
     pupils.write_bytes(raw[:-2] + (b"9" if raw[-2:-1] != b"9" else b"8") + raw[-1:])
     failed = invoke("verify", run_b)
     assert failed.exit_code == 3 and "data/pupils.csv" in failed.output
+
+
+def test_monte_carlo_path_agrees_with_exact_enumeration(project_copy):
+    # Reference: the exact randomization p-values of the same study (all 160,000 assignments
+    # enumerated); the Monte Carlo run must agree within 4 of its Monte Carlo standard errors.
+    project = project_copy("tutoring-clubs")
+    exact = analyse_project(project)
+    spec = project / "design.yaml"
+    spec.write_text(spec.read_text().replace("max_exact: 200000", "max_exact: 1000"))
+    mc = analyse_project(project)
+    assert exact["design"]["inference_method"] == "exact" and mc["design"]["inference_method"] == "monte_carlo"
+    assert mc["design"]["draws"] == 5000 and mc["design"]["n_assignments"] == "160000"
+    for e, m in zip(exact["tests"], mc["tests"]):
+        assert m["method"] == "monte_carlo" and m["mc_std_error"] > 0
+        assert abs(m["p_value"] - e["p_value"]) <= 4 * m["mc_std_error"] + 1 / 5001
+    assert mc["balance"]["omnibus"]["method"] == "monte_carlo"
+    assert {m["method"] for m in mc["multiplicity"]} == {"holm", "bh", "westfall_young"}
