@@ -19,12 +19,14 @@ est = pd.DataFrame(res["estimates"])
 level = round(100 * (1 - alpha))
 
 # %%
+clustered = view.results["design"].get("n_clusters") is not None
 say(
     "The first row of each outcome is the pre-specified estimate: the design-based estimator the assignment "
-    "mechanism implies. The covariate-adjusted (Lin 2013) estimate is reported beside it, and for cluster "
-    "designs the Horvitz–Thompson estimate, which is unbiased but sensitive to unequal cluster sizes, as a "
-    "robustness check. "
-    f"Each row is a design-based estimate of the average effect of assignment with its standard error "
+    "mechanism implies. The covariate-adjusted (Lin 2013) estimate, when covariates were pre-specified, is "
+    "reported beside it"
+    + (", and the Horvitz–Thompson estimate, which is unbiased but sensitive to unequal cluster sizes, as a "
+       "robustness check. " if clustered else ". ")
+    + f"Each row is a design-based estimate of the average effect of assignment with its standard error "
     f"and a {level}% confidence interval. Units missing an outcome are left out of that outcome only; "
     "the counts used are shown per arm. Methods and formulas: docs/methods.md."
 )
