@@ -15,6 +15,7 @@ from collections.abc import Callable
 import numpy as np
 from scipy import optimize, stats
 
+from ._checks import closed_unit_interval
 from .errors import UsageError
 from .model import ALTERNATIVES
 
@@ -152,12 +153,7 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
     m = _check_positive("cluster_size", cluster_size)
     if m < 1:
         raise UsageError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
-    try:
-        rho = float(icc)
-    except (TypeError, ValueError) as err:
-        raise UsageError(f"`icc` must be a number in [0, 1]; got {icc!r}") from err
-    if not 0 <= rho <= 1:
-        raise UsageError(f"`icc` must be in [0, 1]; got {icc!r}")
+    rho = closed_unit_interval("icc", icc)
     if effect is not None and not np.isfinite(float(effect)):
         raise UsageError(f"`effect` must be a finite number; got {effect!r}")
     df = (n1 + n0) / m - 2

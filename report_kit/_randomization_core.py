@@ -19,6 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ._checks import finite_number
 from .designs import AssignmentSource, Mechanism
 from .errors import DataError, UsageError
 from .statistic_kernels import _KERNELS, _analytic_centre
@@ -60,13 +61,7 @@ def _check_outcomes(y, n: int) -> np.ndarray:
 
 
 def _check_null_effect(value) -> float:
-    try:
-        tau = float(value)
-    except (TypeError, ValueError) as err:
-        raise UsageError(f"`null_effect` must be a finite number; got {value!r}") from err
-    if not math.isfinite(tau):
-        raise UsageError(f"`null_effect` must be a finite number; got {value!r}")
-    return tau
+    return finite_number("null_effect", value)
 
 
 def _check_alternatives(alternative, m: int) -> tuple[str, ...]:

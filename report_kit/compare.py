@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 import yaml
 
+from ._checks import tolerance
 from .errors import DataError, UsageError
 from .planlock import diff_specs
 from .provenance import (
@@ -213,11 +214,6 @@ class ResultsDiff:
                 "removed": [r.to_dict() for r in self.removed]}
 
 
-def _check_tolerance(name: str, value) -> float:
-    if not _is_number(value) or not math.isfinite(value) or value < 0:
-        raise UsageError(f"`{name}` must be a finite number >= 0; got {value!r}")
-    return float(value)
-
 
 def diff_results(results_a: dict, results_b: dict, *, rel_tol: float = 0.0,
                  abs_tol: float = 0.0) -> ResultsDiff:
@@ -254,8 +250,8 @@ def diff_results(results_a: dict, results_b: dict, *, rel_tol: float = 0.0,
     Peters, C. (2015). PEP 485 -- A Function for testing approximate equality
     (the symmetric relative test used by :func:`math.isclose`).
     """
-    rel_tol = _check_tolerance("rel_tol", rel_tol)
-    abs_tol = _check_tolerance("abs_tol", abs_tol)
+    rel_tol = tolerance("rel_tol", rel_tol)
+    abs_tol = tolerance("abs_tol", abs_tol)
     for name, value in (("results_a", results_a), ("results_b", results_b)):
         if not isinstance(value, dict):
             raise UsageError(f"`{name}` must be a dict; got {type(value).__name__}")

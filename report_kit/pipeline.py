@@ -25,6 +25,7 @@ from .analysis import Analysis, analyse
 from .data import load_study
 from .errors import SpecError, UsageError
 from .model import Study
+from .planlock import LOCK_NAME
 from .spec import SPEC_FILENAME, load_spec
 
 log = logging.getLogger(__name__)
@@ -155,12 +156,12 @@ def write_analysis(run_dir: Path, result: Analysis) -> None:
 
 def copy_inputs(study: Study, run_dir: Path) -> None:
     """Keep a copy of design.yaml and each input table under ``inputs/`` (for diff and archive)."""
-    dest = run_dir / "inputs"
+    dest = run_dir / provenance.INPUTS_DIR
     dest.mkdir()
     shutil.copy2(study.spec.path, dest / SPEC_FILENAME)
-    lock = study.spec.project_dir / "design.lock"
+    lock = study.spec.project_dir / LOCK_NAME
     if lock.is_file():
-        shutil.copy2(lock, dest / "design.lock")
+        shutil.copy2(lock, dest / LOCK_NAME)
     for f in study.inputs:
         target = dest / f.path
         target.parent.mkdir(parents=True, exist_ok=True)

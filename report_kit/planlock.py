@@ -16,11 +16,12 @@ import yaml
 
 from .errors import SpecError, UsageError
 from .provenance import load_json_file, sha256_bytes, utc_now, write_json
+from .spec import SPEC_FILENAME
 
 __all__ = ["LOCK_NAME", "lock_plan", "plan_deviations", "diff_specs", "format_deviations_text"]
 
 LOCK_NAME = "design.lock"
-SPEC_NAME = "design.yaml"
+SPEC_NAME = SPEC_FILENAME
 LOCK_SCHEMA = "report-kit/plan-lock/1"
 #: Fields that identify an item in a list of mappings (e.g. ``outcomes``), in order of preference.
 ITEM_KEYS = ("column", "name", "id")

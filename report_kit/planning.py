@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ._checks import closed_unit_interval, finite_number
 from ._power_core import (
     _check_positive,
     _check_progress,
@@ -281,24 +282,14 @@ def _check_plan(spec: Spec, *, sd, effect, power, icc, cluster_size, n_treated, 
                          "(e.g. from a pilot or an earlier study)")
     sd = _check_positive("sd", sd)
     if effect is not None:
-        try:
-            effect = float(effect)
-        except (TypeError, ValueError) as err:
-            raise UsageError(f"`effect` must be a finite number; got {effect!r}") from err
-        if not np.isfinite(effect):
-            raise UsageError(f"`effect` must be a finite number; got {effect!r}")
+        effect = finite_number("effect", effect)
     power = _check_unit_interval("power", power)
     if clustered and icc is None:
         raise UsageError(f"`icc` is required for a {kind} design: the intraclass correlation of the outcome "
                          "within clusters, a number in [0, 1]")
     if not clustered and icc not in (None, 0):
         raise UsageError(f"`icc` applies to cluster designs only; design.mechanism is {kind!r}")
-    try:
-        icc = 0.0 if icc is None else float(icc)
-    except (TypeError, ValueError) as err:
-        raise UsageError(f"`icc` must be a number in [0, 1]; got {icc!r}") from err
-    if not 0 <= icc <= 1:
-        raise UsageError(f"`icc` must be in [0, 1]; got {icc!r}")
+    icc = 0.0 if icc is None else closed_unit_interval("icc", icc)
     for name, value in (("cluster_size", cluster_size), ("n_clusters", n_clusters)):
         if value is not None and not clustered:
             raise UsageError(f"`{name}` applies to cluster designs only; design.mechanism is {kind!r}")

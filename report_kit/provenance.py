@@ -34,6 +34,7 @@ import numpy as np
 
 from .errors import UsageError
 from .model import InputFile
+from .spec import SPEC_FILENAME
 
 log = logging.getLogger(__name__)
 
@@ -49,7 +50,7 @@ RO_CRATE_NAME = "ro-crate-metadata.json"
 RESULTS_NAME = "results.json"
 #: Folder of a run that holds copies of design.yaml and of every input table.
 INPUTS_DIR = "inputs"
-SPEC_NAME = "design.yaml"
+SPEC_NAME = SPEC_FILENAME
 MANIFEST_SCHEMA = "report-kit/manifest/1"
 
 #: Libraries whose versions every manifest records, in this order.

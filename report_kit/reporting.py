@@ -16,7 +16,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .spec import load_spec
+from .provenance import INPUTS_DIR
+from .spec import SPEC_FILENAME, load_spec
 
 CAUTIONS = (
     "Statistical significance is not proof of benefit or of safety: a small p-value says the data "
@@ -75,8 +76,8 @@ class RunView:
     def open(cls, run_dir: str | Path, project_dir: str | Path) -> RunView:
         run_dir, project_dir = Path(run_dir), Path(project_dir)
         results = json.loads((run_dir / "results.json").read_text(encoding="utf-8"))
-        spec = load_spec(run_dir / "inputs" / "design.yaml") if (run_dir / "inputs" / "design.yaml").exists() \
-            else load_spec(project_dir)
+        recorded = run_dir / INPUTS_DIR / SPEC_FILENAME
+        spec = load_spec(recorded) if recorded.exists() else load_spec(project_dir)
         return cls(run_dir=run_dir, project_dir=project_dir, results=results, spec=spec)
 
     def arrays(self) -> dict[str, np.ndarray]:

@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import UsageError
+from .spec import SPEC_FILENAME
 
 DESIGN_TEMPLATE = """\
 # design.yaml: the pre-analysis plan of this study, read by report-kit.
@@ -52,7 +53,7 @@ def new_project(path: Path, *, title: str | None = None) -> Path:
     if path.exists() and any(path.iterdir()):
         raise UsageError(f"{path}: already exists and is not empty; choose a new folder")
     (path / "data").mkdir(parents=True, exist_ok=True)
-    (path / "design.yaml").write_text(DESIGN_TEMPLATE.format(title=title or path.name), encoding="utf-8")
+    (path / SPEC_FILENAME).write_text(DESIGN_TEMPLATE.format(title=title or path.name), encoding="utf-8")
     rng = np.random.default_rng(1)
     n = 20
     assigned = np.zeros(n, dtype=int)

@@ -18,7 +18,6 @@ them (the command line maps ``ok=False`` to exit code 3).
 
 from __future__ import annotations
 
-import math
 import shutil
 import tempfile
 import zipfile
@@ -26,6 +25,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from ._checks import tolerance
 from .archive import safe_extract, verify_checksums
 from .compare import diff_results
 from .errors import ReportKitError, UsageError
@@ -79,11 +79,6 @@ class VerifyReport:
         }
 
 
-def _tolerance(name: str, value) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value < 0:
-        raise UsageError(f"`{name}` must be a finite number >= 0; got {value!r}")
-    return float(value)
-
 
 def _is_run_dir(path: Path) -> bool:
     return path.is_dir() and (path / RESULTS_NAME).is_file() and (path / MANIFEST_NAME).is_file()
@@ -101,7 +96,7 @@ def verify_run(target: Path | str, *, analyse: Analyse, rel_tol: float = REL_TOL
     """
     if not callable(analyse):
         raise UsageError(f"`analyse` must be callable; got {type(analyse).__name__}")
-    rel_tol, abs_tol = _tolerance("rel_tol", rel_tol), _tolerance("abs_tol", abs_tol)
+    rel_tol, abs_tol = tolerance("rel_tol", rel_tol), tolerance("abs_tol", abs_tol)
     path = Path(target)
     if path.is_file():
         if not zipfile.is_zipfile(path):
