@@ -99,8 +99,8 @@ def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
     log.info("estimates")
     estimates = study_estimates(study)
     log.info("randomization tests")
-    rand = study_randomization(study)
     mechanism, source = study_assignments(study)
+    rand = study_randomization(study, (mechanism, source))
     weights = mechanism.weights if source.method == "exact" else None
     log.info("balance, flow, attrition")
     balance = study_balance(study, source.chunks, source.method, weights=weights)

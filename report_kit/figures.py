@@ -11,22 +11,25 @@ from collections.abc import Callable
 
 import numpy as np
 import pandas as pd
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
 
 INK = "#1d4e63"
 ACCENT = "#b5562b"
 MUTED = "#8a8f98"
 
 
-def _figure(height: float, width: float = 7.0):
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    fig, ax = plt.subplots(figsize=(width, height))
+def _tidy(ax) -> None:
+    """The report's axis look: no box, a light vertical grid behind the data."""
     ax.spines[["top", "right", "left"]].set_visible(False)
     ax.grid(axis="x", color="#e3e5e8", linewidth=0.8)
     ax.set_axisbelow(True)
+
+
+def _figure(height: float, width: float = 7.0):
+    fig = Figure(figsize=(width, height))
+    ax = fig.subplots()
+    _tidy(ax)
     return fig, ax
 
 
@@ -44,16 +47,11 @@ METHOD_SHORT = {
 
 def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, level: int = 95):
     """One panel per outcome (each on its own scale); a line per estimate, a square at the point estimate."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
     rows = rows.reset_index(drop=True)
     outcomes = list(dict.fromkeys(rows["outcome"]))
     sizes = [int((rows["outcome"] == o).sum()) for o in outcomes]
-    fig, axes = plt.subplots(len(outcomes), 1, figsize=(7.0, 0.42 * sum(sizes) + 0.75 * len(outcomes) + 0.3),
-                             gridspec_kw={"height_ratios": [s + 0.8 for s in sizes]}, squeeze=False)
+    fig = Figure(figsize=(7.0, 0.42 * sum(sizes) + 0.75 * len(outcomes) + 0.3))
+    axes = fig.subplots(len(outcomes), 1, gridspec_kw={"height_ratios": [s + 0.8 for s in sizes]}, squeeze=False)
     for ax, outcome in zip(axes[:, 0], outcomes):
         part = rows[rows["outcome"] == outcome].reset_index(drop=True)
         ypos = np.arange(len(part))[::-1]
@@ -65,15 +63,11 @@ def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, leve
         ax.set_yticks(ypos, [METHOD_SHORT.get(m, m) for m in part.get("method", part["estimator"])], fontsize=8)
         ax.set_ylim(-0.7, len(part) - 0.3)
         ax.axvline(0, color=MUTED, linestyle="--", linewidth=1)
-        ax.spines[["top", "right", "left"]].set_visible(False)
-        ax.grid(axis="x", color="#e3e5e8", linewidth=0.8)
-        ax.set_axisbelow(True)
+        _tidy(ax)
         ax.tick_params(axis="y", length=0)
         ax.tick_params(axis="x", labelsize=8)
         ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold")
     axes[-1, 0].set_xlabel(f"Effect with {level}% confidence interval, in each outcome's own units", fontsize=8)
-    from matplotlib.lines import Line2D
-
     handles = [Line2D([], [], color=INK, marker="s", linewidth=2.2, label="unadjusted"),
                Line2D([], [], color=ACCENT, marker="s", linewidth=2.2, label="covariate-adjusted")]
     axes[0, 0].legend(handles=handles, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, frameon=False,

@@ -13,11 +13,12 @@ from matplotlib.figure import Figure
 
 from .balance import SMD_THRESHOLDS
 from .errors import UsageError
+from .figures import INK
 
 __all__ = ["plot_balance"]
 
 # our own palette: slate ink, a sand band, three flag tones
-_INK = "#2f3b45"
+_INK = INK  # the report's one ink colour (figures.py)
 _BAND = "#efe6d2"
 _TONES = {"small": "#2a7f7a", "moderate": "#c98a1b", "large": "#b2432f"}
 

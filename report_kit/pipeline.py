@@ -11,7 +11,6 @@ from __future__ import annotations
 import hashlib
 import logging
 import shutil
-import sys
 import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -81,8 +80,7 @@ def run_analysis(study: Study) -> Analysis:
     """The deterministic analysis step (the assignment check included)."""
     from .assignment import assignment_check_status
 
-    check = assignment_check_status(study) if study.spec.design.seed is not None else "not_checked"
-    return analyse(study, assignment_check=check)
+    return analyse(study, assignment_check=assignment_check_status(study))
 
 
 def make_run_id(study: Study, now: datetime) -> str:
@@ -190,6 +188,3 @@ def _close_log(handler: logging.Handler) -> None:
     logging.getLogger("report_kit").removeHandler(handler)
     handler.close()
 
-
-def python_executable() -> str:
-    return sys.executable

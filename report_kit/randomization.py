@@ -314,7 +314,8 @@ def study_assignments(study) -> tuple[Mechanism, AssignmentSource]:
     return mechanism, source
 
 
-def study_randomization(study) -> StudyRandomization:
+def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] | None = None
+                        ) -> StudyRandomization:
     """Randomization tests and intervals for every outcome of a validated study.
 
     Builds the mechanism from ``study.spec.design`` and the study's assignment,
@@ -323,10 +324,12 @@ def study_randomization(study) -> StudyRandomization:
     tests each outcome with its own ``statistic`` and ``alternative`` (sharp
     null of no effect) and inverts the two-sided difference-in-means test at
     level ``1 - analysis.alpha``. All outcomes use the same assignments.
+    ``assignments`` is what :func:`study_assignments` returns, when the caller
+    already built it to share it with other procedures.
     """
     spec = study.spec
     analysis = spec.analysis
-    mechanism, source = study_assignments(study)
+    mechanism, source = study_assignments(study) if assignments is None else assignments
     names = [o.column for o in spec.outcomes]
     y = np.column_stack([study.outcome(c) for c in names]) if names else np.empty((mechanism.n, 0))
     stats = {o.column: o.statistic for o in spec.outcomes}

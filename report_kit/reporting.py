@@ -153,7 +153,6 @@ def show_table(view: RunView, frame: pd.DataFrame, name: str, *, caption: str = 
 
 def show_figure(view: RunView, fig, name: str, *, caption: str = "") -> None:
     """Save ``figures/<name>.png`` and ``.svg`` and display the PNG."""
-    import matplotlib.pyplot as plt
     from IPython.display import HTML, display
 
     figures = view.run_dir / "figures"
@@ -161,7 +160,6 @@ def show_figure(view: RunView, fig, name: str, *, caption: str = "") -> None:
     png = figures / f"{name}.png"
     fig.savefig(png, dpi=150, bbox_inches="tight", metadata={"Software": None})
     fig.savefig(figures / f"{name}.svg", bbox_inches="tight", metadata={"Date": None})
-    plt.close(fig)
     data = base64.b64encode(png.read_bytes()).decode("ascii")
     alt = html.escape(caption or name.replace("_", " "), quote=True)
     cap = f'<figcaption class="rk-caption">{html.escape(caption)}</figcaption>' if caption else ""
