@@ -1,7 +1,8 @@
-"""Argument checks shared by several library modules.
+"""Argument checks and value helpers shared by several library modules.
 
 One place for the validators that more than one module needs, so that the
-same mistake gets the same message everywhere.
+same mistake gets the same message everywhere, and for the rule that turns a
+number into a JSON-safe value.
 """
 
 from __future__ import annotations
@@ -38,3 +39,11 @@ def tolerance(name: str, value) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value < 0:
         raise UsageError(f"`{name}` must be a finite number >= 0; got {value!r}")
     return float(value)
+
+
+def finite_or_none(value) -> float | None:
+    """A plain Python float, or None when ``value`` is missing or not finite (JSON has no NaN)."""
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None

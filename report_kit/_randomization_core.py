@@ -13,13 +13,13 @@ assignment source that evaluates the statistics of
 from __future__ import annotations
 
 import logging
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
 from ._checks import finite_number
+from ._checks import finite_or_none as _num
 from .designs import AssignmentSource, Mechanism
 from .errors import DataError, UsageError
 from .statistic_kernels import _KERNELS, _analytic_centre
@@ -313,8 +313,3 @@ def _run(requests: Sequence[_Request], mechanism: Mechanism, source: AssignmentS
     return results
 
 
-def _num(value) -> float | None:
-    if value is None:
-        return None
-    value = float(value)
-    return value if math.isfinite(value) else None

@@ -30,6 +30,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ._checks import finite_or_none as _num
 from .errors import DataError, DesignError, ReportKitWarning, UsageError
 
 logger = logging.getLogger(__name__)
@@ -66,13 +67,6 @@ WeightFn = Callable[[np.ndarray], "np.ndarray | None"]
 # helpers shared with attrition.py
 # ---------------------------------------------------------------------------
 
-
-def _num(x) -> float | None:
-    """A plain Python float, or None when ``x`` is missing or not finite."""
-    if x is None:
-        return None
-    x = float(x)
-    return x if np.isfinite(x) else None
 
 
 def _check_method(method: str) -> str:
