@@ -37,8 +37,8 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from report_kit.designs import mechanism_from_arrays  # noqa: E402
-from report_kit.randomization import randomization_test  # noqa: E402
+from report_kit.design.mechanism import mechanism_from_arrays  # noqa: E402
+from report_kit.inference.randomization import randomization_test  # noqa: E402
 
 
 def complete_data(n: int, m: int, seed: int = 1):
@@ -81,8 +81,8 @@ _CHILD = r"""
 import resource, sys, time, json
 sys.path.insert(0, {root!r})
 import numpy as np
-from report_kit.designs import mechanism_from_arrays
-from report_kit.randomization import randomization_test
+from report_kit.design.mechanism import mechanism_from_arrays
+from report_kit.inference.randomization import randomization_test
 n, draws, run = {n}, {draws}, {run}
 rng = np.random.default_rng(2)
 z = np.zeros(n, dtype=np.uint8); z[rng.permutation(n)[: n // 2]] = 1

@@ -31,7 +31,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from report_kit.designs import CHUNK_CELLS, mechanism_from_arrays  # noqa: E402
+from report_kit.design.mechanism import CHUNK_CELLS, mechanism_from_arrays  # noqa: E402
 from tests.test_designs import previous_sample_chunks  # noqa: E402
 
 #: (label, units, treated, draws); the last two show a small study at the draws of one power

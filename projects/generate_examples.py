@@ -66,7 +66,7 @@ def quiet_hours(rng: np.random.Generator) -> None:
     ``QUIET_HOURS_SEED`` (``design.seed`` in the spec), so ``report-kit check``
     re-draws it and finds the ``quiet_hour`` column reproduced.
     """
-    from report_kit.designs import draw_assignment
+    from report_kit.design.mechanism import draw_assignment
 
     names = ["Alder", "Birchgate", "Cobble", "Dovecote", "Elmstead", "Fennick",
              "Gorse", "Hollin", "Ivybank", "Juniper", "Kestrel", "Larchmont"]

@@ -3,7 +3,7 @@
 Owns the order of the analysis and nothing else: each section of the results
 comes from one library module (``estimate``, ``randomization``, ``balance``,
 ``attrition``, ``multiplicity``, ``power``). All procedures that need
-assignments share one :class:`~report_kit.designs.AssignmentSource`, so the
+assignments share one :class:`~report_kit.design.mechanism.AssignmentSource`, so the
 tests, the balance and attrition checks and Westfall–Young see the same draws.
 Deterministic: the same study gives the same dict, whatever the machine.
 """
@@ -16,14 +16,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .attrition import study_attrition
-from .balance import participant_flow, study_balance
-from .errors import ReportKitWarning
-from .estimate import study_compliance, study_estimates, study_subgroup_differences
-from .model import Study
-from .multiplicity import SharedNull, study_multiplicity
-from .power import study_power
-from .randomization import StudyRandomization, study_assignments, study_randomization
+from report_kit.checks.attrition import study_attrition
+from report_kit.checks.balance import participant_flow, study_balance
+from report_kit.errors import ReportKitWarning
+from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
+from report_kit.inputs.model import Study
+from report_kit.inference.multiplicity import SharedNull, study_multiplicity
+from report_kit.planning.power import study_power
+from report_kit.inference.randomization import StudyRandomization, study_assignments, study_randomization
 
 log = logging.getLogger(__name__)
 

@@ -14,8 +14,8 @@ from pathlib import Path
 
 import click
 
-from . import __version__
-from .errors import ReportKitError, UsageError
+from report_kit import __version__
+from report_kit.errors import ReportKitError, UsageError
 
 
 def _progress(message: str) -> None:
@@ -24,7 +24,7 @@ def _progress(message: str) -> None:
 
 def _plan_line(project: Path) -> str:
     """One line on the plan lock: absent, kept, or how many keys changed since."""
-    from .planlock import plan_deviations
+    from report_kit.audit.planlock import plan_deviations
 
     dev = plan_deviations(project)
     if not dev["locked"]:
@@ -76,7 +76,7 @@ def main() -> None:
 @click.option("--title", help="Title written into design.yaml.")
 def new(path: Path, title: str | None) -> None:
     """Scaffold a project folder with a commented design.yaml."""
-    from .scaffold import new_project
+    from report_kit.inputs.scaffold import new_project
 
     created = new_project(path, title=title)
     click.echo(f"created {created}/design.yaml and {created}/data/units.csv (an invented sample to replace)")
@@ -87,8 +87,8 @@ def new(path: Path, title: str | None) -> None:
 @click.argument("path", type=click.Path(path_type=Path))
 def check(path: Path) -> None:
     """Validate the spec and the data and verify the assignment; write nothing."""
-    from .assignment import check_assignment
-    from .pipeline import load_project
+    from report_kit.design.assignment import check_assignment
+    from report_kit.pipeline import load_project
 
     study = load_project(path)
     d = study.spec.design
@@ -113,10 +113,10 @@ def check(path: Path) -> None:
 @click.option("--force", is_flag=True, help="Overwrite an existing assignment file.")
 def assign(path: Path, output: Path | None, force: bool) -> None:
     """Draw the assignment from design.seed and write it beside the data."""
-    from .assignment import write_assignment
-    from .data import load_units_for_assignment
-    from .pipeline import project_dir_of
-    from .spec import load_spec
+    from report_kit.design.assignment import write_assignment
+    from report_kit.inputs.data import load_units_for_assignment
+    from report_kit.pipeline import project_dir_of
+    from report_kit.inputs.spec import load_spec
 
     spec = load_spec(project_dir_of(path))
     frame = load_units_for_assignment(spec)
@@ -138,7 +138,7 @@ def assign(path: Path, output: Path | None, force: bool) -> None:
 @click.option("--no-pdf", is_flag=True, help="Skip the PDF (HTML only).")
 def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool) -> None:
     """Analyse, execute the report notebooks and render to runs/<run-id>/."""
-    from .pipeline import RunOptions, run_project
+    from report_kit.pipeline import RunOptions, run_project
 
     options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
                          argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
@@ -159,7 +159,7 @@ def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool)
 @click.option("--max-items", default=20, show_default=True, help="Changed cells and results listed before summarising.")
 def diff(run_a: Path, run_b: Path, as_json: bool, max_items: int) -> None:
     """What changed between two runs: inputs (row level, by id) and results."""
-    from .compare import compare_runs, format_diff_text
+    from report_kit.audit.compare import compare_runs, format_diff_text
 
     result = compare_runs(run_a, run_b)
     if as_json:
@@ -175,9 +175,9 @@ def diff(run_a: Path, run_b: Path, as_json: bool, max_items: int) -> None:
 @click.argument("target", type=click.Path(path_type=Path))
 def verify(target: Path) -> None:
     """Re-run a run folder (or an archive .zip) from its recorded inputs; exit 3 on any difference."""
-    from .errors import VerificationError
-    from .pipeline import analyse_project
-    from .verify import format_verify_text, verify_run
+    from report_kit.errors import VerificationError
+    from report_kit.pipeline import analyse_project
+    from report_kit.audit.verify import format_verify_text, verify_run
 
     click.echo(f"verifying {target} (re-running the analysis from the recorded inputs)…", err=True)
     report = verify_run(target, analyse=analyse_project)
@@ -191,7 +191,7 @@ def verify(target: Path) -> None:
 @click.option("-o", "--output", type=click.Path(path_type=Path), help="Zip file to write (default: beside the run).")
 def archive(run_dir: Path, output: Path | None) -> None:
     """One .zip with design.yaml, the inputs, the run folder, manifest, RO-Crate and checksums."""
-    from .archive import archive_run
+    from report_kit.audit.archive import archive_run
 
     click.echo(f"archived: {archive_run(run_dir, output)}")
 
@@ -201,8 +201,8 @@ def archive(run_dir: Path, output: Path | None) -> None:
 @click.option("--force", is_flag=True, help="Replace an existing lock (the report will show the new one).")
 def lock(path: Path, force: bool) -> None:
     """Record design.yaml as the locked plan (design.lock) before outcomes are analysed."""
-    from .pipeline import project_dir_of
-    from .planlock import lock_plan
+    from report_kit.pipeline import project_dir_of
+    from report_kit.audit.planlock import lock_plan
 
     click.echo(f"locked: {lock_plan(project_dir_of(path), force=force)}")
 
@@ -231,8 +231,8 @@ def power(path: Path, sd: float | None, effect: float | None, target_power: floa
           cluster_size: float | None, n_treated: int | None, n_control: int | None, n_clusters: int | None,
           outcome: str | None, simulate: int, draws: int, seed: int | None, as_json: bool) -> None:
     """Power and minimum detectable effect for the design as planned."""
-    from .pipeline import project_dir_of
-    from .power import format_plan_text, plan_power
+    from report_kit.pipeline import project_dir_of
+    from report_kit.planning.power import format_plan_text, plan_power
 
     if sd is None:
         raise UsageError("--sd is required: the standard deviation of the outcome in its own units "
@@ -263,7 +263,7 @@ def power(path: Path, sd: float | None, effect: float | None, target_power: floa
 @main.command(short_help="Print the JSON Schema of design.yaml.")
 def schema() -> None:
     """Print the JSON Schema of design.yaml."""
-    from .spec import design_schema
+    from report_kit.inputs.spec import design_schema
 
     click.echo(json.dumps(design_schema(), indent=2))
 

@@ -19,13 +19,13 @@ from pathlib import Path
 
 import numpy as np
 
-from . import provenance
-from .analysis import Analysis, analyse
-from .data import load_study
-from .errors import SpecError, UsageError
-from .model import Study
-from .planlock import LOCK_NAME
-from .spec import SPEC_FILENAME, load_spec
+from report_kit.audit import provenance
+from report_kit.analysis import Analysis, analyse
+from report_kit.inputs.data import load_study
+from report_kit.errors import SpecError, UsageError
+from report_kit.inputs.model import Study
+from report_kit.audit.planlock import LOCK_NAME
+from report_kit.inputs.spec import SPEC_FILENAME, load_spec
 
 log = logging.getLogger(__name__)
 
@@ -78,7 +78,7 @@ def analyse_project(project: Path | str) -> dict:
 
 def run_analysis(study: Study) -> Analysis:
     """The deterministic analysis step (the assignment check included)."""
-    from .assignment import assignment_check_status
+    from report_kit.design.assignment import assignment_check_status
 
     return analyse(study, assignment_check=assignment_check_status(study))
 
@@ -94,7 +94,8 @@ def make_run_id(study: Study, now: datetime) -> str:
 def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
                 progress: Progress = _quiet, on_run_id: Progress = _quiet) -> RunOutcome:
     """Analyse a project, execute the report notebooks, render, record provenance."""
-    from . import notebooks, render
+    from report_kit.report import notebooks
+    from report_kit.report import render
 
     started = datetime.now(timezone.utc)
     study = load_project(project)

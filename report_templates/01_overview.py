@@ -9,8 +9,8 @@ compare_to = ""
 # %%
 import pandas as pd
 
-from report_kit.planlock import plan_deviations
-from report_kit.reporting import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
+from report_kit.audit.planlock import plan_deviations
+from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results

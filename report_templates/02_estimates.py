@@ -9,8 +9,8 @@ compare_to = ""
 # %%
 import pandas as pd
 
-from report_kit.figures import effect_plot
-from report_kit.reporting import RunView, estimate_role, say, show_figure, show_table
+from report_kit.report.figures import effect_plot
+from report_kit.report.view import RunView, estimate_role, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results

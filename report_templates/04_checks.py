@@ -9,8 +9,8 @@ compare_to = ""
 # %%
 import pandas as pd
 
-from report_kit.figures_checks import plot_balance
-from report_kit.reporting import RunView, fmt_p, p_phrase, say, show_figure, show_table
+from report_kit.report.figures_checks import plot_balance
+from report_kit.report.view import RunView, fmt_p, p_phrase, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results

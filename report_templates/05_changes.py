@@ -12,9 +12,9 @@ from pathlib import Path
 
 import pandas as pd
 
-from report_kit.compare import compare_runs
-from report_kit.planlock import plan_deviations
-from report_kit.reporting import RunView, callout, fmt, say, show_table
+from report_kit.audit.compare import compare_runs
+from report_kit.audit.planlock import plan_deviations
+from report_kit.report.view import RunView, callout, fmt, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 

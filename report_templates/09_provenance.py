@@ -10,7 +10,7 @@ compare_to = ""
 import pandas as pd
 
 import report_kit
-from report_kit.reporting import RunView, say, show_table
+from report_kit.report.view import RunView, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results

@@ -1,0 +1,1 @@
+"""The audit trail: manifest, RO-Crate, diff, verify, archive and the plan lock."""

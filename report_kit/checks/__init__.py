@@ -1,0 +1,1 @@
+"""Checks of the trial itself: covariate balance, participant flow, attrition and bounds."""

@@ -1,0 +1,437 @@
+"""Attrition: missing outcomes, whether they differ by arm, and bounds on the effect.
+
+Owns: attrition rates by arm, the randomization test of differential
+attrition (same assignment-chunk interface as :mod:`report_kit.checks.balance`),
+Lee (2009) trimming bounds and Manski (1990) worst-case bounds. A unit whose
+outcome is missing counts as attrited for that outcome.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from report_kit.checks.balance import (
+    ChunkSource,
+    WeightFn,
+    _check_assignment,
+    _check_method,
+    _num,
+    _p_values,
+    _tally,
+)
+from report_kit.errors import DataError, ReportKitWarning, UsageError
+
+__all__ = [
+    "AttritionTest",
+    "EffectBounds",
+    "attrition_test",
+    "lee_bounds",
+    "manski_bounds",
+    "study_attrition",
+]
+
+
+# ---------------------------------------------------------------------------
+# validation
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True)
+class _ArmOutcomes:
+    """Observed outcome values by arm, plus the arm sizes."""
+
+    y1: np.ndarray   # observed treated outcomes
+    y0: np.ndarray   # observed control outcomes
+    n1: int
+    n0: int
+
+
+def _check_outcome(y, z, observed) -> _ArmOutcomes:
+    zb = _check_assignment(z)
+    try:
+        yv = np.asarray(y, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise DataError("`y` must hold numbers (NaN for missing)") from err
+    if yv.shape != zb.shape:
+        raise DataError(f"`y` must have one entry per unit ({zb.size}); got shape {yv.shape}")
+    if observed is None:
+        obs = ~np.isnan(yv)
+    else:
+        obs_arr = np.asarray(observed)
+        if obs_arr.shape != zb.shape or not np.isin(obs_arr, (0, 1)).all():
+            raise DataError(f"`observed` must be a 0/1 (or bool) vector of length {zb.size}")
+        obs = obs_arr.astype(bool)
+    if not np.isfinite(yv[obs]).all():
+        raise DataError("`y` must be finite wherever `observed` is true")
+    return _ArmOutcomes(y1=yv[zb & obs], y0=yv[~zb & obs], n1=int(zb.sum()), n0=int((~zb).sum()))
+
+
+# ---------------------------------------------------------------------------
+# bounds
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True)
+class EffectBounds:
+    """Bounds on an average effect; ``to_dict`` gives the ``results.json`` entry plus details."""
+
+    method: str
+    lower: float | None
+    upper: float | None
+    observed_share_treated: float
+    observed_share_control: float
+    trimmed_arm: str | None = None
+    trim_share: float | None = None
+    low: float | None = None
+    high: float | None = None
+
+    def to_dict(self) -> dict:
+        out = {
+            "method": self.method,
+            "lower": self.lower,
+            "upper": self.upper,
+            "observed_share_treated": self.observed_share_treated,
+            "observed_share_control": self.observed_share_control,
+        }
+        if self.method == "lee":
+            out.update(trimmed_arm=self.trimmed_arm, trim_share=self.trim_share)
+        else:
+            out.update(low=self.low, high=self.high)
+        return out
+
+
+def _trimmed_means(values: np.ndarray, keep_num: int, keep_den: int) -> tuple[float, float]:
+    """Means of the lowest and of the highest share ``keep_num / keep_den`` of ``values``.
+
+    The kept mass is ``K = len(values) * keep_num / keep_den``; when ``K`` is
+    not whole, the boundary value enters with weight ``K - floor(K)``, so the
+    trimmed share is exact.
+    """
+    v = np.sort(values)
+    k = v.size
+    whole, rest = divmod(k * keep_num, keep_den)
+    frac = rest / keep_den
+    mass = whole + frac
+
+    def tail_mean(s: np.ndarray) -> float:
+        total = s[:whole].sum() + (frac * s[whole] if frac > 0 else 0.0)
+        return float(total / mass)
+
+    return tail_mean(v), tail_mean(v[::-1])
+
+
+def _lee(arms: _ArmOutcomes) -> EffectBounds:
+    k1, k0 = arms.y1.size, arms.y0.size
+    share1, share0 = k1 / arms.n1, k0 / arms.n0
+    if k1 == 0 or k0 == 0:
+        warnings.warn("an arm has no observed outcome; Lee bounds are undefined",
+                      ReportKitWarning, stacklevel=3)
+        return EffectBounds(method="lee", lower=None, upper=None,
+                            observed_share_treated=share1, observed_share_control=share0)
+    # keep share p_low / p_high of the better-observed arm, as an exact fraction
+    if k1 * arms.n0 >= k0 * arms.n1:
+        trimmed = "treated" if k1 * arms.n0 > k0 * arms.n1 else None
+        low_mean, high_mean = _trimmed_means(arms.y1, k0 * arms.n1, k1 * arms.n0)
+        m0 = float(arms.y0.mean())
+        lower, upper = low_mean - m0, high_mean - m0
+        q = 1 - (k0 * arms.n1) / (k1 * arms.n0)
+    else:
+        trimmed = "control"
+        low_mean, high_mean = _trimmed_means(arms.y0, k1 * arms.n0, k0 * arms.n1)
+        m1 = float(arms.y1.mean())
+        lower, upper = m1 - high_mean, m1 - low_mean
+        q = 1 - (k1 * arms.n0) / (k0 * arms.n1)
+    return EffectBounds(method="lee", lower=_num(lower), upper=_num(upper),
+                        observed_share_treated=share1, observed_share_control=share0,
+                        trimmed_arm=trimmed, trim_share=float(q))
+
+
+def lee_bounds(y, z, observed=None) -> dict:
+    r"""Lee (2009) trimming bounds on the effect among always-observed units.
+
+    Parameters
+    ----------
+    y : array_like, shape (n,)
+        Outcome; values where ``observed`` is false are ignored (may be NaN).
+    z : array_like, shape (n,)
+        Assignment (0/1).
+    observed : array_like of bool, shape (n,), optional
+        Whether the outcome was observed; default ``~isnan(y)``.
+
+    Returns
+    -------
+    dict
+        ``method="lee", lower, upper, observed_share_treated,
+        observed_share_control, trimmed_arm ("treated"|"control"|None),
+        trim_share``.
+
+    Notes
+    -----
+    Let :math:`p_1, p_0` be the observed shares by arm. Assuming assignment
+    can only move units into (or only out of) observation (monotonicity), the
+    arm with the larger share, say treated, holds the always-observed units
+    plus a share :math:`q = (p_1 - p_0)/p_1` of others. Trimming :math:`q`
+    from the top or the bottom of its observed outcomes gives
+
+    .. math:: \Delta^{lo} = E[Y \mid Z=1, \text{obs}, Y \le y_{1-q}] - E[Y \mid Z=0, \text{obs}],
+    .. math:: \Delta^{hi} = E[Y \mid Z=1, \text{obs}, Y \ge y_{q}] - E[Y \mid Z=0, \text{obs}]
+
+    (Lee 2009, Proposition 1a); symmetrically when the control arm is better
+    observed. Here the empirical distribution is trimmed by exactly the share
+    :math:`q`, the boundary value entering with a fractional weight. When
+    :math:`p_1 = p_0` both bounds equal the difference in observed means.
+    """
+    return _lee(_check_outcome(y, z, observed)).to_dict()
+
+
+def _manski(arms: _ArmOutcomes, low: float, high: float) -> EffectBounds:
+    share1, share0 = arms.y1.size / arms.n1, arms.y0.size / arms.n0
+    sum1, sum0 = float(arms.y1.sum()), float(arms.y0.sum())
+    # E[Y(a)] lies in [sum_a/n_a + (1 - p_a) low, sum_a/n_a + (1 - p_a) high]
+    lo1, hi1 = sum1 / arms.n1 + (1 - share1) * low, sum1 / arms.n1 + (1 - share1) * high
+    lo0, hi0 = sum0 / arms.n0 + (1 - share0) * low, sum0 / arms.n0 + (1 - share0) * high
+    return EffectBounds(method="manski", lower=_num(lo1 - hi0), upper=_num(hi1 - lo0),
+                        observed_share_treated=share1, observed_share_control=share0,
+                        low=float(low), high=float(high))
+
+
+def _check_range(low, high) -> tuple[float, float]:
+    try:
+        lo, hi = float(low), float(high)
+    except (TypeError, ValueError) as err:
+        raise UsageError(f"`low` and `high` must be numbers; got {low!r} and {high!r}") from err
+    if not (np.isfinite(lo) and np.isfinite(hi) and lo < hi):
+        raise UsageError(f"`low` must be finite and below `high`; got low={lo!r}, high={hi!r}")
+    return lo, hi
+
+
+def manski_bounds(y, z, observed, low: float, high: float) -> dict:
+    r"""Manski (1990) worst-case bounds on the average treatment effect.
+
+    Parameters
+    ----------
+    y, z, observed
+        As in :func:`lee_bounds` (``observed`` may be None for ``~isnan(y)``).
+    low, high : float
+        The outcome's logical range (``OutcomeSpec.range``); observed values
+        outside it are a :class:`~report_kit.errors.DataError`.
+
+    Returns
+    -------
+    dict
+        ``method="manski", lower, upper, observed_share_treated,
+        observed_share_control, low, high``.
+
+    Notes
+    -----
+    With observed share :math:`p_a` and observed mean :math:`\bar y_a` in arm
+    :math:`a`, the mean of :math:`Y(a)` lies in
+    :math:`[p_a \bar y_a + (1-p_a)\,low,\; p_a \bar y_a + (1-p_a)\,high]`
+    (Manski 1990; Horowitz & Manski 2000), so
+
+    .. math:: \tau \in [L_1 - H_0,\; H_1 - L_0].
+
+    No assumption about why outcomes are missing is needed; the width is
+    :math:`(high - low)(2 - p_1 - p_0)`.
+    """
+    lo, hi = _check_range(low, high)
+    arms = _check_outcome(y, z, observed)
+    for label, vals in (("treated", arms.y1), ("control", arms.y0)):
+        if vals.size and (vals.min() < lo or vals.max() > hi):
+            raise DataError(
+                f"observed {label} outcomes must lie in the declared range [{lo}, {hi}]; "
+                f"got values from {vals.min()} to {vals.max()}"
+            )
+    return _manski(arms, lo, hi).to_dict()
+
+
+# ---------------------------------------------------------------------------
+# differential attrition test
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True)
+class AttritionTest:
+    """Attrition rates by arm and the randomization test of their difference, per indicator."""
+
+    labels: tuple[str, ...]
+    missing_treated: tuple[int, ...]
+    missing_control: tuple[int, ...]
+    rate_treated: tuple[float, ...]
+    rate_control: tuple[float, ...]
+    p_value: tuple[float, ...]
+    mc_std_error: tuple[float, ...] | None
+    method: str
+    draws: int
+
+    def rows(self) -> list[dict]:
+        """One dict per indicator: the ``per_outcome`` entries of ``results.json``."""
+        out = []
+        for i, label in enumerate(self.labels):
+            out.append({
+                "outcome": label,
+                "missing_treated": self.missing_treated[i],
+                "missing_control": self.missing_control[i],
+                "rate_treated": self.rate_treated[i],
+                "rate_control": self.rate_control[i],
+                "difference": self.rate_treated[i] - self.rate_control[i],
+                "p_value": self.p_value[i],
+                "method": self.method,
+                "draws": self.draws,
+                "mc_std_error": None if self.mc_std_error is None else self.mc_std_error[i],
+            })
+        return out
+
+    def to_dict(self) -> dict:
+        return {"per_outcome": self.rows()}
+
+
+def _rate_gap(R: np.ndarray, n: int) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
+    total = R.sum(axis=0)
+
+    def statistic(Z: np.ndarray, n1: np.ndarray) -> np.ndarray:
+        c1 = Z @ R
+        return np.abs(c1 / n1[:, None] - (total - c1) / (n - n1)[:, None])
+    return statistic
+
+
+def attrition_test(missing, z, chunks: ChunkSource, method: str,
+                   labels: Sequence[str] | None = None, *,
+                   weights: WeightFn | None = None) -> AttritionTest:
+    r"""Randomization test of differential attrition for one or more missingness indicators.
+
+    Parameters
+    ----------
+    missing : array_like, shape (n,) or (n, q)
+        1 where the outcome is missing (attrited), 0 where observed.
+    z : array_like, shape (n,)
+        Observed assignment (0/1).
+    chunks : iterable or callable
+        Assignment draws under the real mechanism (see :mod:`report_kit.checks.balance`).
+    method : {'exact', 'monte_carlo'}
+        How the draws were produced.
+    labels : sequence of str, optional
+        One label per indicator.
+    weights : callable, optional
+        ``chunk -> probabilities or None`` for exact enumerations whose
+        assignments are not equally likely (see :mod:`report_kit.checks.balance`).
+
+    Notes
+    -----
+    The statistic is :math:`T = |r_1 - r_0|`, the absolute difference of the
+    attrition rates by arm. Under the sharp null that assignment changes no
+    unit's missingness, the indicators are fixed and :math:`T` is recomputed
+    for every drawn assignment (Fisher 1935; Imbens & Rubin 2015, ch. 5).
+    The p-value is the share of draws with :math:`T` at least the observed
+    value (exact) or :math:`(1 + \#)/(1 + D)` (Monte Carlo, the +1 rule).
+    Under complete randomization with exact enumeration this is the
+    two-sided hypergeometric test ordered by distance from the mean.
+    """
+    zb = _check_assignment(z)
+    _check_method(method)
+    R = np.asarray(missing, dtype=float)
+    if R.ndim == 1:
+        R = R[:, None]
+    if R.ndim != 2 or R.shape[0] != zb.size or not np.isin(R, (0, 1)).all():
+        raise DataError(
+            f"`missing` must be 0/1 with shape (n,) or (n, q), n = {zb.size}; got {np.shape(missing)}"
+        )
+    labels = tuple(labels) if labels is not None else tuple(f"indicator {j + 1}" for j in range(R.shape[1]))
+    if len(labels) != R.shape[1]:
+        raise UsageError(f"`labels` must have {R.shape[1]} entries; got {len(labels)}")
+    n = zb.size
+    statistic = _rate_gap(R, n)
+    observed = statistic(zb[None, :].astype(float), np.array([zb.sum()], dtype=float))[0]
+    tally = _tally(chunks, n, statistic, observed, method, weights=weights)
+    p, se = _p_values(tally, method)
+    m1, m0 = R[zb].sum(axis=0), R[~zb].sum(axis=0)
+    return AttritionTest(
+        labels=labels,
+        missing_treated=tuple(int(v) for v in m1),
+        missing_control=tuple(int(v) for v in m0),
+        rate_treated=tuple(float(v) for v in m1 / zb.sum()),
+        rate_control=tuple(float(v) for v in m0 / (~zb).sum()),
+        p_value=tuple(float(v) for v in p),
+        mc_std_error=None if se is None else tuple(float(v) for v in se),
+        method=method,
+        draws=tally.draws,
+    )
+
+
+# ---------------------------------------------------------------------------
+# study-level entry point
+# ---------------------------------------------------------------------------
+
+
+def _overall_columns(outcomes) -> tuple[str, ...]:
+    primary = tuple(o.column for o in outcomes if o.family == "primary")
+    return primary or tuple(o.column for o in outcomes)
+
+
+def _outcome_bounds(study, spec, zb: np.ndarray) -> list[dict]:
+    y = study.outcome(spec.column)
+    arms = _check_outcome(y, zb.astype(int), None)
+    entries = []
+    lee = _lee(arms)
+    entries.append({"outcome": spec.column, "method": "lee", "lower": lee.lower, "upper": lee.upper})
+    if spec.range is not None:
+        lo, hi = _check_range(*spec.range)
+        obs = y[~np.isnan(y)]
+        if obs.size and (obs.min() < lo or obs.max() > hi):
+            raise DataError(
+                f"outcome {spec.column!r} has observed values outside its declared range "
+                f"[{lo}, {hi}] (from {obs.min()} to {obs.max()})"
+            )
+        manski = _manski(arms, lo, hi)
+        entries.append({"outcome": spec.column, "method": "manski",
+                        "lower": manski.lower, "upper": manski.upper})
+    return entries
+
+
+def study_attrition(study, chunks_factory: Callable[[], Iterable[np.ndarray]], method: str,
+                    *, weights: WeightFn | None = None) -> dict:
+    """Attrition section of ``results.json``.
+
+    Returns
+    -------
+    dict
+        ``rate_treated, rate_control, p_value, method, draws, mc_std_error``
+        for the overall indicator (a unit is attrited when any primary outcome
+        is missing; any outcome when the spec has no primary outcome; the
+        columns used are listed in ``attrited_if_missing``), ``bounds`` (Lee
+        bounds for every outcome, Manski bounds for outcomes with a declared
+        ``range``) and ``per_outcome`` (rates and test per outcome; see
+        :meth:`AttritionTest.rows`).
+
+    ``chunks_factory()`` returns a fresh iterator of assignment chunks drawn
+    under the study's mechanism; all indicators share one pass over the draws.
+    ``weights`` as in :func:`attrition_test`.
+    """
+    _check_method(method)
+    zb = _check_assignment(study.z)
+    outcomes = study.spec.outcomes
+    missing = np.column_stack([np.isnan(study.outcome(o.column)) for o in outcomes]).astype(float)
+    overall_cols = _overall_columns(outcomes)
+    idx = [i for i, o in enumerate(outcomes) if o.column in overall_cols]
+    overall = missing[:, idx].max(axis=1)
+    R = np.column_stack([overall, missing])
+    result = attrition_test(R, zb.astype(int), chunks_factory, method,
+                            labels=("overall",) + tuple(o.column for o in outcomes), weights=weights)
+    rows = result.rows()
+    head = rows[0]
+    bounds = [entry for o in outcomes for entry in _outcome_bounds(study, o, zb)]
+    return {
+        "rate_treated": head["rate_treated"],
+        "rate_control": head["rate_control"],
+        "p_value": head["p_value"],
+        "method": method,
+        "draws": head["draws"],
+        "mc_std_error": head["mc_std_error"],
+        "attrited_if_missing": list(overall_cols),
+        "bounds": bounds,
+        "per_outcome": rows[1:],
+    }

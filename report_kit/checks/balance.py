@@ -1,0 +1,611 @@
+"""Covariate balance between the arms and the CONSORT-style participant flow.
+
+Owns: the per-covariate balance table (means by arm, standardized mean
+difference, variance ratio, missing counts), the omnibus Mahalanobis balance
+test under the real assignment mechanism, and the participant-flow counts.
+Also holds the small randomization-distribution helpers (chunk validation,
+counting, the p-value rule) that :mod:`report_kit.checks.attrition` shares.
+
+Assignment draws come from outside, as *chunks*: an iterable (or a callable
+returning one) of ``(k, n)`` 0/1 arrays, one row per drawn assignment and one
+column per unit in the frame's row order, together with the method that drew
+them: ``"exact"`` (every assignment of the design, each listed once and the
+observed one among them) or ``"monte_carlo"`` (independent draws under the
+design). Results depend only on the sequence of rows, never on how they are
+split into chunks.
+
+When the enumerated assignments are not equally likely (exact enumeration of
+a Bernoulli design with ``p != 0.5``), pass ``weights``: a callable
+``chunk -> (k,) probabilities or None`` (None: equal weights), called with
+each chunk as given. Weights are only meaningful for ``"exact"``; Monte Carlo
+draws already follow the mechanism.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from report_kit.validate import finite_or_none as _num
+from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+
+logger = logging.getLogger(__name__)
+
+METHODS = ("exact", "monte_carlo")
+
+#: Thresholds on ``|std_diff|`` used to flag covariates (common practice, not a
+#: test): at most 0.1 is "small", above 0.25 is "large", in between "moderate".
+SMD_THRESHOLDS = (0.1, 0.25)
+
+#: Relative tolerance when a drawn statistic is compared with the observed one,
+#: so that floating-point noise does not break ties: a draw counts as at least
+#: as extreme when ``t_draw >= t_obs - TIE_RTOL * max(1, |t_obs|)``.
+TIE_RTOL = 1e-9
+
+__all__ = [
+    "METHODS",
+    "SMD_THRESHOLDS",
+    "CovariateBalance",
+    "OmnibusBalance",
+    "balance_rows",
+    "covariate_balance",
+    "mahalanobis_balance_test",
+    "omnibus_balance",
+    "participant_flow",
+    "study_balance",
+]
+
+ChunkSource = Iterable[np.ndarray] | Callable[[], Iterable[np.ndarray]]
+WeightFn = Callable[[np.ndarray], "np.ndarray | None"]
+
+
+# ---------------------------------------------------------------------------
+# helpers shared with attrition.py
+# ---------------------------------------------------------------------------
+
+
+
+def _check_method(method: str) -> str:
+    if method not in METHODS:
+        raise UsageError(f"`method` must be one of {{'exact', 'monte_carlo'}}; got {method!r}")
+    return method
+
+
+def _check_assignment(z, n: int | None = None) -> np.ndarray:
+    """Validate a 0/1 assignment vector with both arms present; return it as bool."""
+    arr = np.asarray(z)
+    if arr.ndim != 1:
+        raise DataError(f"`z` must be one-dimensional; got shape {arr.shape}")
+    if n is not None and arr.size != n:
+        raise DataError(f"`z` must have one entry per unit ({n}); got {arr.size}")
+    if arr.dtype.kind == "f" and np.isnan(arr).any():
+        raise DataError("`z` must not contain missing values")
+    if not np.isin(arr, (0, 1)).all():
+        bad = arr[~np.isin(arr, (0, 1))][0].item()
+        raise DataError(f"`z` must contain only 0 and 1; got {bad!r}")
+    zb = arr.astype(bool)
+    if zb.all() or not zb.any():
+        raise DesignError(
+            f"need at least one treated and one control unit; got {int(zb.sum())} treated "
+            f"and {int((~zb).sum())} control"
+        )
+    return zb
+
+
+def _iter_chunks(chunks: ChunkSource, n: int) -> Iterator[np.ndarray]:
+    """Yield validated assignment chunks as given (2-D, 0/1 values)."""
+    source = chunks() if callable(chunks) else chunks
+    try:
+        iterator = iter(source)
+    except TypeError as err:
+        raise UsageError(
+            f"`chunks` must be an iterable of (k, n) 0/1 arrays or a callable returning one; "
+            f"got {type(source).__name__}"
+        ) from err
+    for i, chunk in enumerate(iterator):
+        arr = np.asarray(chunk)
+        if arr.ndim == 1:
+            arr = arr[None, :]
+        if arr.ndim != 2 or arr.shape[1] != n:
+            raise UsageError(
+                f"assignment chunk {i} must have shape (k, {n}); got {np.shape(chunk)}"
+            )
+        if arr.dtype.kind in "iu":
+            bad = arr.size > 0 and (arr.min() < 0 or arr.max() > 1)
+        else:
+            bad = arr.dtype.kind != "b" and not np.isin(arr, (0, 1)).all()
+        if bad:
+            raise UsageError(f"assignment chunk {i} must contain only 0 and 1")
+        yield arr
+
+
+def _chunk_weights(weights: WeightFn | None, chunk: np.ndarray, method: str, i: int) -> np.ndarray | None:
+    if weights is None:
+        return None
+    w = weights(chunk)
+    if w is None:
+        return None
+    if method != "exact":
+        raise UsageError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
+    w = np.asarray(w, dtype=float)
+    if w.shape != (chunk.shape[0],) or not np.isfinite(w).all() or (w < 0).any():
+        raise UsageError(f"`weights` of chunk {i} must be {chunk.shape[0]} finite non-negative numbers")
+    return w
+
+
+@dataclass(frozen=True, kw_only=True)
+class _Tally:
+    """What one pass over the draws produced for ``q`` statistics."""
+
+    counts: np.ndarray      # (q,) weight of draws at least as extreme as the observed value
+    total: float            # total weight of the draws used
+    draws: int              # draws used (both arms non-empty)
+    skipped: int            # draws with an empty arm (excluded)
+    null: np.ndarray | None  # (draws, q) drawn statistics when kept
+    null_weights: np.ndarray | None  # (draws,) their weights when kept and unequal
+
+
+def _tally(
+    chunks: ChunkSource,
+    n: int,
+    statistic: Callable[[np.ndarray, np.ndarray], np.ndarray],
+    observed: np.ndarray,
+    method: str,
+    *,
+    weights: WeightFn | None = None,
+    keep_null: bool = False,
+) -> _Tally:
+    """Run ``statistic`` over every drawn assignment and count extreme draws.
+
+    ``statistic(Z, n1)`` receives a float ``(k, n)`` chunk with ``n1 = Z.sum(1)``
+    already restricted to draws with both arms non-empty, and returns ``(k, q)``.
+    Counts are weighted when ``weights`` gives unequal weights.
+    """
+    observed = np.asarray(observed, dtype=float)
+    threshold = observed - TIE_RTOL * np.maximum(1.0, np.abs(observed))
+    counts = np.zeros(observed.shape)
+    total = 0.0
+    draws = skipped = 0
+    kept: list[np.ndarray] = []
+    kept_w: list[np.ndarray] = []
+    for i, chunk in enumerate(_iter_chunks(chunks, n)):
+        w = _chunk_weights(weights, chunk, method, i)
+        Z = chunk.astype(np.float64)
+        n1 = Z.sum(axis=1)
+        ok = (n1 > 0) & (n1 < n)
+        skipped += int((~ok).sum())
+        if not ok.any():
+            continue
+        Z, n1 = Z[ok], n1[ok]
+        w = np.ones(Z.shape[0]) if w is None else w[ok]
+        values = statistic(Z, n1)
+        counts += w @ (values >= threshold)
+        total += float(w.sum())
+        draws += Z.shape[0]
+        if keep_null:
+            kept.append(values)
+            kept_w.append(w)
+    if draws == 0 or total <= 0:
+        raise UsageError("`chunks` yielded no assignment with both arms non-empty")
+    if skipped:
+        logger.debug("left out %d drawn assignments with an empty arm; %d used", skipped, draws)
+    null = np.concatenate(kept, axis=0) if keep_null else None
+    null_w = np.concatenate(kept_w) if keep_null and weights is not None else None
+    return _Tally(counts=counts, total=total, draws=draws, skipped=skipped, null=null, null_weights=null_w)
+
+
+def _p_values(tally: _Tally, method: str) -> tuple[np.ndarray, np.ndarray | None]:
+    """The randomization p-values and, for Monte Carlo, their standard errors.
+
+    Exact: ``p = #{draws with T >= t_obs} / D`` over the full enumeration
+    (with weights: the probability mass of those draws over the total mass).
+    Monte Carlo: ``p = (1 + #{T >= t_obs}) / (1 + D)`` (the +1 rule; the
+    observed assignment counts as one draw), which keeps the test valid
+    (Phipson & Smyth 2010). The Monte Carlo standard error is
+    ``sqrt(p_hat (1 - p_hat) / D)`` with ``p_hat = #{T >= t_obs} / D``.
+    """
+    counts, d = tally.counts, tally.draws
+    if method == "exact":
+        if (counts <= 0).any():
+            raise DesignError(
+                "the exact enumeration does not contain the observed assignment "
+                "(no draw is as extreme as the observed statistic)"
+            )
+        return np.minimum(1.0, counts / tally.total), None
+    p_hat = counts / d
+    return (counts + 1) / (d + 1), np.sqrt(p_hat * (1 - p_hat) / d)
+
+
+# ---------------------------------------------------------------------------
+# balance table
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True)
+class CovariateBalance:
+    """Balance of one covariate; field names match ``results.json`` ``balance.covariates``."""
+
+    name: str
+    mean_treated: float | None
+    mean_control: float | None
+    sd_treated: float | None
+    sd_control: float | None
+    std_diff: float | None
+    variance_ratio: float | None
+    missing_treated: int
+    missing_control: int
+    flag: str | None
+
+    def to_dict(self) -> dict:
+        return {
+            "name": self.name,
+            "mean_treated": self.mean_treated,
+            "mean_control": self.mean_control,
+            "sd_treated": self.sd_treated,
+            "sd_control": self.sd_control,
+            "std_diff": self.std_diff,
+            "variance_ratio": self.variance_ratio,
+            "missing_treated": self.missing_treated,
+            "missing_control": self.missing_control,
+            "flag": self.flag,
+        }
+
+
+def _check_covariates(X, z, names) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
+    zb = _check_assignment(z)
+    try:
+        arr = np.asarray(X, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise DataError("`X` must hold numbers (NaN for missing)") from err
+    if arr.ndim == 1:
+        arr = arr[:, None]
+    if arr.ndim != 2 or arr.shape[0] != zb.size:
+        raise DataError(
+            f"`X` must have shape (n, p) with n = {zb.size} units; got {np.shape(X)}"
+        )
+    if names is None:
+        names = [f"x{j + 1}" for j in range(arr.shape[1])]
+    names = tuple(str(s) for s in names)
+    if len(names) != arr.shape[1]:
+        raise UsageError(f"`names` must have {arr.shape[1]} entries (one per column of X); got {len(names)}")
+    dup = sorted({s for s in names if names.count(s) > 1})
+    if dup:
+        raise UsageError(f"`names` must be unique; repeated: {dup}")
+    if np.isinf(arr).any():
+        raise DataError("`X` must not contain infinite values")
+    return arr, zb, names
+
+
+def _flag(d: float | None) -> str | None:
+    """Size class of ``|d|`` by the common-practice thresholds 0.1 and 0.25."""
+    if d is None:
+        return None
+    small, large = SMD_THRESHOLDS
+    a = abs(d)
+    return "small" if a <= small else ("moderate" if a <= large else "large")
+
+
+def _arm_summary(x: np.ndarray) -> tuple[float | None, float | None, int]:
+    """Mean, SD (ddof=1) and missing count of one arm's values."""
+    obs = x[~np.isnan(x)]
+    mean = float(obs.mean()) if obs.size else None
+    sd = float(obs.std(ddof=1)) if obs.size >= 2 else None
+    return mean, sd, int(x.size - obs.size)
+
+
+def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray) -> CovariateBalance:
+    m1, s1, miss1 = _arm_summary(x[zb])
+    m0, s0, miss0 = _arm_summary(x[~zb])
+    std_diff = variance_ratio = None
+    if None not in (m1, m0, s1, s0):
+        pooled = np.sqrt((s1 ** 2 + s0 ** 2) / 2)
+        if pooled > 0:
+            std_diff = (m1 - m0) / pooled
+        else:
+            warnings.warn(
+                f"covariate {name!r} is constant within both arms; its standardized "
+                "difference is undefined", ReportKitWarning, stacklevel=3,
+            )
+        if s0 > 0:
+            variance_ratio = s1 ** 2 / s0 ** 2
+    return CovariateBalance(
+        name=name, mean_treated=_num(m1), mean_control=_num(m0),
+        sd_treated=_num(s1), sd_control=_num(s0),
+        std_diff=_num(std_diff), variance_ratio=_num(variance_ratio),
+        missing_treated=miss1, missing_control=miss0, flag=_flag(_num(std_diff)),
+    )
+
+
+def covariate_balance(X, z, names: Sequence[str]) -> tuple[CovariateBalance, ...]:
+    """Per-covariate balance as result objects (see :func:`balance_rows`)."""
+    arr, zb, names = _check_covariates(X, z, names)
+    return tuple(_one_covariate(name, arr[:, j], zb) for j, name in enumerate(names))
+
+
+def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
+    r"""Means by arm, standardized mean difference and variance ratio per covariate.
+
+    Parameters
+    ----------
+    X : array_like, shape (n, p)
+        Baseline covariates, NaN for missing. Each statistic uses the
+        non-missing values of its arm; missing values are counted.
+    z : array_like, shape (n,)
+        Assignment, 1 treated and 0 control.
+    names : sequence of str
+        One name per column of ``X``.
+
+    Returns
+    -------
+    list of dict
+        One dict per covariate with ``name, mean_treated, mean_control,
+        sd_treated, sd_control, std_diff, variance_ratio, missing_treated,
+        missing_control, flag``.
+
+    Notes
+    -----
+    With arm means :math:`\bar x_1, \bar x_0` and sample standard deviations
+    :math:`s_1, s_0` (divisor :math:`n_a - 1`), the standardized mean
+    difference is
+
+    .. math:: d = \frac{\bar x_1 - \bar x_0}{\sqrt{(s_1^2 + s_0^2)/2}}
+
+    (Rosenbaum & Rubin 1985; Austin 2009), and the variance ratio is
+    :math:`s_1^2 / s_0^2`. ``flag`` classes :math:`|d|` as ``"small"``
+    (:math:`\le 0.1`), ``"moderate"`` (:math:`\le 0.25`) or ``"large"``; these
+    cut-offs are common practice (Stuart 2010), not a test. Undefined values
+    (fewer than two observed values in an arm, zero pooled SD, zero control
+    variance) are None.
+    """
+    return [row.to_dict() for row in covariate_balance(X, z, names)]
+
+
+# ---------------------------------------------------------------------------
+# omnibus Mahalanobis test
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True)
+class OmnibusBalance:
+    """The omnibus balance test; ``to_dict`` feeds ``results.json`` ``balance.omnibus``.
+
+    ``null_distribution`` keeps every drawn statistic (and ``null_weights``
+    their probabilities when weights were given) so the p-value can be audited.
+    """
+
+    statistic: float | None
+    p_value: float | None
+    method: str
+    draws: int
+    df: int
+    mc_std_error: float | None
+    null_distribution: np.ndarray | None = field(default=None, compare=False, repr=False)
+    null_weights: np.ndarray | None = field(default=None, compare=False, repr=False)
+
+    def to_dict(self) -> dict:
+        return {
+            "statistic": self.statistic,
+            "p_value": self.p_value,
+            "method": self.method,
+            "draws": self.draws,
+            "df": self.df,
+            "mc_std_error": self.mc_std_error,
+        }
+
+
+def _impute_with_indicators(arr: np.ndarray, names: tuple[str, ...]) -> np.ndarray:
+    """Fill missing values with the column mean and append a missingness indicator.
+
+    Both steps use the pooled sample only, never the assignment, so the
+    statistic stays a fixed function of the assignment vector.
+    """
+    cols, patterns = [], []
+    for j, name in enumerate(names):
+        x = arr[:, j]
+        miss = np.isnan(x)
+        if miss.all():
+            warnings.warn(f"covariate {name!r} is missing for every unit; the omnibus test leaves it out",
+                          ReportKitWarning, stacklevel=4)
+            continue
+        if miss.any():
+            cols.append(np.where(miss, x[~miss].mean(), x))
+            if not any(np.array_equal(miss, seen) for seen in patterns):
+                patterns.append(miss)  # one indicator per distinct missingness pattern
+        else:
+            cols.append(x)
+    cols.extend(m.astype(float) for m in patterns)
+    return np.column_stack(cols) if cols else np.empty((arr.shape[0], 0))
+
+
+def _whiten(arr: np.ndarray) -> np.ndarray:
+    """Centre the columns and rotate them to unit sample covariance.
+
+    Returns ``W`` (n, r) with ``W.T @ W / (n - 1) = I_r``, where ``r`` is the
+    numerical rank of the sample covariance; so that
+    ``s' S^+ s = ||Z W||^2`` for any sum ``s`` of centred rows.
+    """
+    n = arr.shape[0]
+    xc = arr - arr.mean(axis=0)
+    scale = xc.std(axis=0, ddof=1)
+    keep = scale > 0
+    xc = xc[:, keep] / scale[keep]
+    if xc.shape[1] == 0:
+        return xc
+    cov = xc.T @ xc / (n - 1)
+    w, v = np.linalg.eigh(cov)
+    good = w > 1e-10 * w.max()
+    return xc @ (v[:, good] / np.sqrt(w[good]))
+
+
+def _mahalanobis_rows(W: np.ndarray, n: int) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
+    def statistic(Z: np.ndarray, n1: np.ndarray) -> np.ndarray:
+        s = Z @ W
+        return ((s * s).sum(axis=1) * n / (n1 * (n - n1)))[:, None]
+    return statistic
+
+
+def mahalanobis_balance_test(
+    X, z, chunks: ChunkSource, method: str, names: Sequence[str] | None = None,
+    *, weights: WeightFn | None = None,
+) -> OmnibusBalance:
+    r"""Omnibus balance test: the randomization distribution of the Mahalanobis distance.
+
+    Parameters
+    ----------
+    X : array_like, shape (n, p)
+        Baseline covariates (NaN = missing).
+    z : array_like, shape (n,)
+        Observed assignment (0/1).
+    chunks : iterable or callable
+        Assignment draws under the real mechanism: ``(k, n)`` 0/1 arrays
+        (or a callable returning an iterable of them).
+    method : {'exact', 'monte_carlo'}
+        How the draws were produced.
+    names : sequence of str, optional
+        Covariate names, used in warnings.
+    weights : callable, optional
+        ``chunk -> probabilities or None`` for exact enumerations whose
+        assignments are not equally likely (see the module docstring).
+
+    Returns
+    -------
+    OmnibusBalance
+
+    Notes
+    -----
+    With :math:`S` the pooled sample covariance of the covariates (divisor
+    :math:`n-1`) and :math:`\bar x_1 - \bar x_0` the difference of arm means,
+
+    .. math:: M = (\bar x_1 - \bar x_0)^\top
+              \Big[\big(\tfrac{1}{n_1} + \tfrac{1}{n_0}\big) S\Big]^{-1}
+              (\bar x_1 - \bar x_0)
+
+    (Morgan & Rubin 2012). The statistic is computed for every drawn
+    assignment, with that draw's :math:`n_1, n_0`; the p-value is the share of
+    draws with :math:`M` at least as large as the observed value (exact), or
+    :math:`(1 + \#)/(1 + D)` for :math:`D` Monte Carlo draws (with
+    ``weights``: the probability mass of those draws). Draws with an
+    empty arm are left out (the test is then conditional on both arms being
+    non-empty, which the observed assignment satisfies). Under complete
+    randomization :math:`M` is approximately :math:`\chi^2_p`, and its exact
+    randomization mean is :math:`p`.
+
+    Missing covariate values are replaced by the pooled mean and a
+    missingness indicator is added for each distinct pattern of missing
+    values; constant or collinear directions are dropped (``df`` = rank used).
+    """
+    arr, zb, names = _check_covariates(X, z, names)
+    _check_method(method)
+    n = zb.size
+    filled = _impute_with_indicators(arr, names)
+    W = _whiten(filled)
+    if W.shape[1] == 0:
+        return OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
+    if W.shape[1] < filled.shape[1]:
+        warnings.warn(
+            f"the covariates span {W.shape[1]} of {filled.shape[1]} dimensions (constant or collinear "
+            "columns); the omnibus statistic uses the independent directions only",
+            ReportKitWarning, stacklevel=2,
+        )
+    statistic = _mahalanobis_rows(W, n)
+    observed = statistic(zb[None, :].astype(float), np.array([zb.sum()], dtype=float))[0]
+    tally = _tally(chunks, n, statistic, observed, method, weights=weights, keep_null=True)
+    p, se = _p_values(tally, method)
+    return OmnibusBalance(
+        statistic=float(observed[0]), p_value=float(p[0]), method=method,
+        draws=tally.draws, df=int(W.shape[1]),
+        mc_std_error=None if se is None else float(se[0]),
+        null_distribution=tally.null[:, 0], null_weights=tally.null_weights,
+    )
+
+
+def omnibus_balance(
+    X, z, chunks: ChunkSource, method: str, names: Sequence[str] | None = None,
+    *, weights: WeightFn | None = None,
+) -> dict:
+    """The ``results.json`` form of :func:`mahalanobis_balance_test`.
+
+    Keys: ``statistic, p_value, method, draws, df, mc_std_error``.
+    """
+    return mahalanobis_balance_test(X, z, chunks, method, names, weights=weights).to_dict()
+
+
+# ---------------------------------------------------------------------------
+# study-level entry points
+# ---------------------------------------------------------------------------
+
+
+def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], method: str,
+                  *, weights: WeightFn | None = None) -> dict:
+    """Balance section of ``results.json``: ``{covariates: [...], omnibus: {...}}``.
+
+    Uses the spec's pre-specified ``analysis.covariates``. With no covariates
+    the table is empty and the omnibus entry holds None values.
+    ``chunks_factory()`` must return a fresh iterator of assignment chunks
+    drawn under the study's mechanism, in the frame's row order; ``weights``
+    as in :func:`mahalanobis_balance_test`.
+    """
+    _check_method(method)
+    names = tuple(study.spec.analysis.covariates)
+    if not names:
+        empty = OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
+        return {"covariates": [], "omnibus": empty.to_dict()}
+    X = study.frame.loc[:, list(names)].to_numpy(dtype=float)
+    z = study.z
+    return {
+        "covariates": balance_rows(X, z, names),
+        "omnibus": omnibus_balance(X, z, chunks_factory, method, names, weights=weights),
+    }
+
+
+def _main_estimate_sizes(estimates, outcome: str) -> tuple[int, int] | None:
+    for e in estimates or ():
+        if (e.get("outcome") == outcome and e.get("estimator") == "unadjusted"
+                and e.get("estimand") in ("ATE", "ITT") and e.get("subgroup") is None):
+            return int(e["n_treated"]), int(e["n_control"])
+    return None
+
+
+def participant_flow(study, estimates: Sequence[dict] | None = None) -> list[dict]:
+    """CONSORT-style participant flow by arm and outcome.
+
+    One dict per outcome and arm (``"treated"`` then ``"control"``):
+
+    ``outcome``, ``arm``, ``randomized`` (units assigned to the arm),
+    ``received_treatment`` (units of the arm with ``compliance.received`` = 1;
+    None without a compliance column), ``outcome_observed`` (non-missing
+    outcome), ``lost`` (``randomized - outcome_observed``) and ``analysed``
+    (units in the main unadjusted ITT/ATE estimate when ``estimates`` — the
+    ``results.json`` list — is given, else the units with an observed outcome,
+    the complete-case rule of the estimators).
+
+    The stages follow the CONSORT 2010 flow diagram (Schulz, Altman & Moher 2010).
+    """
+    zb = _check_assignment(study.z)
+    received = None
+    if study.spec.compliance is not None:
+        received = study.frame[study.spec.compliance.received].to_numpy(dtype=float) == 1
+    rows = []
+    for spec in study.spec.outcomes:
+        observed = ~np.isnan(study.outcome(spec.column))
+        sizes = _main_estimate_sizes(estimates, spec.column)
+        for arm, mask in (("treated", zb), ("control", ~zb)):
+            n_obs = int(observed[mask].sum())
+            if sizes is None:
+                analysed = n_obs
+            else:
+                analysed = sizes[0] if arm == "treated" else sizes[1]
+            rows.append({
+                "outcome": spec.column,
+                "arm": arm,
+                "randomized": int(mask.sum()),
+                "received_treatment": None if received is None else int(received[mask].sum()),
+                "outcome_observed": n_obs,
+                "lost": int(mask.sum()) - n_obs,
+                "analysed": analysed,
+            })
+    return rows

@@ -1,0 +1,1 @@
+"""Design-based estimators: Neyman differences, Lin adjustment, noncompliance, subgroups."""

@@ -1,0 +1,1 @@
+"""The randomization engine: test statistics, null distributions, p-values, test inversion, multiplicity."""

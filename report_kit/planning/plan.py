@@ -1,0 +1,565 @@
+"""The power plan of a project folder: power and MDE of its design as planned.
+
+Owns :func:`plan_power` (behind ``report-kit power``), its result
+:class:`PowerPlan` and the text summary :func:`format_plan_text`: the planned
+units (from the units table, or from planned sizes), the analytic power of
+the design and the simulation of the planned experiment under its own
+mechanism and randomization test. Built on :mod:`report_kit.planning.core`;
+also importable from :mod:`report_kit.planning.power`.
+"""
+
+from __future__ import annotations
+
+import difflib
+import warnings
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, replace
+from fractions import Fraction
+from pathlib import Path
+
+import numpy as np
+
+from report_kit.validate import closed_unit_interval, finite_number
+from report_kit.planning.core import (
+    _check_positive,
+    _check_progress,
+    _check_unit_interval,
+    _count_rejections,
+    _plain,
+    _simulation_summary,
+    planned_power,
+)
+from report_kit.inputs.data import load_units_for_assignment, resolve_inside
+from report_kit.design.mechanism import draw_assignment, mechanism_from_arrays, number_treated
+from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.inputs.model import OutcomeSpec, Spec
+from report_kit.inference.randomization import randomization_test
+from report_kit.inputs.spec import load_spec
+
+__all__ = ["DEFAULT_TEST_DRAWS", "SIM_EXACT_LIMIT", "PowerPlan", "format_plan_text", "plan_power"]
+
+
+# ---------------------------------------------------------------------------
+# the design as planned, from a project folder
+# ---------------------------------------------------------------------------
+
+#: Randomization draws per simulated experiment: alpha * (B + 1) is whole at
+#: alpha = 0.05 and 0.01 (common practice).
+DEFAULT_TEST_DRAWS = 499
+#: Simulated tests enumerate every assignment up to this many (and ``analysis.max_exact``):
+#: cheaper than random draws for small designs, and what the analysis itself does.
+SIM_EXACT_LIMIT = 10_000
+_BLOCKED = frozenset({"blocked", "blocked_cluster", "matched_pairs"})
+_CLUSTERED = frozenset({"cluster", "blocked_cluster"})
+
+
+@dataclass(frozen=True, kw_only=True)
+class _PlanOptions:
+    sd: float
+    effect: float | None
+    power: float
+    icc: float
+    cluster_size: float | None
+    n_treated: int | None
+    n_control: int | None
+    n_clusters: int | None
+    simulate: int
+    draws: int
+    seed: int | None
+
+    @property
+    def sizes_given(self) -> bool:
+        return any(v is not None for v in (self.n_treated, self.n_control, self.n_clusters, self.cluster_size))
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class _PlannedUnits:
+    """The units of a planned design, read from the units table or built from the planned sizes.
+
+    ``ids`` is ``None`` when no unit-level design can be built (the simulation
+    is then refused with ``why_not``); ``n_treated`` and ``n_control`` are
+    expected numbers of units.
+    """
+
+    mechanism: str
+    sizes_from: str
+    units_table: str | None
+    ids: np.ndarray | None
+    block: np.ndarray | None
+    cluster: np.ndarray | None
+    probability: float
+    n_units: int
+    n_treated: float
+    n_control: float
+    n_blocks: int | None
+    n_clusters: int | None
+    clusters_treated: int | None
+    cluster_size: float
+    why_not: str = ""
+
+
+@dataclass(frozen=True, kw_only=True)
+class PowerPlan:
+    """Power and minimum detectable effect of a project's design as planned.
+
+    Attributes
+    ----------
+    project, title : str
+        The project folder and the spec's title.
+    mechanism : str
+        ``design.mechanism``.
+    sizes_from : {"data", "options"}
+        Where the sizes came from: the units table, or the planned sizes given.
+    units_table : str or None
+        ``data.units`` when ``sizes_from == "data"``.
+    n_units : int
+    n_blocks, n_clusters, clusters_treated : int or None
+        ``None`` when the design has no blocks (clusters).
+    outcome, statistic : str
+        The outcome whose pre-specified test (statistic, alternative) is planned for.
+    analytic : dict
+        :func:`planned_power` for the design (expected arm sizes, mean cluster size).
+    simulation : dict or None
+        :func:`simulated_power`-style summary of the simulation, with
+        ``seed``, ``draws``, ``test_method``, ``statistic``, ``alternative``,
+        ``effect_from`` and ``undefined``; ``None`` when not simulated.
+    """
+
+    project: str
+    title: str
+    mechanism: str
+    sizes_from: str
+    units_table: str | None
+    n_units: int
+    n_blocks: int | None
+    n_clusters: int | None
+    clusters_treated: int | None
+    outcome: str
+    statistic: str
+    analytic: dict
+    simulation: dict | None = None
+
+    def to_dict(self) -> dict:
+        a = self.analytic
+        return {
+            "project": self.project, "title": self.title, "outcome": self.outcome, "statistic": self.statistic,
+            "design": {
+                "mechanism": self.mechanism, "sizes_from": self.sizes_from, "units_table": self.units_table,
+                "n_units": self.n_units, "n_treated": a["n_treated"], "n_control": a["n_control"],
+                "n_blocks": self.n_blocks, "n_clusters": self.n_clusters,
+                "clusters_treated": self.clusters_treated,
+                "clusters_control": None if self.n_clusters is None else self.n_clusters - self.clusters_treated,
+                "cluster_size": a["cluster_size"], "icc": a["icc"], "design_effect": a["design_effect"],
+            },
+            "analytic": dict(a),
+            "simulation": None if self.simulation is None else dict(self.simulation),
+        }
+
+
+def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: float | None = None,
+               power: float = 0.8, icc: float | None = None, cluster_size: float | None = None,
+               n_treated: int | None = None, n_control: int | None = None, n_clusters: int | None = None,
+               outcome: str | None = None, simulate: int = 0, draws: int = DEFAULT_TEST_DRAWS,
+               seed: int | None = None, progress: Callable[[int, int], None] | None = None) -> PowerPlan:
+    r"""Power and MDE of a project's design as planned, before (or without) outcome data.
+
+    Parameters
+    ----------
+    project : path or Spec
+        A project folder (or its ``design.yaml``), or a loaded spec.
+    sd : float
+        Outcome standard deviation :math:`\sigma` (required).
+    effect : float, optional
+        Effect for the power; the MDE at ``power`` is always given.
+    power : float, default 0.8
+        Target power of the MDE.
+    icc : float
+        Intraclass correlation :math:`\rho`; required for cluster designs,
+        not accepted for the others.
+    cluster_size, n_treated, n_control, n_clusters : optional
+        The planned sizes, used only while the units table named by
+        ``data.units`` does not exist (it gives them otherwise). Cluster
+        designs need ``cluster_size`` :math:`m` and either ``n_clusters``
+        (split by ``design.probability``, default 0.5) or ``n_treated`` and
+        ``n_control`` in units; other designs need ``n_treated`` and
+        ``n_control``.
+    outcome : str, optional
+        Outcome whose pre-specified test is planned for (default: the first
+        primary outcome); sets the alternative and the simulated statistic.
+    simulate : int, default 0
+        Number of simulated experiments (0: analytic only).
+    draws : int, default 499
+        Randomization draws of the test in each simulated experiment; every
+        assignment is used instead when there are at most
+        ``max(draws, SIM_EXACT_LIMIT)`` (10 000) and at most
+        ``analysis.max_exact``.
+    seed : int, optional
+        Seed of the simulation (default ``analysis.seed``).
+    progress : callable ``(done, total)``, optional
+        Called after each simulated experiment.
+
+    Returns
+    -------
+    PowerPlan
+
+    Notes
+    -----
+    With a units table, the sizes are those of the real design: the number
+    of randomization units (units or clusters) treated in each stratum is
+    :func:`~report_kit.design.mechanism.number_treated` of ``design.probability``
+    (0.5 when absent, as ``report-kit assign`` draws it), and the expected
+    number of treated units is :math:`\sum_s (k_s/G_s)\,n_s` over strata
+    :math:`s` with :math:`G_s` randomization units, :math:`k_s` of them
+    treated, and :math:`n_s` units (:math:`np` for ``bernoulli``). The mean
+    cluster size is :math:`m = n/J` for :math:`J` clusters.
+
+    The analytic part is :func:`planned_power` with the design effect
+    :math:`1 + (m - 1)\rho` (Kish 1965; Donner & Klar 2000) and the
+    spec's ``alpha`` and the outcome's ``alternative``. Blocks and pairs are
+    left out of the analytic formula (no block effects are assumed), which
+    is conservative when blocks explain outcome variance.
+
+    The simulation (Arnold et al. 2011) repeats, for experiment :math:`i`
+    with generator ``default_rng`` of the :math:`i`-th child of
+    ``SeedSequence(seed)``: control outcomes
+    :math:`y_{0i} = u_{c(i)} + e_i` with :math:`u_c \sim N(0, \rho\sigma^2)`
+    per cluster and :math:`e_i \sim N(0, (1-\rho)\sigma^2)` (so the total
+    variance is :math:`\sigma^2` and the intraclass correlation
+    :math:`\rho`, as in the analytic formula); an assignment :math:`z` drawn
+    by :func:`~report_kit.design.mechanism.draw_assignment` with a fresh seed;
+    :math:`y = y_0 + \tau z`; and the outcome's randomization test
+    (:func:`~report_kit.inference.randomization.randomization_test`) over ``draws``
+    random assignments of the same mechanism (or all of them, see
+    ``draws``), conditioned on the drawn numbers treated. Power is the share of :math:`p \le \alpha`. Without
+    ``effect`` the simulation uses the analytic MDE, so its power can be read
+    against the target. A simulated experiment whose statistic is undefined,
+    or a Bernoulli draw with an empty arm, counts as not rejecting.
+    """
+    spec = project if isinstance(project, Spec) else load_spec(project)
+    opts = _check_plan(spec, sd=sd, effect=effect, power=power, icc=icc, cluster_size=cluster_size,
+                       n_treated=n_treated, n_control=n_control, n_clusters=n_clusters,
+                       simulate=simulate, draws=draws, seed=seed)
+    progress = _check_progress(progress)
+    target = _target_outcome(spec, outcome)
+    units = _planned_units(spec, opts)
+    if opts.simulate and units.ids is None:
+        raise UsageError(f"cannot simulate: {units.why_not}")
+    analytic = planned_power(n_treated=units.n_treated, n_control=units.n_control, sd=opts.sd,
+                             effect=opts.effect, power=opts.power, icc=opts.icc,
+                             cluster_size=units.cluster_size, alpha=spec.analysis.alpha,
+                             alternative=target.alternative)
+    simulation = None
+    if opts.simulate:
+        simulation = _simulate_plan(units, target, analytic, opts, alpha=spec.analysis.alpha,
+                                    max_exact=spec.analysis.max_exact,
+                                    seed=spec.analysis.seed if opts.seed is None else opts.seed,
+                                    progress=progress)
+    return PowerPlan(
+        project=str(spec.project_dir), title=spec.title, mechanism=units.mechanism,
+        sizes_from=units.sizes_from, units_table=units.units_table, n_units=units.n_units,
+        n_blocks=units.n_blocks, n_clusters=units.n_clusters, clusters_treated=units.clusters_treated,
+        outcome=target.column, statistic=target.statistic, analytic=analytic, simulation=simulation,
+    )
+
+
+# ----------------------------------------------------------------- validation of the plan
+
+
+def _check_count(name: str, value) -> int | None:
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+        raise UsageError(f"`{name}` must be a whole number >= 1; got {value!r}")
+    return int(value)
+
+
+def _check_plan(spec: Spec, *, sd, effect, power, icc, cluster_size, n_treated, n_control, n_clusters,
+                simulate, draws, seed) -> _PlanOptions:
+    kind = spec.design.mechanism
+    clustered = kind in _CLUSTERED
+    if sd is None:
+        raise UsageError("`sd` is required: the standard deviation of the outcome in its own units "
+                         "(e.g. from a pilot or an earlier study)")
+    sd = _check_positive("sd", sd)
+    if effect is not None:
+        effect = finite_number("effect", effect)
+    power = _check_unit_interval("power", power)
+    if clustered and icc is None:
+        raise UsageError(f"`icc` is required for a {kind} design: the intraclass correlation of the outcome "
+                         "within clusters, a number in [0, 1]")
+    if not clustered and icc not in (None, 0):
+        raise UsageError(f"`icc` applies to cluster designs only; design.mechanism is {kind!r}")
+    icc = 0.0 if icc is None else closed_unit_interval("icc", icc)
+    for name, value in (("cluster_size", cluster_size), ("n_clusters", n_clusters)):
+        if value is not None and not clustered:
+            raise UsageError(f"`{name}` applies to cluster designs only; design.mechanism is {kind!r}")
+    cluster_size = _check_positive("cluster_size", cluster_size, allow_none=True)
+    if cluster_size is not None and cluster_size < 1:
+        raise UsageError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
+    n_treated, n_control = _check_count("n_treated", n_treated), _check_count("n_control", n_control)
+    n_clusters = _check_count("n_clusters", n_clusters)
+    if (n_treated is None) != (n_control is None):
+        raise UsageError("`n_treated` and `n_control` go together: give both planned arm sizes")
+    if n_clusters is not None and n_treated is not None:
+        raise UsageError("give either `n_clusters` or `n_treated` and `n_control`, not both")
+    if isinstance(simulate, bool) or not isinstance(simulate, (int, np.integer)) or simulate < 0:
+        raise UsageError(f"`simulate` must be a whole number >= 0; got {simulate!r}")
+    draws = _check_count("draws", draws)
+    if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0):
+        raise UsageError(f"`seed` must be a non-negative integer; got {seed!r}")
+    return _PlanOptions(sd=sd, effect=effect, power=power, icc=icc, cluster_size=cluster_size,
+                        n_treated=n_treated, n_control=n_control, n_clusters=n_clusters,
+                        simulate=int(simulate), draws=draws, seed=None if seed is None else int(seed))
+
+
+def _target_outcome(spec: Spec, outcome: str | None) -> OutcomeSpec:
+    if outcome is None:
+        primary = [o for o in spec.outcomes if o.family == "primary"]
+        return (primary or list(spec.outcomes))[0]
+    names = [o.column for o in spec.outcomes]
+    if outcome not in names:
+        close = difflib.get_close_matches(str(outcome), names, n=1)
+        hint = f" — did you mean {close[0]!r}?" if close else ""
+        raise UsageError(f"`outcome` must be one of the spec's outcomes {names}; got {outcome!r}{hint}")
+    return spec.outcomes[names.index(outcome)]
+
+
+# ----------------------------------------------------------------- the planned units
+
+
+def _planned_units(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
+    """The units from the units table when it exists, else from the planned sizes."""
+    table = resolve_inside(spec.project_dir, spec.data.units, "data.units")
+    if table.is_file():
+        if opts.sizes_given:
+            raise UsageError(f"{table}: the units table exists and gives the sizes; planned sizes "
+                             "(`n_treated`, `n_control`, `n_clusters`, `cluster_size`) are for a design without data")
+        return _units_from_table(spec)
+    if not opts.sizes_given:
+        needs = ("`cluster_size` with `n_clusters` (or `n_treated` and `n_control`)"
+                 if spec.design.mechanism in _CLUSTERED else "`n_treated` and `n_control`")
+        raise UsageError(f"{table}: no units table yet; give the planned sizes: {needs}")
+    return _units_from_sizes(spec, opts)
+
+
+def _share(spec: Spec) -> float:
+    """Share treated of the real draw: ``design.probability``, 0.5 when absent (always 0.5 for pairs)."""
+    if spec.design.mechanism == "matched_pairs" or spec.design.probability is None:
+        return 0.5
+    return float(spec.design.probability)
+
+
+def _units_from_table(spec: Spec) -> _PlannedUnits:
+    frame = load_units_for_assignment(spec)
+    kind, design = spec.design.mechanism, spec.design
+    ids = frame[spec.data.id].to_numpy()
+    block = frame[design.block].to_numpy() if kind in _BLOCKED else None
+    cluster = frame[design.cluster].to_numpy() if kind in _CLUSTERED else None
+    p = _share(spec)
+    try:  # the real draw validates ids, labels, nesting and pairs
+        draw_assignment(kind, ids, seed=0, block=block, cluster=cluster, probability=p)
+    except (DataError, DesignError) as err:
+        raise type(err)(f"{spec.project_dir / spec.data.units}: {err}") from err
+    return _describe_units(kind, ids, block, cluster, p, sizes_from="data", units_table=spec.data.units)
+
+
+def _codes(labels: np.ndarray) -> np.ndarray:
+    return np.unique(labels, return_inverse=True)[1].reshape(-1)
+
+
+def _describe_units(kind: str, ids, block, cluster, p: float, *, sizes_from: str,
+                    units_table: str | None) -> _PlannedUnits:
+    """Sizes of a unit-level design: expected arm sizes, clusters, blocks (see :func:`plan_power`)."""
+    n = int(ids.size)
+    ccodes = None if cluster is None else _codes(cluster)
+    bcodes = None if block is None else _codes(block)
+    n_clusters = None if ccodes is None else int(ccodes.max()) + 1
+    if kind == "bernoulli":
+        n1, treated_groups = Fraction(repr(p)) * n, None
+    else:
+        group = np.arange(n) if ccodes is None else ccodes
+        stratum = np.zeros(n, np.intp) if bcodes is None else bcodes
+        n1, treated_groups = Fraction(0), 0
+        for s in np.unique(stratum):
+            inside = stratum == s
+            size = np.unique(group[inside]).size
+            k = number_treated(p, size)
+            n1 += Fraction(k, size) * int(inside.sum())
+            treated_groups += k
+    return _PlannedUnits(
+        mechanism=kind, sizes_from=sizes_from, units_table=units_table, ids=ids, block=block, cluster=cluster,
+        probability=p, n_units=n, n_treated=float(n1), n_control=float(n - n1),
+        n_blocks=None if bcodes is None else int(bcodes.max()) + 1, n_clusters=n_clusters,
+        clusters_treated=None if ccodes is None else treated_groups,
+        cluster_size=1.0 if n_clusters is None else n / n_clusters,
+    )
+
+
+def _units_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
+    kind = spec.design.mechanism
+    if kind in _CLUSTERED:
+        return _clusters_from_sizes(spec, opts)
+    n1, n0 = opts.n_treated, opts.n_control
+    n = n1 + n0
+    if kind == "matched_pairs" and n1 != n0:
+        raise UsageError(f"matched pairs treat one unit of each pair: `n_treated` must equal `n_control`; "
+                         f"got {n1} and {n0}")
+    _agree_with_spec(spec, n1, n, "units")
+    if kind == "blocked":
+        return _PlannedUnits(
+            mechanism=kind, sizes_from="options", units_table=None, ids=None, block=None, cluster=None,
+            probability=n1 / n, n_units=n, n_treated=float(n1), n_control=float(n0), n_blocks=None,
+            n_clusters=None, clusters_treated=None, cluster_size=1.0,
+            why_not=f"a blocked design needs its blocks; put the units table at {spec.data.units}",
+        )
+    block = np.arange(n) // 2 if kind == "matched_pairs" else None
+    p = 0.5 if kind == "matched_pairs" else n1 / n
+    units = _describe_units(kind, np.arange(n), block, None, p, sizes_from="options", units_table=None)
+    return replace(units, n_treated=float(n1), n_control=float(n0))  # exact, also for bernoulli
+
+
+def _clusters_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
+    kind, m = spec.design.mechanism, opts.cluster_size
+    if m is None:
+        raise UsageError(f"`cluster_size` is required for a {kind} design without data: "
+                         "the planned (average) number of units per cluster")
+    if opts.n_clusters is not None:
+        total = opts.n_clusters
+        treated = number_treated(_share(spec), total)
+        if not 0 < treated < total:
+            raise DesignError(f"{total} cluster(s) at share {_share(spec)} leave an arm empty; both arms are needed")
+        j1, j0 = Fraction(treated), Fraction(total - treated)
+    else:
+        j1, j0 = Fraction(opts.n_treated) / Fraction(repr(m)), Fraction(opts.n_control) / Fraction(repr(m))
+        _agree_with_spec(spec, j1, j1 + j0, "clusters")
+    whole = m.is_integer() and j1.denominator == 1 and j0.denominator == 1
+    n1, n0 = float(j1 * Fraction(repr(m))), float(j0 * Fraction(repr(m)))
+    if kind == "cluster" and whole:
+        n_clusters, size = int(j1 + j0), int(m)
+        ids = np.arange(n_clusters * size)
+        return _describe_units(kind, ids, None, ids // size, int(j1) / n_clusters, sizes_from="options",
+                               units_table=None)
+    why = (f"a blocked cluster design needs its blocks; put the units table at {spec.data.units}"
+           if kind == "blocked_cluster" else
+           f"the planned sizes give {float(j1):g} treated and {float(j0):g} control clusters of {m:g} units; "
+           "the simulation needs whole clusters")
+    return _PlannedUnits(
+        mechanism=kind, sizes_from="options", units_table=None, ids=None, block=None, cluster=None,
+        probability=float(j1 / (j1 + j0)), n_units=_plain(n1 + n0), n_treated=n1, n_control=n0, n_blocks=None,
+        n_clusters=_plain(float(j1 + j0)) if (j1 + j0).denominator == 1 else None,
+        clusters_treated=int(j1) if j1.denominator == 1 else None, cluster_size=m, why_not=why,
+    )
+
+
+def _agree_with_spec(spec: Spec, treated, total, what: str) -> None:
+    """Planned sizes must agree with ``design.probability`` when the spec gives one."""
+    p = spec.design.probability
+    if p is None or spec.design.mechanism == "matched_pairs" or Fraction(treated).denominator != 1:
+        return
+    expected = number_treated(p, int(total))
+    if expected != treated:
+        raise UsageError(f"design.probability {p:g} treats {expected} of {int(total)} {what}; "
+                         f"the planned sizes treat {int(treated)}")
+
+
+# ----------------------------------------------------------------- simulation of the plan
+
+
+def _simulate_plan(units: _PlannedUnits, target: OutcomeSpec, analytic: Mapping, opts: _PlanOptions, *,
+                   alpha: float, max_exact: int, seed: int, progress: Callable | None) -> dict:
+    """Simulated power of the planned design under its own mechanism and randomization test."""
+    if opts.effect is not None:
+        effect, effect_from = opts.effect, "effect"
+    else:
+        effect = -analytic["mde"] if target.alternative == "less" else analytic["mde"]
+        effect_from = "mde"
+    run = _PlanRun(units, target, sd=opts.sd, icc=opts.icc, effect=effect, draws=opts.draws,
+                   max_exact=min(max(opts.draws, SIM_EXACT_LIMIT), max_exact))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ReportKitWarning)  # undefined statistics are counted instead
+        rejections = _count_rejections(run, n_sims=opts.simulate, alpha=alpha, seed=seed, progress=progress)
+    if run.undefined:
+        warnings.warn(f"the {target.statistic} statistic was undefined in {run.undefined} of {opts.simulate} "
+                      "simulated experiments; they count as not rejecting", ReportKitWarning, stacklevel=3)
+    summary = _simulation_summary(effect, alpha, opts.simulate, rejections)
+    methods = sorted(run.methods)
+    summary.update(seed=seed, draws=opts.draws, test_method=methods[0] if len(methods) == 1 else "mixed",
+                   statistic=target.statistic, alternative=target.alternative, effect_from=effect_from,
+                   undefined=run.undefined)
+    return summary
+
+
+class _PlanRun:
+    """One simulated experiment of a planned design: ``rng -> p-value`` (see :func:`plan_power`)."""
+
+    def __init__(self, units: _PlannedUnits, target: OutcomeSpec, *, sd: float, icc: float, effect: float,
+                 draws: int, max_exact: int):
+        self.units, self.target, self.effect, self.draws, self.max_exact = units, target, effect, draws, max_exact
+        self.within, self.between = sd * np.sqrt(1 - icc), sd * np.sqrt(icc)
+        self.ccodes = None if units.cluster is None else _codes(units.cluster)
+        self.undefined = 0
+        self.methods: set[str] = set()
+
+    def __call__(self, rng: np.random.Generator) -> float:
+        u = self.units
+        y0 = rng.normal(0.0, self.within, size=u.n_units)
+        if self.ccodes is not None:
+            y0 = y0 + rng.normal(0.0, self.between, size=int(self.ccodes.max()) + 1)[self.ccodes]
+        z = draw_assignment(u.mechanism, u.ids, seed=int(rng.integers(2**63)), block=u.block, cluster=u.cluster,
+                            probability=u.probability)
+        test_seed = int(rng.integers(2**63))
+        if u.mechanism == "bernoulli" and z.sum() in (0, z.size):
+            self.undefined += 1
+            return 1.0
+        mechanism = mechanism_from_arrays(u.mechanism, z, block=u.block, cluster=u.cluster,
+                                          probability=u.probability if u.mechanism == "bernoulli" else None)
+        source = mechanism.assignments(max_exact=self.max_exact, draws=self.draws, seed=test_seed)
+        self.methods.add(source.method)
+        (result,) = randomization_test(y0 + self.effect * z, mechanism, source=source,
+                                       statistic=self.target.statistic, alternative=self.target.alternative)
+        if result.p_value is None:
+            self.undefined += 1
+            return 1.0
+        return result.p_value
+
+
+# ----------------------------------------------------------------- text summary
+
+
+def _g(x, digits: int = 4) -> str:
+    return "—" if x is None else f"{x:.{digits}g}"
+
+
+def format_plan_text(plan: PowerPlan) -> str:
+    """A readable summary of a :class:`PowerPlan` (what ``report-kit power`` prints)."""
+    a, sim = plan.analytic, plan.simulation
+    source = f"sizes from {plan.units_table}" if plan.sizes_from == "data" else "planned sizes (no units table yet)"
+    expected = plan.mechanism == "bernoulli" or (plan.mechanism in _CLUSTERED and plan.sizes_from == "data")
+    lines = [f"Power plan: {plan.title}",
+             f"  design         {plan.mechanism}; {source}",
+             f"  units          {_g(plan.n_units, 8)}: {_g(a['n_treated'], 8)} treated, "
+             f"{_g(a['n_control'], 8)} control" + (" (expected)" if expected else "")]
+    if plan.n_blocks is not None:
+        lines.append(f"  {'pairs' if plan.mechanism == 'matched_pairs' else 'blocks':<14} {plan.n_blocks} "
+                     "(the formula ignores them: when pairing or blocking predicts the outcome, give the SD "
+                     "within pairs/blocks as --sd, or the MDE is conservative)")
+    if plan.mechanism in _CLUSTERED:
+        counts = ("" if plan.clusters_treated is None
+                  else f" ({plan.clusters_treated} treated, {plan.n_clusters - plan.clusters_treated} control)")
+        lines.append(f"  clusters       {_g(plan.n_clusters, 8)}{counts}, {_g(a['cluster_size'])} units on average")
+        lines.append(f"  design effect  {_g(a['design_effect'])} = 1 + ({_g(a['cluster_size'])} - 1) x {_g(a['icc'])} "
+                     "(ICC)")
+    lines += [f"  test           {plan.outcome}: alpha {_g(a['alpha'])}, {a['alternative']}",
+              f"  outcome SD     {_g(a['sd'])}",
+              f"  std. error     {_g(a['std_error'])} (t test, {_g(a['df'], 8)} df)",
+              f"  MDE            {_g(a['mde'])} at {a['target_power']:.0%} power ({_g(a['mde_std'], 3)} SD)"]
+    if a["power"] is not None:
+        lines.append(f"  power          {a['power']:.3f} at effect {_g(a['effect'])} (analytic)")
+    if sim is not None:
+        at = "the MDE" if sim["effect_from"] == "mde" else "effect"
+        test = "exact" if sim["test_method"] == "exact" else f"{sim['draws']} draws"
+        lines.append(f"  simulated      {sim['power']:.3f} (Monte Carlo SE {sim['mc_std_error']:.3f}) at {at} "
+                     f"{_g(sim['effect'])}")
+        lines.append(f"                 {sim['n_sims']} experiments drawn by the design's mechanism, each with its "
+                     f"randomization test ({sim['statistic']}, {test}); seed {sim['seed']}")
+    return "\n".join(lines)

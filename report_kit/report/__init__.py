@@ -1,0 +1,1 @@
+"""What the notebooks show: the view of a run, figures, notebook execution and the renderers."""

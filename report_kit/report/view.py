@@ -1,0 +1,180 @@
+"""What the report notebooks call: load a run's results, show and save tables and figures.
+
+Owns the presentation helpers only; no statistic is computed here. Every table
+shown is also written to ``tables/<name>.csv`` and every figure to
+``figures/<name>.png`` and ``.svg`` in the run folder.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from report_kit.audit.provenance import INPUTS_DIR
+from report_kit.inputs.spec import SPEC_FILENAME, load_spec
+
+CAUTIONS = (
+    "Statistical significance is not proof of benefit or of safety: a small p-value says the data "
+    "would be surprising if the programme had no effect, not that the effect is large, important or "
+    "free of harm. Read every estimate with its confidence interval.",
+    "Trials that involve people follow their ethics approval, their consent procedures and local "
+    "regulations; nothing in this report replaces them.",
+    "This report applies the analysis plan written in design.yaml{plan_status}. Where the study's "
+    "statistician or its registered protocol say otherwise, defer to them.",
+)
+
+LEAD_METHODS = ("neyman", "blocked_neyman", "paired", "cr2")
+
+
+def plan_status(deviations: dict) -> str:
+    """The clause saying whether the plan was locked and kept, for the third caution."""
+    if not deviations.get("locked"):
+        return ", which was not locked before the analysis (see Deviations from the plan)"
+    changes = len(deviations.get("changes") or [])
+    when = deviations.get("locked_at") or "an earlier date"
+    if changes == 0:
+        return f", locked on {when} and unchanged since"
+    return f", locked on {when}; {changes} key(s) changed since — see Deviations from the plan"
+
+
+def cautions(deviations: dict) -> tuple[str, ...]:
+    """The report's standing cautions, the last one stating the plan-lock status."""
+    return CAUTIONS[:-1] + (CAUTIONS[-1].format(plan_status=plan_status(deviations)),)
+
+
+def estimate_role(row: dict, first_seen: set) -> str:
+    """'lead' for the first design-based unadjusted estimate of an outcome, else its role.
+
+    The lead is the estimator the design implies (Neyman, block-weighted, paired,
+    or CR2 for clusters); Lin is 'adjusted'; Horvitz–Thompson is a 'check'.
+    """
+    key = (row["outcome"], row["estimand"], row.get("subgroup"))
+    if row.get("method") in LEAD_METHODS and row["estimator"] == "unadjusted" and key not in first_seen:
+        first_seen.add(key)
+        return "lead"
+    if row["estimator"] == "adjusted":
+        return "adjusted"
+    return "check" if row.get("method") == "horvitz_thompson" else ""
+
+
+@dataclass(frozen=True, kw_only=True)
+class RunView:
+    """A run folder as the notebooks see it."""
+
+    run_dir: Path
+    project_dir: Path
+    results: dict
+    spec: object
+
+    @classmethod
+    def open(cls, run_dir: str | Path, project_dir: str | Path) -> RunView:
+        run_dir, project_dir = Path(run_dir), Path(project_dir)
+        results = json.loads((run_dir / "results.json").read_text(encoding="utf-8"))
+        recorded = run_dir / INPUTS_DIR / SPEC_FILENAME
+        spec = load_spec(recorded) if recorded.exists() else load_spec(project_dir)
+        return cls(run_dir=run_dir, project_dir=project_dir, results=results, spec=spec)
+
+    def arrays(self) -> dict[str, np.ndarray]:
+        folder = self.run_dir / "analysis"
+        if not folder.is_dir():
+            return {}
+        return {p.stem.replace("__", "::", 1): np.load(p, allow_pickle=False) for p in sorted(folder.glob("*.npy"))}
+
+    def label(self, column: str) -> str:
+        for o in self.spec.outcomes:
+            if o.column == column:
+                return o.label
+        return column
+
+    def family(self, column: str) -> str | None:
+        for o in self.spec.outcomes:
+            if o.column == column:
+                return o.family
+        return None
+
+
+def fmt(value, digits: int = 3) -> str:
+    """Format a number for a table cell: fixed significant digits, '—' for missing."""
+    if value is None or (isinstance(value, float) and not np.isfinite(value)):
+        return "—"
+    if isinstance(value, (int, np.integer)) and not isinstance(value, bool):
+        return f"{int(value):,}"
+    if isinstance(value, float) and abs(value) >= 1e5:
+        return f"{value:,.0f}"
+    return f"{value:.{digits}g}" if abs(value) < 1e-3 and value != 0 else f"{value:,.{digits}f}"
+
+
+def fmt_p(p) -> str:
+    if p is None:
+        return "—"
+    return "< 0.001" if p < 0.001 else f"{p:.3f}"
+
+
+def p_phrase(p) -> str:
+    """'p = 0.058' or 'p < 0.001' for running text."""
+    text = fmt_p(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
+
+
+def table_html(frame: pd.DataFrame, *, caption: str = "", note: str = "", numeric_digits: int = 3) -> str:
+    """A plain HTML table in the report's own style (class ``rk-table``)."""
+    head = "".join(f"<th>{html.escape(str(c))}</th>" for c in frame.columns)
+    body = []
+    for _, row in frame.iterrows():
+        cells = []
+        for value in row:
+            text = value if isinstance(value, str) else fmt(value, numeric_digits)
+            cls = ' class="num"' if not isinstance(value, str) else ""
+            cells.append(f"<td{cls}>{html.escape(str(text))}</td>")
+        body.append("<tr>" + "".join(cells) + "</tr>")
+    cap = f'<p class="rk-tcap">{html.escape(caption)}</p>' if caption else ""
+    foot = f'<p class="rk-note">{html.escape(note)}</p>' if note else ""
+    table = f'<table class="rk-table"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
+    size = "rk-long" if len(frame) > 10 else "rk-short"
+    return f'<div class="rk-tablebox {size}">{cap}{table}{foot}</div>'
+
+
+def show_table(view: RunView, frame: pd.DataFrame, name: str, *, caption: str = "", note: str = "",
+               csv_frame: pd.DataFrame | None = None) -> None:
+    """Write ``tables/<name>.csv`` (full precision) and display the table."""
+    from IPython.display import HTML, display
+
+    tables = view.run_dir / "tables"
+    tables.mkdir(exist_ok=True)
+    (csv_frame if csv_frame is not None else frame).to_csv(tables / f"{name}.csv", index=False)
+    display(HTML(table_html(frame, caption=caption, note=note)))
+
+
+def show_figure(view: RunView, fig, name: str, *, caption: str = "") -> None:
+    """Save ``figures/<name>.png`` and ``.svg`` and display the PNG."""
+    from IPython.display import HTML, display
+
+    figures = view.run_dir / "figures"
+    figures.mkdir(exist_ok=True)
+    png = figures / f"{name}.png"
+    fig.savefig(png, dpi=150, bbox_inches="tight", metadata={"Software": None})
+    fig.savefig(figures / f"{name}.svg", bbox_inches="tight", metadata={"Date": None})
+    data = base64.b64encode(png.read_bytes()).decode("ascii")
+    alt = html.escape(caption or name.replace("_", " "), quote=True)
+    cap = f'<figcaption class="rk-caption">{html.escape(caption)}</figcaption>' if caption else ""
+    display(HTML(f'<figure class="rk-figure"><img src="data:image/png;base64,{data}" alt="{alt}">{cap}</figure>'))
+
+
+def say(text: str) -> None:
+    """Display a paragraph of Markdown."""
+    from IPython.display import Markdown, display
+
+    display(Markdown(text))
+
+
+def callout(text: str, kind: str = "info") -> None:
+    """Display a boxed paragraph (kind: info | caution | change)."""
+    from IPython.display import HTML, display
+
+    display(HTML(f'<div class="rk-box rk-{kind}">{text}</div>'))
