@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from report_kit.checks.attrition import study_attrition
+from report_kit.design.mechanism import Mechanism
 from report_kit.checks.balance import participant_flow, study_balance
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
@@ -39,7 +40,7 @@ class Analysis:
 
 
 def design_summary(study: Study, rand: StudyRandomization | None = None, *,
-                   assignment_check: str = "not_checked") -> dict:
+                   assignment_check: str = "not_checked", mechanism: Mechanism | None = None) -> dict:
     """The ``design`` section: counts of units, arms, blocks, clusters and assignments."""
     z = study.z
     block, cluster = study.block, study.cluster
@@ -51,6 +52,7 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
         "n_blocks": None if block is None else int(len(set(block.tolist()))),
         "n_clusters": None if cluster is None else int(len(set(cluster.tolist()))),
         "n_assignments": None if rand is None else rand.n_assignments,
+        "n_assignments_log10": None if mechanism is None else round(mechanism.log10_count(), 6),
         "assignment_check": assignment_check,
         "inference_method": None if rand is None else rand.method,
         "draws": None if rand is None else int(rand.draws),
@@ -110,7 +112,7 @@ def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
                                       lead=spec.analysis.multiplicity)
     results = {
         "schema": SCHEMA,
-        "design": design_summary(study, rand, assignment_check=assignment_check),
+        "design": design_summary(study, rand, assignment_check=assignment_check, mechanism=mechanism),
         "estimates": estimates,
         "subgroup_differences": study_subgroup_differences(study),
         "compliance": study_compliance(study),

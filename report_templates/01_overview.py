@@ -10,7 +10,7 @@ compare_to = ""
 import pandas as pd
 
 from report_kit.audit.planlock import plan_deviations
-from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
+from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, fmt_count, p_phrase, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -73,8 +73,8 @@ if d.get("n_blocks") is not None:
     rows.append(("Blocks" if d["mechanism"] != "matched_pairs" else "Pairs", f"{d['n_blocks']:,}"))
 if d.get("n_clusters") is not None:
     rows.append(("Clusters", f"{d['n_clusters']:,}"))
-if d.get("n_assignments") is not None:
-    rows.append(("Possible assignments", f"{int(d['n_assignments']):,}"))
+if d.get("n_assignments") is not None or d.get("n_assignments_log10") is not None:
+    rows.append(("Possible assignments", fmt_count(d["n_assignments"], d.get("n_assignments_log10"))))
 check_words = {
     "reproduced": "re-drawn from the recorded seed: identical",
     "mismatch": "re-drawn from the recorded seed: DIFFERENT (see check output)",

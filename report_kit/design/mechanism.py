@@ -121,6 +121,10 @@ def _codes(labels, name: str, n: int) -> tuple[np.ndarray, tuple]:
     return codes.astype(np.intp), tuple(uniq.tolist())
 
 
+#: Counts of assignments with more digits than this are described by their size (10^N) only.
+MAX_COUNT_DIGITS = 20
+
+
 def number_treated(probability: float, size: int) -> int:
     """Number of randomization units treated among ``size`` at share ``probability``.
 
@@ -245,6 +249,22 @@ class Mechanism:
                 for g, k in zip(self.stratum_size, self.stratum_treated)
             )
         )
+
+    def count_text(self, max_digits: int = MAX_COUNT_DIGITS) -> str | None:
+        """:meth:`count` as decimal digits when it has at most ``max_digits`` digits, else ``None``.
+
+        A huge count is never turned into a decimal string (Python refuses
+        integers of more than 4,300 digits, and building it costs seconds at a
+        million units); use :meth:`log10_count` for its size.
+        """
+        if self.log10_count() >= max_digits + 1:      # surely more digits than allowed
+            return None
+        text = str(self.count())
+        return text if len(text) <= max_digits else None
+
+    def log10_count(self) -> float:
+        """Base-10 logarithm of :meth:`count` (the number of digits is ``floor(log10) + 1``)."""
+        return self.log_count() / math.log(10.0)
 
     def count_at_most(self, limit: int) -> bool:
         """Whether :meth:`count` is at most ``limit``, without building huge integers."""

@@ -29,7 +29,6 @@ from __future__ import annotations
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
-from decimal import Decimal
 
 import numpy as np
 
@@ -252,7 +251,8 @@ class StudyRandomization:
         ``results.json`` ``intervals`` entries (difference in means, two-sided,
         level ``1 - alpha``).
     n_assignments : str or None
-        Exact number of possible assignments, as decimal digits.
+        Exact number of possible assignments, as decimal digits; ``None`` when it
+        has more than 20 digits (see ``Mechanism.log10_count``).
     method : {"exact", "monte_carlo"}
     draws : int
         Assignments in every null distribution.
@@ -290,11 +290,6 @@ class StudyRandomization:
     def to_dict(self) -> dict:
         return {"tests": list(self.tests), "intervals": list(self.intervals),
                 "n_assignments": self.n_assignments, "method": self.method, "draws": int(self.draws)}
-
-
-def count_digits(count: int) -> str:
-    """Decimal digits of a (possibly huge) integer, avoiding Python's int-to-str digit limit."""
-    return str(Decimal(count))
 
 
 def study_assignments(study) -> tuple[Mechanism, AssignmentSource]:
@@ -348,7 +343,7 @@ def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] |
         inv = _LinearInversion(pair, DEFAULT_RTOL, mechanism.fixed_arms_within_blocks)
         intervals.append(_interval(inv, inv.hodges_lehmann(), inv.scale(), "two-sided", level, name).to_dict())
     return StudyRandomization(
-        tests=tests, intervals=intervals, n_assignments=count_digits(mechanism.count()),
+        tests=tests, intervals=intervals, n_assignments=mechanism.count_text(),
         method=source.method, draws=source.draws, distributions=per_outcome, alternatives=alts,
     )
 

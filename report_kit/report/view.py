@@ -10,6 +10,7 @@ from __future__ import annotations
 import base64
 import html
 import json
+import math
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -108,6 +109,24 @@ def fmt(value, digits: int = 3) -> str:
     if isinstance(value, float) and abs(value) >= 1e5:
         return f"{value:,.0f}"
     return f"{value:.{digits}g}" if abs(value) < 1e-3 and value != 0 else f"{value:,.{digits}f}"
+
+
+def fmt_count(digits: str | None, log10: float | None = None) -> str:
+    """A count of assignments for a reader: ``12,870`` when short, ``≈ 10^4,301`` when huge.
+
+    ``digits`` is ``results.json``'s ``n_assignments`` (a string of digits or
+    ``None``) and ``log10`` its ``n_assignments_log10``. Never prints more than
+    20 digits in a row.
+    """
+    if digits is not None and len(str(digits)) <= 15:
+        return f"{int(digits):,}"
+    if log10 is None:
+        return "more than can be written out" if digits is None else f"≈ 10^{len(str(digits)) - 1:,}"
+    exponent = int(math.floor(float(log10)))
+    mantissa = 10 ** (float(log10) - exponent)
+    if mantissa >= 9.95:
+        mantissa, exponent = 1.0, exponent + 1
+    return f"≈ {mantissa:.1f} × 10^{exponent:,}"
 
 
 def fmt_p(p) -> str:

@@ -50,3 +50,11 @@ def test_estimate_roles():
         {"outcome": "y", "estimand": "CACE", "subgroup": None, "estimator": "unadjusted", "method": "wald_delta"},
     ]
     assert [estimate_role(r, seen) for r in rows] == ["lead", "check", "adjusted", ""]
+
+
+def test_fmt_count_short_and_huge():
+    from report_kit.report.view import fmt_count
+
+    assert fmt_count("924", 2.9656) == "924"
+    assert fmt_count(None, 4301.3) == "≈ 2.0 × 10^4,301"
+    assert fmt_count(None, 6.99999) == "≈ 1.0 × 10^7"
