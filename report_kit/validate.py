@@ -49,6 +49,13 @@ def finite_or_none(value) -> float | None:
     return value if math.isfinite(value) else None
 
 
+# Choice lists shared by the spec, the design and the statistics (one definition each).
+#: Assignment mechanisms (``design.mechanism`` in the spec).
+MECHANISMS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster", "matched_pairs")
+#: Alternatives of a randomization test.
+ALTERNATIVES = ("two-sided", "greater", "less")
+#: Test statistics of the randomization tests.
+STATISTICS = ("mean_difference", "rank_sum", "studentized", "ks")
 #: How a set of assignments was produced: every assignment of the design, or seeded random draws.
 METHODS = ("exact", "monte_carlo")
 

@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DataError, DesignError, UsageError
-from report_kit.validate import METHODS, check_choice  # noqa: F401  (METHODS re-exported)
+from report_kit.validate import MECHANISMS, METHODS, check_choice  # noqa: F401  (METHODS re-exported)
 
 __all__ = [
     "KINDS",
@@ -47,7 +47,7 @@ __all__ = [
 
 logger = logging.getLogger(__name__)
 
-KINDS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster", "matched_pairs")
+KINDS = MECHANISMS
 _NEEDS_BLOCK = frozenset({"blocked", "blocked_cluster", "matched_pairs"})
 _NEEDS_CLUSTER = frozenset({"cluster", "blocked_cluster"})
 #: Target number of assignment cells (draws x units) held in one chunk.

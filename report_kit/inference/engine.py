@@ -37,7 +37,7 @@ from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError, UsageError
 from report_kit.inference.kernels import _KERNELS, _analytic_centre
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics, null_centre, tail_p_values, tie_tolerance
-from report_kit.validate import METHODS, check_choice, finite_number
+from report_kit.validate import ALTERNATIVES, METHODS, STATISTICS, check_choice, finite_number
 from report_kit.validate import finite_or_none as _num
 
 logger = logging.getLogger(__name__)
@@ -55,8 +55,6 @@ __all__ = [
     "serial_chunk_map",
 ]
 
-STATISTICS = ("mean_difference", "rank_sum", "studentized", "ks")
-ALTERNATIVES = ("two-sided", "greater", "less")
 
 #: ``chunk_map(fn, tasks)``: apply ``fn`` to every task and return the results in task order.
 ChunkMap = Callable[[Callable[[Any], Any], Sequence[Any]], Iterable[Any]]
