@@ -32,6 +32,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError, UsageError
@@ -279,13 +280,20 @@ class _PassWork:
     Each chunk is converted once to a float block of exactly ``rows`` rows
     (zero rows pad the last one), so every statistic sees blocks of one fixed
     shape and floating-point results are bitwise identical however the chunks
-    are grouped into tasks or spread over processes.
+    are grouped into tasks or spread over processes. The products inside are
+    thin (``rows x n`` by ``n x q``); BLAS runs them on one thread, since
+    waiting for a second thread on a busy machine costs more than it saves
+    (parallel work comes from the chunk map instead).
     """
 
     def __init__(self, draws: _Draws, statistics: Sequence[Statistic]):
         self.draws, self.statistics = draws, tuple(statistics)
 
     def __call__(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
+        with threadpool_limits(limits=1, user_api="blas"):
+            return self._compute(task)
+
+    def _compute(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
         block = np.zeros((self.draws.rows, self.draws.n))
         outs: list[list[np.ndarray]] = [[] for _ in self.statistics]
         weights = []
