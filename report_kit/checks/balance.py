@@ -45,17 +45,18 @@ logger = logging.getLogger(__name__)
 SMD_THRESHOLDS = (0.1, 0.25)
 
 __all__ = [
-    "METHODS",
-    "balance_statistic",
-    "SMD_THRESHOLDS",
-    "CovariateBalance",
-    "OmnibusBalance",
     "BalanceCheck",
+    "CovariateBalance",
+    "METHODS",
+    "OmnibusBalance",
+    "SMD_THRESHOLDS",
     "balance_rows",
+    "balance_statistic",
     "covariate_balance",
     "mahalanobis_balance_test",
     "mahalanobis_statistic",
     "omnibus_balance",
+    "omnibus_from_draws",
     "participant_flow",
     "study_balance",
     "study_balance_check",
