@@ -232,6 +232,13 @@ def threaded_map(fn, tasks):
         return list(pool.map(fn, tasks))
 
 
+def pickling_map(fn, tasks):
+    """A chunk map that ships the work and each task through cloudpickle, as a process pool or Dask would."""
+    cloudpickle = pytest.importorskip("cloudpickle")
+    remote = cloudpickle.loads(cloudpickle.dumps(fn))
+    return [remote(cloudpickle.loads(cloudpickle.dumps(task))) for task in tasks]
+
+
 def test_monte_carlo_chunk_i_comes_from_child_i_of_the_seed_sequence():
     z = np.array([1] * 30 + [0] * 40)
     mech = mechanism_from_arrays("complete", z)
@@ -280,6 +287,7 @@ def test_analysis_results_do_not_depend_on_the_chunk_map():
     assert reference["design"]["inference_method"] == "monte_carlo"
     assert analyse(study, chunk_map=reversed_map).results == reference
     assert analyse(study, chunk_map=threaded_map).results == reference
+    assert analyse(study, chunk_map=pickling_map).results == reference
 
 
 def test_chunk_map_must_be_callable():
