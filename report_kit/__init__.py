@@ -34,6 +34,7 @@ _PUBLIC = {
     "invert_test": "inference.inversion",
     "holm": "inference.multiplicity", "benjamini_hochberg": "inference.multiplicity",
     "westfall_young": "inference.multiplicity",
+    "ChunkMap": "inference.engine", "serial_chunk_map": "inference.engine",
     # estimation
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",

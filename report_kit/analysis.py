@@ -16,11 +16,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from report_kit.checks.attrition import study_attrition
+from report_kit.checks.attrition import study_attrition_check
+from report_kit.checks.balance import participant_flow, study_balance_check
 from report_kit.design.mechanism import Mechanism
-from report_kit.checks.balance import participant_flow, study_balance
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
+from report_kit.inference.engine import ChunkMap
 from report_kit.inputs.model import Study
 from report_kit.inference.multiplicity import SharedNull, study_multiplicity
 from report_kit.planning.power import study_power
@@ -68,7 +69,7 @@ def shared_nulls(study: Study, rand: StudyRandomization) -> dict[str, SharedNull
     for family, columns in families.items():
         joint = rand.joint_null(columns)
         out[family] = SharedNull(outcomes=joint.outcomes, observed=joint.observed, null=joint.null,
-                                 method=joint.method, weights=joint.weights)
+                                 method=joint.method, weights=joint.weights, tolerance=joint.tolerance)
     return out
 
 
@@ -84,11 +85,16 @@ def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]
     return arrays
 
 
-def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
-    """Run every analysis step on a validated study and return the results."""
+def analyse(study: Study, *, assignment_check: str = "not_checked", chunk_map: ChunkMap | None = None) -> Analysis:
+    """Run every analysis step on a validated study and return the results.
+
+    ``chunk_map`` runs the chunks of the one pass over the assignment draws
+    (default: one after another in this process; see
+    :func:`report_kit.inference.engine.run_pass`); results do not depend on it.
+    """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ReportKitWarning)
-        results, arrays = _sections(study, assignment_check)
+        results, arrays = _sections(study, assignment_check, chunk_map)
     notes = sorted({str(w.message) for w in caught if issubclass(w.category, ReportKitWarning)})
     for note in notes:
         log.warning("%s", note)
@@ -96,17 +102,18 @@ def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
     return Analysis(results=results, arrays=arrays)
 
 
-def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
+def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -> tuple[dict, dict]:
     spec = study.spec
     log.info("estimates")
     estimates = study_estimates(study)
-    log.info("randomization tests")
-    mechanism, source = study_assignments(study)
-    rand = study_randomization(study, (mechanism, source))
-    weights = mechanism.weights if source.method == "exact" else None
-    log.info("balance, flow, attrition")
-    balance = study_balance(study, source.chunks, source.method, weights=weights)
-    attrition = study_attrition(study, source.chunks, source.method, weights=weights)
+    log.info("randomization tests, balance and attrition: one pass over the draws")
+    balance_check, attrition_check = study_balance_check(study), study_attrition_check(study)
+    extra = [attrition_check.statistic] + ([balance_check.statistic] if balance_check.statistic else [])
+    assignments = study_assignments(study)
+    mechanism = assignments[0]
+    rand = study_randomization(study, assignments, extra=extra, chunk_map=chunk_map)
+    attrition = attrition_check.section(rand.extra[0])
+    balance = balance_check.section(rand.extra[1] if len(rand.extra) > 1 else None, rand.method)
     log.info("multiplicity and power")
     multiplicity = study_multiplicity(rand.tests, spec.outcomes, shared_nulls(study, rand),
                                       lead=spec.analysis.multiplicity)

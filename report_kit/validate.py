@@ -47,3 +47,26 @@ def finite_or_none(value) -> float | None:
         return None
     value = float(value)
     return value if math.isfinite(value) else None
+
+
+# Choice lists shared by the spec, the design and the statistics (one definition each).
+#: Assignment mechanisms (``design.mechanism`` in the spec).
+MECHANISMS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster", "matched_pairs")
+#: Alternatives of a randomization test.
+ALTERNATIVES = ("two-sided", "greater", "less")
+#: Test statistics of the randomization tests.
+STATISTICS = ("mean_difference", "rank_sum", "studentized", "ks")
+#: How a set of assignments was produced: every assignment of the design, or seeded random draws.
+METHODS = ("exact", "monte_carlo")
+
+
+def braces(choices) -> str:
+    """``{'a', 'b'}`` in the given order (a set's repr would vary between runs)."""
+    return "{" + ", ".join(repr(c) for c in choices) + "}"
+
+
+def check_choice(name: str, value, choices) -> str:
+    """``value`` when it is one of ``choices`` (strings); UsageError naming the allowed values otherwise."""
+    if not isinstance(value, str) or value not in choices:
+        raise UsageError(f"`{name}` must be one of {braces(choices)}; got {value!r}")
+    return value

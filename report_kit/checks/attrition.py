@@ -1,7 +1,8 @@
 """Attrition: missing outcomes, whether they differ by arm, and bounds on the effect.
 
-Owns: attrition rates by arm, the randomization test of differential
-attrition (same assignment-chunk interface as :mod:`report_kit.checks.balance`),
+Owns: attrition rates by arm, WHAT the randomization test of differential
+attrition computes per assignment (:func:`attrition_statistic`; draws,
+counting and p-values are the engine's, :mod:`report_kit.inference.engine`),
 Lee (2009) trimming bounds and Manski (1990) worst-case bounds. A unit whose
 outcome is missing counts as attrited for that outcome.
 """
@@ -14,24 +15,22 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from report_kit.checks.balance import (
-    ChunkSource,
-    WeightFn,
-    _check_assignment,
-    _check_method,
-    _num,
-    _p_values,
-    _tally,
-)
+from report_kit.checks.balance import ChunkSource, WeightFn, _check_assignment, _num
 from report_kit.errors import DataError, ReportKitWarning, UsageError
+from report_kit.inference.engine import StoredDraws, drawn_statistics
+from report_kit.inference.pvalues import DrawnStatistics
+from report_kit.validate import METHODS, check_choice
 
 __all__ = [
+    "AttritionCheck",
     "AttritionTest",
     "EffectBounds",
+    "attrition_statistic",
     "attrition_test",
     "lee_bounds",
     "manski_bounds",
     "study_attrition",
+    "study_attrition_check",
 ]
 
 
@@ -290,12 +289,22 @@ class AttritionTest:
         return {"per_outcome": self.rows()}
 
 
-def _rate_gap(R: np.ndarray, n: int) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
+def attrition_statistic(R: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    """Per-assignment statistic for the engine: ``|r1 - r0|`` for each indicator column of ``R`` (n, q).
+
+    Maps a float block of assignments ``(rows, n)`` to ``(rows, q)``; NaN for
+    an assignment with an empty arm (undefined; the engine sets it aside).
+    """
+    R = np.asarray(R, dtype=float)
+    n = R.shape[0]
     total = R.sum(axis=0)
 
-    def statistic(Z: np.ndarray, n1: np.ndarray) -> np.ndarray:
-        c1 = Z @ R
-        return np.abs(c1 / n1[:, None] - (total - c1) / (n - n1)[:, None])
+    def statistic(block: np.ndarray) -> np.ndarray:
+        c1 = block @ R
+        n1 = block.sum(axis=1)[:, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            gap = np.abs(c1 / n1 - (total - c1) / (n - n1))
+        return np.where((n1 > 0) & (n1 < n), gap, np.nan)
     return statistic
 
 
@@ -332,7 +341,13 @@ def attrition_test(missing, z, chunks: ChunkSource, method: str,
     two-sided hypergeometric test ordered by distance from the mean.
     """
     zb = _check_assignment(z)
-    _check_method(method)
+    check_choice("method", method, METHODS)
+    R, labels = _check_indicators(missing, zb, labels)
+    draws = StoredDraws.from_arrays(chunks, zb.size, method, weights)
+    return _test_from_draws(R, zb, labels, drawn_statistics(draws, [attrition_statistic(R)], zb)[0])
+
+
+def _check_indicators(missing, zb: np.ndarray, labels) -> tuple[np.ndarray, tuple[str, ...]]:
     R = np.asarray(missing, dtype=float)
     if R.ndim == 1:
         R = R[:, None]
@@ -343,11 +358,11 @@ def attrition_test(missing, z, chunks: ChunkSource, method: str,
     labels = tuple(labels) if labels is not None else tuple(f"indicator {j + 1}" for j in range(R.shape[1]))
     if len(labels) != R.shape[1]:
         raise UsageError(f"`labels` must have {R.shape[1]} entries; got {len(labels)}")
-    n = zb.size
-    statistic = _rate_gap(R, n)
-    observed = statistic(zb[None, :].astype(float), np.array([zb.sum()], dtype=float))[0]
-    tally = _tally(chunks, n, statistic, observed, method, weights=weights)
-    p, se = _p_values(tally, method)
+    return R, labels
+
+
+def _test_from_draws(R: np.ndarray, zb: np.ndarray, labels, drawn: DrawnStatistics) -> AttritionTest:
+    p, se, defined = drawn.p_values()
     m1, m0 = R[zb].sum(axis=0), R[~zb].sum(axis=0)
     return AttritionTest(
         labels=labels,
@@ -355,10 +370,10 @@ def attrition_test(missing, z, chunks: ChunkSource, method: str,
         missing_control=tuple(int(v) for v in m0),
         rate_treated=tuple(float(v) for v in m1 / zb.sum()),
         rate_control=tuple(float(v) for v in m0 / (~zb).sum()),
-        p_value=tuple(float(v) for v in p),
-        mc_std_error=None if se is None else tuple(float(v) for v in se),
-        method=method,
-        draws=tally.draws,
+        p_value=tuple(_num(v) for v in p),
+        mc_std_error=None if drawn.method == "exact" else tuple(_num(v) for v in se),
+        method=drawn.method,
+        draws=int(defined[0]),
     )
 
 
@@ -392,6 +407,55 @@ def _outcome_bounds(study, spec, zb: np.ndarray) -> list[dict]:
     return entries
 
 
+@dataclass(frozen=True, kw_only=True, eq=False)
+class AttritionCheck:
+    """A study's attrition section waiting for the engine's draws of its statistic.
+
+    ``statistic`` is handed to the engine's shared pass; :meth:`section`
+    builds the ``results.json`` entry from what the pass drew.
+    """
+
+    indicators: np.ndarray
+    labels: tuple[str, ...]
+    assignment: np.ndarray
+    overall_columns: tuple[str, ...]
+    bounds: list
+
+    @property
+    def statistic(self) -> Callable[[np.ndarray], np.ndarray]:
+        return attrition_statistic(self.indicators)
+
+    def section(self, drawn: DrawnStatistics) -> dict:
+        """The attrition section of ``results.json`` (see :func:`study_attrition`)."""
+        rows = _test_from_draws(self.indicators, self.assignment, self.labels, drawn).rows()
+        head = rows[0]
+        return {
+            "rate_treated": head["rate_treated"],
+            "rate_control": head["rate_control"],
+            "p_value": head["p_value"],
+            "method": drawn.method,
+            "draws": head["draws"],
+            "mc_std_error": head["mc_std_error"],
+            "attrited_if_missing": list(self.overall_columns),
+            "bounds": self.bounds,
+            "per_outcome": rows[1:],
+        }
+
+
+def study_attrition_check(study) -> AttritionCheck:
+    """The study's missingness indicators (overall first, then one per outcome) and its bounds."""
+    zb = _check_assignment(study.z)
+    outcomes = study.spec.outcomes
+    missing = np.column_stack([np.isnan(study.outcome(o.column)) for o in outcomes]).astype(float)
+    overall_cols = _overall_columns(outcomes)
+    idx = [i for i, o in enumerate(outcomes) if o.column in overall_cols]
+    overall = missing[:, idx].max(axis=1)
+    bounds = [entry for o in outcomes for entry in _outcome_bounds(study, o, zb)]
+    return AttritionCheck(indicators=np.column_stack([overall, missing]),
+                          labels=("overall",) + tuple(o.column for o in outcomes),
+                          assignment=zb, overall_columns=overall_cols, bounds=bounds)
+
+
 def study_attrition(study, chunks_factory: Callable[[], Iterable[np.ndarray]], method: str,
                     *, weights: WeightFn | None = None) -> dict:
     """Attrition section of ``results.json``.
@@ -409,29 +473,10 @@ def study_attrition(study, chunks_factory: Callable[[], Iterable[np.ndarray]], m
 
     ``chunks_factory()`` returns a fresh iterator of assignment chunks drawn
     under the study's mechanism; all indicators share one pass over the draws.
-    ``weights`` as in :func:`attrition_test`.
+    ``weights`` as in :func:`attrition_test`. (The analysis itself uses
+    :func:`study_attrition_check` on the engine's shared pass.)
     """
-    _check_method(method)
-    zb = _check_assignment(study.z)
-    outcomes = study.spec.outcomes
-    missing = np.column_stack([np.isnan(study.outcome(o.column)) for o in outcomes]).astype(float)
-    overall_cols = _overall_columns(outcomes)
-    idx = [i for i, o in enumerate(outcomes) if o.column in overall_cols]
-    overall = missing[:, idx].max(axis=1)
-    R = np.column_stack([overall, missing])
-    result = attrition_test(R, zb.astype(int), chunks_factory, method,
-                            labels=("overall",) + tuple(o.column for o in outcomes), weights=weights)
-    rows = result.rows()
-    head = rows[0]
-    bounds = [entry for o in outcomes for entry in _outcome_bounds(study, o, zb)]
-    return {
-        "rate_treated": head["rate_treated"],
-        "rate_control": head["rate_control"],
-        "p_value": head["p_value"],
-        "method": method,
-        "draws": head["draws"],
-        "mc_std_error": head["mc_std_error"],
-        "attrited_if_missing": list(overall_cols),
-        "bounds": bounds,
-        "per_outcome": rows[1:],
-    }
+    check_choice("method", method, METHODS)
+    check = study_attrition_check(study)
+    draws = StoredDraws.from_arrays(chunks_factory, check.assignment.size, method, weights)
+    return check.section(drawn_statistics(draws, [check.statistic], check.assignment)[0])

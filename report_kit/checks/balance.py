@@ -1,10 +1,11 @@
 """Covariate balance between the arms and the CONSORT-style participant flow.
 
 Owns: the per-covariate balance table (means by arm, standardized mean
-difference, variance ratio, missing counts), the omnibus Mahalanobis balance
-test under the real assignment mechanism, and the participant-flow counts.
-Also holds the small randomization-distribution helpers (chunk validation,
-counting, the p-value rule) that :mod:`report_kit.checks.attrition` shares.
+difference, variance ratio, missing counts), WHAT the omnibus Mahalanobis
+balance test computes for each assignment (:func:`mahalanobis_statistic`),
+and the participant-flow counts. HOW the draws are produced, counted and
+turned into p-values is the randomization engine's
+(:mod:`report_kit.inference.engine`, :mod:`report_kit.inference.pvalues`).
 
 Assignment draws come from outside, as *chunks*: an iterable (or a callable
 returning one) of ``(k, n)`` 0/1 arrays, one row per drawn assignment and one
@@ -30,33 +31,35 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from report_kit.validate import finite_or_none as _num
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.inference.engine import StoredDraws, drawn_statistics
+from report_kit.inference.pvalues import DrawnStatistics
+from report_kit.validate import METHODS, check_choice
+from report_kit.validate import finite_or_none as _num
 
 logger = logging.getLogger(__name__)
 
-METHODS = ("exact", "monte_carlo")
 
 #: Thresholds on ``|std_diff|`` used to flag covariates (common practice, not a
 #: test): at most 0.1 is "small", above 0.25 is "large", in between "moderate".
 SMD_THRESHOLDS = (0.1, 0.25)
 
-#: Relative tolerance when a drawn statistic is compared with the observed one,
-#: so that floating-point noise does not break ties: a draw counts as at least
-#: as extreme when ``t_draw >= t_obs - TIE_RTOL * max(1, |t_obs|)``.
-TIE_RTOL = 1e-9
-
 __all__ = [
-    "METHODS",
-    "SMD_THRESHOLDS",
+    "BalanceCheck",
     "CovariateBalance",
+    "METHODS",
     "OmnibusBalance",
+    "SMD_THRESHOLDS",
     "balance_rows",
+    "balance_statistic",
     "covariate_balance",
     "mahalanobis_balance_test",
+    "mahalanobis_statistic",
     "omnibus_balance",
+    "omnibus_from_draws",
     "participant_flow",
     "study_balance",
+    "study_balance_check",
 ]
 
 ChunkSource = Iterable[np.ndarray] | Callable[[], Iterable[np.ndarray]]
@@ -64,15 +67,8 @@ WeightFn = Callable[[np.ndarray], "np.ndarray | None"]
 
 
 # ---------------------------------------------------------------------------
-# helpers shared with attrition.py
+# assignment check shared with attrition.py
 # ---------------------------------------------------------------------------
-
-
-
-def _check_method(method: str) -> str:
-    if method not in METHODS:
-        raise UsageError(f"`method` must be one of {{'exact', 'monte_carlo'}}; got {method!r}")
-    return method
 
 
 def _check_assignment(z, n: int | None = None) -> np.ndarray:
@@ -94,130 +90,6 @@ def _check_assignment(z, n: int | None = None) -> np.ndarray:
             f"and {int((~zb).sum())} control"
         )
     return zb
-
-
-def _iter_chunks(chunks: ChunkSource, n: int) -> Iterator[np.ndarray]:
-    """Yield validated assignment chunks as given (2-D, 0/1 values)."""
-    source = chunks() if callable(chunks) else chunks
-    try:
-        iterator = iter(source)
-    except TypeError as err:
-        raise UsageError(
-            f"`chunks` must be an iterable of (k, n) 0/1 arrays or a callable returning one; "
-            f"got {type(source).__name__}"
-        ) from err
-    for i, chunk in enumerate(iterator):
-        arr = np.asarray(chunk)
-        if arr.ndim == 1:
-            arr = arr[None, :]
-        if arr.ndim != 2 or arr.shape[1] != n:
-            raise UsageError(
-                f"assignment chunk {i} must have shape (k, {n}); got {np.shape(chunk)}"
-            )
-        if arr.dtype.kind in "iu":
-            bad = arr.size > 0 and (arr.min() < 0 or arr.max() > 1)
-        else:
-            bad = arr.dtype.kind != "b" and not np.isin(arr, (0, 1)).all()
-        if bad:
-            raise UsageError(f"assignment chunk {i} must contain only 0 and 1")
-        yield arr
-
-
-def _chunk_weights(weights: WeightFn | None, chunk: np.ndarray, method: str, i: int) -> np.ndarray | None:
-    if weights is None:
-        return None
-    w = weights(chunk)
-    if w is None:
-        return None
-    if method != "exact":
-        raise UsageError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
-    w = np.asarray(w, dtype=float)
-    if w.shape != (chunk.shape[0],) or not np.isfinite(w).all() or (w < 0).any():
-        raise UsageError(f"`weights` of chunk {i} must be {chunk.shape[0]} finite non-negative numbers")
-    return w
-
-
-@dataclass(frozen=True, kw_only=True)
-class _Tally:
-    """What one pass over the draws produced for ``q`` statistics."""
-
-    counts: np.ndarray      # (q,) weight of draws at least as extreme as the observed value
-    total: float            # total weight of the draws used
-    draws: int              # draws used (both arms non-empty)
-    skipped: int            # draws with an empty arm (excluded)
-    null: np.ndarray | None  # (draws, q) drawn statistics when kept
-    null_weights: np.ndarray | None  # (draws,) their weights when kept and unequal
-
-
-def _tally(
-    chunks: ChunkSource,
-    n: int,
-    statistic: Callable[[np.ndarray, np.ndarray], np.ndarray],
-    observed: np.ndarray,
-    method: str,
-    *,
-    weights: WeightFn | None = None,
-    keep_null: bool = False,
-) -> _Tally:
-    """Run ``statistic`` over every drawn assignment and count extreme draws.
-
-    ``statistic(Z, n1)`` receives a float ``(k, n)`` chunk with ``n1 = Z.sum(1)``
-    already restricted to draws with both arms non-empty, and returns ``(k, q)``.
-    Counts are weighted when ``weights`` gives unequal weights.
-    """
-    observed = np.asarray(observed, dtype=float)
-    threshold = observed - TIE_RTOL * np.maximum(1.0, np.abs(observed))
-    counts = np.zeros(observed.shape)
-    total = 0.0
-    draws = skipped = 0
-    kept: list[np.ndarray] = []
-    kept_w: list[np.ndarray] = []
-    for i, chunk in enumerate(_iter_chunks(chunks, n)):
-        w = _chunk_weights(weights, chunk, method, i)
-        Z = chunk.astype(np.float64)
-        n1 = Z.sum(axis=1)
-        ok = (n1 > 0) & (n1 < n)
-        skipped += int((~ok).sum())
-        if not ok.any():
-            continue
-        Z, n1 = Z[ok], n1[ok]
-        w = np.ones(Z.shape[0]) if w is None else w[ok]
-        values = statistic(Z, n1)
-        counts += w @ (values >= threshold)
-        total += float(w.sum())
-        draws += Z.shape[0]
-        if keep_null:
-            kept.append(values)
-            kept_w.append(w)
-    if draws == 0 or total <= 0:
-        raise UsageError("`chunks` yielded no assignment with both arms non-empty")
-    if skipped:
-        logger.debug("left out %d drawn assignments with an empty arm; %d used", skipped, draws)
-    null = np.concatenate(kept, axis=0) if keep_null else None
-    null_w = np.concatenate(kept_w) if keep_null and weights is not None else None
-    return _Tally(counts=counts, total=total, draws=draws, skipped=skipped, null=null, null_weights=null_w)
-
-
-def _p_values(tally: _Tally, method: str) -> tuple[np.ndarray, np.ndarray | None]:
-    """The randomization p-values and, for Monte Carlo, their standard errors.
-
-    Exact: ``p = #{draws with T >= t_obs} / D`` over the full enumeration
-    (with weights: the probability mass of those draws over the total mass).
-    Monte Carlo: ``p = (1 + #{T >= t_obs}) / (1 + D)`` (the +1 rule; the
-    observed assignment counts as one draw), which keeps the test valid
-    (Phipson & Smyth 2010). The Monte Carlo standard error is
-    ``sqrt(p_hat (1 - p_hat) / D)`` with ``p_hat = #{T >= t_obs} / D``.
-    """
-    counts, d = tally.counts, tally.draws
-    if method == "exact":
-        if (counts <= 0).any():
-            raise DesignError(
-                "the exact enumeration does not contain the observed assignment "
-                "(no draw is as extreme as the observed statistic)"
-            )
-        return np.minimum(1.0, counts / tally.total), None
-    p_hat = counts / d
-    return (counts + 1) / (d + 1), np.sqrt(p_hat * (1 - p_hat) / d)
 
 
 # ---------------------------------------------------------------------------
@@ -441,11 +313,55 @@ def _whiten(arr: np.ndarray) -> np.ndarray:
     return xc @ (v[:, good] / np.sqrt(w[good]))
 
 
-def _mahalanobis_rows(W: np.ndarray, n: int) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
-    def statistic(Z: np.ndarray, n1: np.ndarray) -> np.ndarray:
-        s = Z @ W
-        return ((s * s).sum(axis=1) * n / (n1 * (n - n1)))[:, None]
+def mahalanobis_statistic(W: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    r"""The per-assignment omnibus statistic on whitened covariates ``W`` (see :func:`balance_statistic`).
+
+    Returns a function from a float block of assignments ``(rows, n)`` to
+    ``(rows, 1)``: :math:`M = \lVert Z W \rVert^2 \, n / (n_1 (n - n_1))`,
+    NaN for an assignment with an empty arm (undefined; the engine sets it
+    aside).
+    """
+    n = W.shape[0]
+
+    def statistic(block: np.ndarray) -> np.ndarray:
+        s = block @ W
+        n1 = block.sum(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            m = (s * s).sum(axis=1) * n / (n1 * (n - n1))
+        return np.where((n1 > 0) & (n1 < n), m, np.nan)[:, None]
     return statistic
+
+
+def balance_statistic(X, names: Sequence[str]) -> tuple[Callable[[np.ndarray], np.ndarray] | None, int]:
+    """The omnibus statistic of covariates ``X`` (n, p) for the engine, and its degrees of freedom.
+
+    Imputes missing values (pooled mean plus one missingness indicator per
+    pattern), whitens, and returns ``(statistic, df)``; ``(None, 0)`` when no
+    direction is left. Warns when constant or collinear directions are dropped.
+    """
+    arr = np.asarray(X, dtype=float)
+    filled = _impute_with_indicators(arr, tuple(names))
+    W = _whiten(filled)
+    if W.shape[1] == 0:
+        return None, 0
+    if W.shape[1] < filled.shape[1]:
+        warnings.warn(
+            f"the covariates span {W.shape[1]} of {filled.shape[1]} dimensions (constant or collinear "
+            "columns); the omnibus statistic uses the independent directions only",
+            ReportKitWarning, stacklevel=3,
+        )
+    return mahalanobis_statistic(W), int(W.shape[1])
+
+
+def omnibus_from_draws(drawn: DrawnStatistics, df: int) -> OmnibusBalance:
+    """The omnibus result from the engine's drawn statistics (p-value by the engine's rules)."""
+    p, se, defined = drawn.p_values()
+    null, weights = drawn.defined_rows(0)
+    return OmnibusBalance(
+        statistic=_num(drawn.observed[0]), p_value=_num(p[0]), method=drawn.method,
+        draws=int(defined[0]), df=df, mc_std_error=_num(se[0]),
+        null_distribution=null, null_weights=weights,
+    )
 
 
 def mahalanobis_balance_test(
@@ -499,28 +415,12 @@ def mahalanobis_balance_test(
     values; constant or collinear directions are dropped (``df`` = rank used).
     """
     arr, zb, names = _check_covariates(X, z, names)
-    _check_method(method)
-    n = zb.size
-    filled = _impute_with_indicators(arr, names)
-    W = _whiten(filled)
-    if W.shape[1] == 0:
+    check_choice("method", method, METHODS)
+    statistic, df = balance_statistic(arr, names)
+    if statistic is None:
         return OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
-    if W.shape[1] < filled.shape[1]:
-        warnings.warn(
-            f"the covariates span {W.shape[1]} of {filled.shape[1]} dimensions (constant or collinear "
-            "columns); the omnibus statistic uses the independent directions only",
-            ReportKitWarning, stacklevel=2,
-        )
-    statistic = _mahalanobis_rows(W, n)
-    observed = statistic(zb[None, :].astype(float), np.array([zb.sum()], dtype=float))[0]
-    tally = _tally(chunks, n, statistic, observed, method, weights=weights, keep_null=True)
-    p, se = _p_values(tally, method)
-    return OmnibusBalance(
-        statistic=float(observed[0]), p_value=float(p[0]), method=method,
-        draws=tally.draws, df=int(W.shape[1]),
-        mc_std_error=None if se is None else float(se[0]),
-        null_distribution=tally.null[:, 0], null_weights=tally.null_weights,
-    )
+    draws = StoredDraws.from_arrays(chunks, zb.size, method, weights)
+    return omnibus_from_draws(drawn_statistics(draws, [statistic], zb)[0], df)
 
 
 def omnibus_balance(
@@ -539,6 +439,39 @@ def omnibus_balance(
 # ---------------------------------------------------------------------------
 
 
+@dataclass(frozen=True, kw_only=True, eq=False)
+class BalanceCheck:
+    """A study's balance section waiting for the engine's draws of its omnibus statistic.
+
+    ``statistic`` (None without usable covariates) is handed to the
+    engine's shared pass; :meth:`section` builds the ``results.json`` entry
+    from what the pass drew.
+    """
+
+    covariates: list
+    statistic: Callable[[np.ndarray], np.ndarray] | None
+    df: int
+
+    def section(self, drawn: DrawnStatistics | None, method: str) -> dict:
+        """``{covariates: [...], omnibus: {...}}``; the omnibus entry holds None values without a statistic."""
+        if self.statistic is None or drawn is None:
+            omnibus = OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
+        else:
+            omnibus = omnibus_from_draws(drawn, self.df)
+        return {"covariates": self.covariates, "omnibus": omnibus.to_dict()}
+
+
+def study_balance_check(study) -> BalanceCheck:
+    """The balance table of the spec's ``analysis.covariates`` and their omnibus statistic for the engine."""
+    names = tuple(study.spec.analysis.covariates)
+    if not names:
+        return BalanceCheck(covariates=[], statistic=None, df=0)
+    X = study.frame.loc[:, list(names)].to_numpy(dtype=float)
+    arr, _, names = _check_covariates(X, study.z, names)
+    statistic, df = balance_statistic(arr, names)
+    return BalanceCheck(covariates=balance_rows(X, study.z, names), statistic=statistic, df=df)
+
+
 def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], method: str,
                   *, weights: WeightFn | None = None) -> dict:
     """Balance section of ``results.json``: ``{covariates: [...], omnibus: {...}}``.
@@ -547,19 +480,16 @@ def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], met
     the table is empty and the omnibus entry holds None values.
     ``chunks_factory()`` must return a fresh iterator of assignment chunks
     drawn under the study's mechanism, in the frame's row order; ``weights``
-    as in :func:`mahalanobis_balance_test`.
+    as in :func:`mahalanobis_balance_test`. (The analysis itself uses
+    :func:`study_balance_check` on the engine's shared pass.)
     """
-    _check_method(method)
-    names = tuple(study.spec.analysis.covariates)
-    if not names:
-        empty = OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
-        return {"covariates": [], "omnibus": empty.to_dict()}
-    X = study.frame.loc[:, list(names)].to_numpy(dtype=float)
-    z = study.z
-    return {
-        "covariates": balance_rows(X, z, names),
-        "omnibus": omnibus_balance(X, z, chunks_factory, method, names, weights=weights),
-    }
+    check_choice("method", method, METHODS)
+    check = study_balance_check(study)
+    drawn = None
+    if check.statistic is not None:
+        draws = StoredDraws.from_arrays(chunks_factory, study.z.size, method, weights)
+        drawn = drawn_statistics(draws, [check.statistic], study.z)[0]
+    return check.section(drawn, method)
 
 
 def _main_estimate_sizes(estimates, outcome: str) -> tuple[int, int] | None:

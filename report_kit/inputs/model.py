@@ -12,10 +12,9 @@ from pathlib import Path
 
 import pandas as pd
 
-MECHANISMS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster", "matched_pairs")
+from report_kit.validate import ALTERNATIVES, MECHANISMS, STATISTICS  # noqa: F401  (re-exported)
+
 FAMILIES = ("primary", "secondary", "exploratory")
-ALTERNATIVES = ("two-sided", "greater", "less")
-STATISTICS = ("mean_difference", "rank_sum", "studentized", "ks")
 MULTIPLICITY = ("none", "holm", "bh", "westfall_young")
 
 

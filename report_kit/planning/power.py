@@ -26,8 +26,8 @@ from report_kit.planning.core import (
     design_effect,
     planned_power,
 )
-from report_kit.checks.balance import _num
 from report_kit.errors import DataError, UsageError
+from report_kit.validate import finite_or_none as _num
 from report_kit.planning.plan import DEFAULT_TEST_DRAWS, SIM_EXACT_LIMIT, PowerPlan, format_plan_text, plan_power
 
 __all__ = [

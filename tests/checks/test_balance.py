@@ -207,7 +207,8 @@ def test_monte_carlo_plus_one_rule():
     res = balance.omnibus_balance(x, z, [Z], "monte_carlo")
     assert res["p_value"] == pytest.approx(1 / 4)
     assert res["draws"] == 3
-    assert res["mc_std_error"] == pytest.approx(0.0)
+    # the engine's one Monte Carlo SE: sqrt(p (1 - p) / B) with the reported p = 1/4, B = 3 (hand-computed)
+    assert res["mc_std_error"] == pytest.approx(np.sqrt(0.25 * 0.75 / 3), rel=1e-15)
 
 
 def test_bernoulli_enumeration_skips_draws_with_an_empty_arm():
