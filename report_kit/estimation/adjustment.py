@@ -24,6 +24,8 @@ from report_kit.estimation.core import (
     _keys,
     _sample,
     _Sample,
+    _bm_df,
+    _bm_terms,
     _to_estimate,
     _undefined_fit,
     _validate,
@@ -51,8 +53,9 @@ def estimate_adjusted(y, z, X, *, mechanism: str, block=None, cluster=None,
     each arm — so with no covariates the estimate equals the blocked difference
     in means — otherwise as additive fixed effects.
 
-    Degrees of freedom: ``n - p`` (p regressors) without clusters; ``G - B - 1``
-    with G clusters and B blocks (B = 1 if unblocked) for CR2 (common practice).
+    Degrees of freedom: ``n - p`` (p regressors) without clusters; for CR2 the
+    Bell & McCaffrey (2002) df of the effect contrast (Imbens & Kolesár 2016),
+    ``tr(G'G)^2 / ||G'G||_F^2`` as in ``docs/methods/estimation.md``.
 
     Rows with a missing outcome are dropped. A missing covariate value among the
     kept rows raises :class:`DesignError` (no imputation). Covariates constant
@@ -146,9 +149,8 @@ def _lin_fit(s: _Sample, X: np.ndarray) -> _Fit:
         contrib, keys = _hc2_contributions(group_share + np.sum(qmat ** 2, axis=1), r, resid, s.pos)
         df, method, rule = float(n - n_par), "lin_hc2", "hc2"
     else:
-        contrib, keys = _cr2_contributions(qmat, group_share, r, resid, s.cluster)
-        n_blocks = 1 if s.block is None else np.unique(s.block).size
-        df = float(np.unique(s.cluster).size - n_blocks - 1)
+        contrib, keys, df = _cr2_contributions(qmat, group_share, r, resid, s.cluster,
+                                               layout.groups)
         method, rule = "lin_cr2", "cr2"
     if df < 1:
         _warn(f"the adjusted estimate has {df:g} degrees of freedom; no interval is reported")
@@ -253,26 +255,46 @@ def _hc2_contributions(lev, r, resid, pos) -> tuple[np.ndarray, np.ndarray]:
     return contrib, _keys(_UNIT, pos)
 
 
-def _cr2_contributions(qmat, group_share, r, resid, cluster) -> tuple[np.ndarray, np.ndarray]:
-    groups = _groups(cluster)
-    codes = np.array([code for code, _ in groups], dtype=np.int64)
+def _cr2_contributions(qmat, group_share, r, resid, cluster, groups
+                       ) -> tuple[np.ndarray, np.ndarray, float]:
+    """CR2 contributions per cluster and the Bell–McCaffrey df of the effect.
+
+    Clusters are processed in batches of equal size: for each size ``m`` the
+    matrices ``I - H_gg`` of all clusters with ``m`` units are stacked and
+    decomposed by one batched ``eigh`` call.
+    """
+    order = np.argsort(cluster, kind="stable")
+    codes, starts, counts = np.unique(cluster[order], return_index=True, return_counts=True)
     contrib = np.empty(codes.size)
+    u_d = np.empty(codes.size)
+    u_t = np.empty(codes.size)
+    B = np.empty((codes.size, qmat.shape[1]))
     singular = False
-    for j, (_, idx) in enumerate(groups):
-        qg = qmat[idx]
-        hat = np.full((idx.size, idx.size), group_share[idx[0]]) + qg @ qg.T
-        adjust, sing = _inv_sqrt_psd(np.eye(idx.size) - hat)
+    for size in np.unique(counts):
+        which = np.flatnonzero(counts == size)
+        idx = order[starts[which][:, None] + np.arange(size)]          # (m, size)
+        qg = qmat[idx]                                                  # (m, size, k)
+        hat = group_share[idx[:, 0]][:, None, None] + qg @ np.swapaxes(qg, 1, 2)
+        adjust, sing = _inv_sqrt_psd(np.eye(size) - hat)
         singular |= sing
-        contrib[j] = r[idx] @ (adjust @ resid[idx])
+        u = np.einsum("mij,mj->mi", adjust, r[idx])                     # A_g r_g
+        contrib[which] = np.einsum("mi,mi->m", u, resid[idx])
+        u_d[which] = np.einsum("mi,mi->m", u, u)
+        u_t[which] = u.sum(axis=1)
+        B[which] = np.einsum("mik,mi->mk", qg, u)
     if singular:
         _warn("I - H_gg is singular for some cluster (e.g. alone in its block and arm); CR2 "
               "uses the generalised inverse square root there")
-    return contrib, _keys(_CLUSTER, codes)
+    cell = groups[order[starts]]
+    cell_size = 1.0 / group_share[order[starts]]
+    df = _bm_df(*_bm_terms(u_d, u_t, cell, cell_size, B))
+    return contrib, _keys(_CLUSTER, codes), df
 
 
 def _inv_sqrt_psd(m: np.ndarray) -> tuple[np.ndarray, bool]:
-    """Symmetric (generalised) inverse square root of a PSD matrix via eigh."""
+    """Symmetric (generalised) inverse square root of PSD matrices via (batched) eigh."""
     vals, vecs = np.linalg.eigh(m)
-    ok = vals > 1e-10 * max(1.0, float(vals.max(initial=0.0)))
+    top = np.maximum(1.0, vals.max(axis=-1, initial=0.0))[..., None]
+    ok = vals > 1e-10 * top
     inv = np.where(ok, 1.0 / np.sqrt(np.where(ok, vals, 1.0)), 0.0)
-    return (vecs * inv) @ vecs.T, bool((~ok).any())
+    return (vecs * inv[..., None, :]) @ np.swapaxes(vecs, -1, -2), bool((~ok).any())

@@ -89,6 +89,28 @@ def direct_cr2(X, y, groups):
     return beta, bread @ meat @ bread
 
 
+def direct_bm_df(X, groups, contrast):
+    """Bell & McCaffrey (2002) degrees of freedom of a CR2 contrast, written out densely.
+
+    Published formula (Bell & McCaffrey 2002, Section 3; Imbens & Kolesar 2016, eq. 9 with
+    Omega = I): G has one column per cluster, g_g = (I - H)_{.,g} A_g a_g with
+    a = X (X'X)^{-1} contrast and A_g = (I - H_gg)^{-1/2}; df = tr(G'G)^2 / tr((G'G)^2).
+    Independent of the library: full n x n matrices and scipy.linalg.sqrtm.
+    """
+    X = np.asarray(X, float)
+    bread = np.linalg.inv(X.T @ X)
+    H = X @ bread @ X.T
+    M = np.eye(X.shape[0]) - H
+    a = X @ bread @ np.asarray(contrast, float)
+    cols = []
+    for g in np.unique(groups):
+        m = groups == g
+        A = np.real(scipy.linalg.sqrtm(np.linalg.pinv(np.eye(m.sum()) - H[np.ix_(m, m)])))
+        cols.append(M[:, m] @ (A @ a[m]))
+    GtG = np.column_stack(cols).T @ np.column_stack(cols)
+    return np.trace(GtG) ** 2 / np.trace(GtG @ GtG)
+
+
 def two_sls(y, d, z):
     """Just-identified 2SLS of y on (1, d) with instruments (1, z), by numpy.
 
@@ -613,7 +635,11 @@ def test_cr2_matches_direct_bell_mccaffrey_implementation():
     beta, V = direct_cr2(sm.add_constant(z.astype(float)), y, cl)
     assert cr2.estimate == pytest.approx(beta[1], rel=1e-10)
     assert cr2.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-8)
-    assert cr2.df == 9 - 2 and cr2.method == "cr2"
+    assert cr2.method == "cr2"
+    # Bell & McCaffrey (2002) df, dense hand-written implementation above.
+    ref_df = direct_bm_df(sm.add_constant(z.astype(float)), cl, [0.0, 1.0])
+    assert cr2.df == pytest.approx(ref_df, rel=1e-9)
+    assert cr2.df < 9 - 2
 
 
 def test_cr2_equals_statsmodels_cluster_robust_up_to_known_factor():
@@ -667,6 +693,8 @@ def test_blocked_cluster_cr2_equals_saturated_regression_contrast():
     assert cr2.estimate == pytest.approx(contrast @ beta, rel=1e-10)
     assert cr2.std_error == pytest.approx(math.sqrt(contrast @ V @ contrast), rel=1e-8)
     assert ht.method == "horvitz_thompson"
+    # Bell & McCaffrey (2002) df of the block-weighted contrast (dense reference above).
+    assert cr2.df == pytest.approx(direct_bm_df(D, cl, contrast), rel=1e-9)
 
 
 def test_cluster_pairs_use_paired_formula():
@@ -763,7 +791,10 @@ def test_lin_cluster_matches_direct_cr2():
     beta, V = direct_cr2(lin_design(z, X), y, cl)
     assert est.estimate == pytest.approx(beta[1], rel=1e-10)
     assert est.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-8)
-    assert est.df == 10 - 2 and est.method == "lin_cr2"
+    assert est.method == "lin_cr2"
+    # Bell & McCaffrey (2002) df of the Lin contrast (dense reference above).
+    D = lin_design(z, X)
+    assert est.df == pytest.approx(direct_bm_df(D, cl, np.eye(D.shape[1])[1]), rel=1e-9)
 
 
 def test_lin_blocked_cluster_matches_direct_cr2():
@@ -778,7 +809,8 @@ def test_lin_blocked_cluster_matches_direct_cr2():
     beta, V = direct_cr2(lin_design(z, np.column_stack([X, dummies])), y, cl)
     assert est.estimate == pytest.approx(beta[1], rel=1e-10)
     assert est.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-8)
-    assert est.df == 16 - 4 - 1
+    D = lin_design(z, np.column_stack([X, dummies]))
+    assert est.df == pytest.approx(direct_bm_df(D, cl, np.eye(D.shape[1])[1]), rel=1e-9)
 
 
 def test_lin_cluster_pairs_use_additive_pair_effects_with_cr2():
@@ -1006,7 +1038,9 @@ def test_study_estimates_cluster_design_reports_cr2_and_ht():
     rows = study_estimates(make_study(frame, mechanism="cluster", cluster="village"))
     check_rows(rows)
     assert [(r["estimand"], r["method"]) for r in rows] == [("ATE", "cr2"), ("ATE", "horvitz_thompson")]
-    assert rows[0]["df"] == 6.0
+    # Bell & McCaffrey (2002) df (dense reference above), not clusters - 2.
+    assert rows[0]["df"] == pytest.approx(direct_bm_df(sm.add_constant(z.astype(float)), cl, [0, 1]),
+                                          rel=1e-9)
 
 
 def test_study_estimates_names_covariates_with_missing_values():
