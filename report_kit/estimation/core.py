@@ -417,12 +417,13 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
     """Block-size-weighted average of block estimates and its variance.
 
     ``tau = sum_b w_b tau_b`` with ``w_b = n_b / n``. Blocks where both arms
-    can be estimated contribute ``w_b^2 V_b``. Blocks with a single treated or
-    single control unit (matched pairs among them) enter together through the
-    paired-design estimator (Imai 2008; weighted form of Imai, King & Nall 2009):
-    with ``a_j = w_j tau_j`` over those J blocks,
-    ``V = J / (J - 1) sum_j (a_j - mean(a))^2`` (df ``J - 1``). If only one block
-    is small, the paired estimator is applied to all blocks.
+    can be estimated (large blocks) contribute ``w_b^2 V_b``. Blocks with a
+    single treated or single control unit (matched pairs among them) enter
+    together through the small-block estimator of :func:`_small_block_variance`
+    (Pashley & Miratrix 2021), which does not change when a constant is added to
+    every treated outcome. If the small blocks cannot carry that estimator on
+    their own (one small block, or one holding half or more of their units), it
+    is applied to all blocks.
     """
     weights = np.array([p.weight for p in pieces])
     w = weights / weights.sum()
@@ -430,16 +431,18 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
     n1 = sum(p.n_treated for p in pieces)
     n0 = sum(p.n_control for p in pieces)
     small = [i for i, p in enumerate(pieces) if p.small]
-    if len(small) == 1:
-        if len(pieces) == 1:
+    if small and _small_block_coefficients(w[small]) is None:
+        small = list(range(len(pieces)))
+        if _small_block_coefficients(w) is None:
             _warn(f"an arm has a single unit (or {'cluster' if rule != 'neyman' else 'unit'}) "
-                  "so its variance cannot be estimated; the standard error is undefined")
+                  "in too many blocks, so the variance cannot be estimated; the standard "
+                  "error is undefined")
             return _Fit(estimate=est, contrib=np.zeros(0), keys=np.zeros(0, dtype=np.int64),
                         components=(), n_treated=n1, n_control=n0, method=method,
                         variance_rule=rule, se_ok=False)
-        _warn("exactly one block has a single treated or single control unit; the paired "
-              "(between-block) variance estimator is used for all blocks")
-        small = list(range(len(pieces)))
+        _warn("the blocks with a single treated or single control unit are too few (or one "
+              "of them too large) for the small-block variance on their own; it is used for "
+              "all blocks")
     small_set = set(small)
     large = [i for i in range(len(pieces)) if i not in small_set]
     contrib = [w[i] * pieces[i].contrib for i in large]
@@ -453,11 +456,10 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
     else:
         comps = [(w[i] ** 2 * v, d) for i in large for v, d in pieces[i].components]
     if small:
-        a = np.array([w[i] * pieces[i].estimate for i in small])
-        c = math.sqrt(a.size / (a.size - 1)) * (a - a.mean())
+        c = _small_block_variance(w[small], np.array([pieces[i].estimate for i in small]))
         contrib.append(c)
         keys.append(_keys(_BLOCK, [pieces[i].label for i in small]))
-        comps.append((float(np.sum(c ** 2)), a.size - 1.0))
+        comps.append((float(np.sum(c ** 2)), len(small) - 1.0))
     variance_rule = "paired" if not large else (rule + "+paired" if small else rule)
     if blocked and not large and method == "blocked_neyman":
         method = "paired"
@@ -466,9 +468,46 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
                variance_rule=variance_rule, se_ok=True)
     if warn_zero and fit.variance == 0.0:
         _warn("the estimated variance is zero (the outcome does not vary within arms, or "
-              "the paired block effects are all equal); the standard error is 0 and the "
+              "the small-block effects are all equal); the standard error is 0 and the "
               "interval has zero width")
     return fit
+
+
+def _small_block_coefficients(w: np.ndarray) -> np.ndarray | None:
+    """Coefficients ``c_k`` of the small-block variance, or None where it is undefined.
+
+    With ``v_k = w_k / sum_j w_j`` (the block's share among the small blocks) and
+    ``A = sum_j v_j^2 / (1 - 2 v_j)``: ``c_k = v_k^2 / ((1 - 2 v_k)(1 + A))``
+    (Pashley & Miratrix 2021, the small-block estimator with unequal block sizes;
+    in counts ``n_k^2 / ((N - 2 n_k)(N + sum_j n_j^2 / (N - 2 n_j)))``). Needs
+    at least two blocks and every ``v_k < 1/2``; with equal shares (including two
+    blocks) ``c_k = 1 / (J (J - 1))``, the classic paired formula.
+    """
+    if w.size < 2:
+        return None
+    v = w / w.sum()
+    if np.ptp(v) <= 1e-12 * v.max():
+        return np.full(v.size, 1.0 / (v.size * (v.size - 1)))
+    if v.max() >= 0.5:
+        return None
+    a = float(np.sum(v * v / (1.0 - 2.0 * v)))
+    return v * v / ((1.0 - 2.0 * v) * (1.0 + a))
+
+
+def _small_block_variance(w: np.ndarray, tau: np.ndarray) -> np.ndarray:
+    """Contributions of the small blocks: ``W_S sqrt(c_k) (tau_k - tau_S)``.
+
+    ``tau_S = sum_k v_k tau_k`` is their weighted effect and ``W_S = sum_k w_k``
+    their share of all units, so the squares sum to ``W_S^2 sum_k c_k (tau_k -
+    tau_S)^2``, the variance of their part of the estimate. Its expectation is
+    at least the true variance, with equality when the effect is the same in
+    every small block (Pashley & Miratrix 2021). Centring at ``tau_S`` (not at
+    the mean of ``w_k tau_k``) makes it invariant to a constant added to every
+    treated outcome.
+    """
+    coef = _small_block_coefficients(w)
+    v = w / w.sum()
+    return w.sum() * np.sqrt(coef) * (tau - float(np.dot(v, tau)))
 
 
 def _undefined_fit(method: str, s: _Sample) -> _Fit:

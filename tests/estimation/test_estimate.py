@@ -128,6 +128,17 @@ def two_sls(y, d, z):
     return beta[1], math.sqrt(V[1, 1])
 
 
+def pashley_miratrix_small(sizes, tau):
+    """Small-block variance of Pashley & Miratrix (2021), count form, for sum (n_k/N) tau_k:
+    sum_k n_k^2 / ((N - 2 n_k)(N + sum_j n_j^2 / (N - 2 n_j))) (tau_k - tau_bar_w)^2."""
+    n = np.asarray(sizes, float)
+    N = n.sum()
+    tau = np.asarray(tau, float)
+    centre = np.dot(n / N, tau)
+    denom = (N - 2 * n) * (N + np.sum(n ** 2 / (N - 2 * n)))
+    return float(np.sum(n ** 2 / denom * (tau - centre) ** 2))
+
+
 def assignments(n, n1):
     for treated in itertools.combinations(range(n), n1):
         z = np.zeros(n, dtype=int)
@@ -580,8 +591,8 @@ def test_matched_pairs_match_scipy_paired_t_test():
 
 def test_small_blocks_use_paired_formula_beside_neyman_blocks():
     # Documented hybrid: blocks with >= 2 units per arm get Neyman's variance; blocks with a
-    # single treated (or control) unit enter through J/(J-1) sum (a_j - mean a)^2,
-    # a_j = w_j tau_j (Imai, King & Nall 2009, weighted paired estimator). Written out here.
+    # single treated (or control) unit enter through the small-block estimator of
+    # Pashley & Miratrix (2021), written here in their count form.
     rng = np.random.default_rng(4)
     sizes = [6, 8, 3, 4, 2, 3]
     treated = [3, 4, 1, 1, 1, 2]          # blocks 2..5 have a single treated or control unit
@@ -595,8 +606,7 @@ def test_small_blocks_use_paired_formula_beside_neyman_blocks():
     for b in (0, 1):
         yt, yc = y[(block == b) & (z == 1)], y[(block == b) & (z == 0)]
         var += w[b] ** 2 * (svar(yt) / yt.size + svar(yc) / yc.size)
-    a = w[2:] * tau[2:]
-    var += 4 / 3 * np.sum((a - a.mean()) ** 2)
+    var += (sum(sizes[2:]) / sum(sizes)) ** 2 * pashley_miratrix_small(sizes[2:], tau[2:])
     assert est.estimate == pytest.approx(np.dot(w, tau), rel=1e-12)
     assert est.std_error == pytest.approx(math.sqrt(var), rel=1e-10)
     assert est.variance_rule == "neyman+paired"
@@ -606,7 +616,7 @@ def test_a_single_small_block_switches_to_paired_for_all_blocks():
     y, z, block = blocked_data()
     z = z.copy()
     z[block == 2] = [1, 0, 0, 0, 0, 0]
-    with pytest.warns(ReportKitWarning, match="exactly one block"):
+    with pytest.warns(ReportKitWarning, match="used for all blocks"):
         est = estimate_effects(y, z, mechanism="blocked", block=block)[0]
     assert est.variance_rule == "paired" and est.df == 3
 
@@ -698,8 +708,8 @@ def test_blocked_cluster_cr2_equals_saturated_regression_contrast():
 
 
 def test_cluster_pairs_use_paired_formula():
-    # Cluster matched pairs: Imai, King & Nall (2009) variance J/(J-1) sum (a_j - mean a)^2
-    # with a_j = w_j tau_j, w_j the pair's share of units; written out here.
+    # Cluster matched pairs of unequal sizes: Pashley & Miratrix (2021) small-block variance
+    # (count form written out above), shift invariant unlike J/(J-1) sum (w_j tau_j - mean)^2.
     sizes = [2, 4, 3, 3, 5, 2, 1, 4, 3, 2]
     treated = [1, 0, 0, 1, 1, 0, 0, 1, 1, 0]
     y, z, cl, _ = cluster_data(sizes, treated, seed=13)
@@ -709,7 +719,8 @@ def test_cluster_pairs_use_paired_formula():
     tau = np.array([y[(block == j) & (z == 1)].mean() - y[(block == j) & (z == 0)].mean() for j in range(5)])
     a = w * tau
     assert cr2.estimate == pytest.approx(a.sum(), rel=1e-12)
-    assert cr2.std_error == pytest.approx(math.sqrt(5 / 4 * np.sum((a - a.mean()) ** 2)), rel=1e-10)
+    assert cr2.std_error == pytest.approx(math.sqrt(pashley_miratrix_small(np.bincount(block), tau)),
+                                          rel=1e-10)
     assert cr2.variance_rule == "paired" and cr2.df == 4
 
 

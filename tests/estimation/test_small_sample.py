@@ -57,3 +57,73 @@ def test_batched_cr2_agrees_with_cluster_by_cluster_formula_to_1e10():
     beta, V = direct_cr2(lin_design(z, np.column_stack([X, dummies])), y, cl)
     assert est.estimate == pytest.approx(beta[1], rel=1e-10)
     assert est.std_error == pytest.approx(np.sqrt(V[1, 1]), rel=1e-10)
+
+
+def _random_blocked_design(rng):
+    """Blocks of random sizes 2..30 with random arm sizes (at least one unit per arm)."""
+    sizes = rng.integers(2, 31, size=rng.integers(3, 8))
+    z = []
+    for size in sizes:
+        n1 = rng.integers(1, size)
+        z.append(rng.permutation(np.r_[np.ones(n1, int), np.zeros(size - n1, int)]))
+    return np.repeat(np.arange(sizes.size), sizes), np.concatenate(z)
+
+
+@pytest.mark.parametrize("seed", range(25))
+def test_block_variance_is_shift_invariant_over_random_designs(seed):
+    # Property (Pashley & Miratrix 2021; any estimator of the variance under a constant
+    # additive effect): adding a constant to every treated outcome moves the estimate by
+    # that constant and leaves the standard error unchanged.
+    rng = np.random.default_rng(seed)
+    block, z = _random_blocked_design(rng)
+    y = rng.normal(size=z.size) + block * 0.3
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ReportKitWarning)
+        base = estimate_effects(y, z, mechanism="blocked", block=block)[0]
+        for shift in (20.0, -7.5):
+            moved = estimate_effects(y + shift * z, z, mechanism="blocked", block=block)[0]
+            assert moved.estimate == pytest.approx(base.estimate + shift, abs=1e-9)
+            if base.std_error is None:
+                assert moved.std_error is None
+            else:
+                assert moved.std_error == pytest.approx(base.std_error, rel=1e-9, abs=1e-12)
+
+
+def test_issue_example_blocks_of_2_4_8_30_shift_invariant():
+    # The issue's example: blocks of 2, 4, 8 and 30 units (two of each here; the small
+    # blocks have one treated unit). Before the correction the SE grew with the shift.
+    rng = np.random.default_rng(15)
+    sizes, treated = [2, 4, 8, 30] * 2, [1, 1, 1, 15] * 2
+    block = np.repeat(np.arange(8), sizes)
+    z = np.concatenate([rng.permutation([1] * t + [0] * (s - t)) for s, t in zip(sizes, treated)])
+    y = rng.normal(size=z.size)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ReportKitWarning)
+        se0 = estimate_effects(y, z, mechanism="blocked", block=block)[0].std_error
+        se20 = estimate_effects(y + 20 * z, z, mechanism="blocked", block=block)[0].std_error
+    assert se0 is not None and se20 == pytest.approx(se0, rel=1e-10)
+
+
+def test_small_block_variance_is_unbiased_under_constant_effect_by_enumeration():
+    # Exact enumeration identity (Neyman 1923 applied per block): with the same effect in
+    # every block, the mean of the estimated variance over all assignments equals the true
+    # variance of the estimate over those assignments. Blocks of 3, 4, 5, 6 units, one
+    # treated unit each (all small), unequal sizes.
+    import itertools
+
+    sizes = [3, 4, 5, 6]
+    rng = np.random.default_rng(5)
+    block = np.repeat(np.arange(4), sizes)
+    y0 = rng.normal(size=block.size) * 2 + block
+    y1 = y0 + 1.7
+    starts = np.r_[0, np.cumsum(sizes)[:-1]]
+    estimates, variances = [], []
+    for picks in itertools.product(*[range(s) for s in sizes]):
+        z = np.zeros(block.size, int)
+        z[starts + np.array(picks)] = 1
+        est = estimate_effects(np.where(z == 1, y1, y0), z, mechanism="blocked", block=block)[0]
+        estimates.append(est.estimate)
+        variances.append(est.std_error ** 2)
+    true_var = np.var(estimates)          # all assignments equally likely
+    assert np.mean(estimates) == pytest.approx(1.7, rel=1e-12)
+    assert np.mean(variances) == pytest.approx(true_var, rel=1e-10)
