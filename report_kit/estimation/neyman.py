@@ -35,7 +35,13 @@ from report_kit.estimation.core import (
 )
 from report_kit.estimation.adjustment import estimate_adjusted
 from report_kit.errors import DesignError, ReportKitWarning
-from report_kit.estimation.noncompliance import WEAK_FIRST_STAGE_F, Noncompliance, estimate_noncompliance  # noqa: F401
+from report_kit.estimation.noncompliance import (  # noqa: F401
+    CACE_ASSUMPTIONS,
+    TF_SAFE_FIRST_STAGE_F,
+    WEAK_FIRST_STAGE_F,
+    Noncompliance,
+    estimate_noncompliance,
+)
 from report_kit.estimation.subgroups import SubgroupDifference, SubgroupResult, estimate_subgroups
 
 __all__ = [
@@ -260,8 +266,43 @@ def compliance_rates(z, d) -> dict:
 
 
 def study_compliance(study) -> dict | None:
-    """The ``compliance`` section (extension): take-up by arm, or None without a compliance column."""
+    """The ``compliance`` section (extension), or None without a compliance column.
+
+    Take-up by arm; ``cace``: per outcome the Wald CACE with its interval, the
+    first-stage F (``(ITT on take-up / SE)^2``), the Anderson–Rubin interval
+    (see :func:`~report_kit.estimation.noncompliance.estimate_noncompliance`)
+    and a note when F is below 104.7 (Lee, McCrary, Moreira & Porter 2022);
+    ``assumptions``: the exclusion and monotonicity assumptions in words.
+    """
     if study.spec.compliance is None:
         return None
     column = study.spec.compliance.received
-    return {"received": column, **compliance_rates(study.z, study.frame[column].to_numpy(dtype=float))}
+    d = study.frame[column].to_numpy(dtype=float)
+    kw = _study_design(study)
+    cace = []
+    for outcome in study.spec.outcomes:
+        with warnings.catch_warnings():   # already raised once by study_estimates
+            warnings.simplefilter("ignore", ReportKitWarning)
+            result = estimate_noncompliance(study.outcome(outcome.column), study.z, d, **kw)
+        cace.append(_cace_entry(outcome.column, result))
+    return {"received": column, **compliance_rates(study.z, d), "cace": cace,
+            "assumptions": CACE_ASSUMPTIONS}
+
+
+def _cace_entry(outcome: str, result: Noncompliance) -> dict:
+    first = result.itt_takeup
+    f_stat = None
+    if first.estimate is not None and first.std_error:
+        f_stat = (first.estimate / first.std_error) ** 2
+    note = None
+    if f_stat is not None and f_stat < TF_SAFE_FIRST_STAGE_F:
+        note = (f"First-stage F = {f_stat:.1f} is below {TF_SAFE_FIRST_STAGE_F:g}, so the Wald "
+                "interval's 95% level is not assured (Lee, McCrary, Moreira & Porter 2022); the "
+                "Anderson–Rubin interval is valid however weak the first stage.")
+    ar = result.anderson_rubin or {}
+    return {"outcome": outcome, "estimate": result.cace.estimate,
+            "wald_ci_low": result.cace.ci_low, "wald_ci_high": result.cace.ci_high,
+            "first_stage_f": f_stat, "ar_shape": ar.get("shape"),
+            "ar_ci_low": ar.get("ci_low"), "ar_ci_high": ar.get("ci_high"),
+            "ar_gap_low": ar.get("gap_low"), "ar_gap_high": ar.get("gap_high"),
+            "weak_instrument_note": note}
