@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from report_kit.validate import finite_or_none as _num
+from report_kit.validate import finite_or_none as _num, mean_impute_with_indicators
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
 
 logger = logging.getLogger(__name__)
@@ -397,30 +397,6 @@ class OmnibusBalance:
         }
 
 
-def _impute_with_indicators(arr: np.ndarray, names: tuple[str, ...]) -> np.ndarray:
-    """Fill missing values with the column mean and append a missingness indicator.
-
-    Both steps use the pooled sample only, never the assignment, so the
-    statistic stays a fixed function of the assignment vector.
-    """
-    cols, patterns = [], []
-    for j, name in enumerate(names):
-        x = arr[:, j]
-        miss = np.isnan(x)
-        if miss.all():
-            warnings.warn(f"covariate {name!r} is missing for every unit; the omnibus test leaves it out",
-                          ReportKitWarning, stacklevel=4)
-            continue
-        if miss.any():
-            cols.append(np.where(miss, x[~miss].mean(), x))
-            if not any(np.array_equal(miss, seen) for seen in patterns):
-                patterns.append(miss)  # one indicator per distinct missingness pattern
-        else:
-            cols.append(x)
-    cols.extend(m.astype(float) for m in patterns)
-    return np.column_stack(cols) if cols else np.empty((arr.shape[0], 0))
-
-
 def _whiten(arr: np.ndarray) -> np.ndarray:
     """Centre the columns and rotate them to unit sample covariance.
 
@@ -501,7 +477,7 @@ def mahalanobis_balance_test(
     arr, zb, names = _check_covariates(X, z, names)
     _check_method(method)
     n = zb.size
-    filled = _impute_with_indicators(arr, names)
+    filled = mean_impute_with_indicators(arr, names)
     W = _whiten(filled)
     if W.shape[1] == 0:
         return OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)

@@ -153,8 +153,7 @@ def study_estimates(study) -> list[dict]:
         y = study.outcome(outcome.column)
         rows += [_row(outcome.column, est, effect) for est in estimate_effects(y, z, **kw)]
         if X is not None:
-            _check_covariates(study, outcome.column, covariates, y, X)
-            adjusted = _adjusted_or_note(outcome.column, y, z, X, kw)
+            adjusted = _adjusted_or_note(outcome.column, y, z, X, covariates, kw)
             if adjusted is not None:
                 rows.append(_row(outcome.column, adjusted, effect))
         if compliance is not None:
@@ -195,14 +194,15 @@ def study_subgroup_differences(study) -> list[dict]:
     return rows
 
 
-def _adjusted_or_note(column: str, y, z, X, kw: dict) -> Estimate | None:
+def _adjusted_or_note(column: str, y, z, X, names, kw: dict) -> Estimate | None:
     """The Lin estimate, or None with a warning when the design cannot carry the regression.
 
     Too many covariates for the units (or a degenerate design) must not cost the
-    report its unadjusted estimates, which are the primary analysis.
+    report its unadjusted estimates, which are the primary analysis. Missing
+    baseline covariates are mean-imputed with missingness indicators.
     """
     try:
-        return estimate_adjusted(y, z, X, **kw)
+        return estimate_adjusted(y, z, X, names=names, **kw)
     except DesignError as err:
         warnings.warn(f"outcome '{column}': no covariate-adjusted estimate ({err}); "
                       "reduce analysis.covariates or set analysis.adjust: false", ReportKitWarning, stacklevel=3)
@@ -224,15 +224,6 @@ def _takeup(study, received: str, kw: dict) -> Estimate:
     fit = _unadjusted(s, _primary_rule(design.mechanism), warn_zero=False)
     return _to_estimate(fit, design.alpha, estimand="ITT", estimator="unadjusted",
                         n_missing=s.n_missing)
-
-
-def _check_covariates(study, outcome, covariates, y, X) -> None:
-    missing = np.isnan(X[~np.isnan(y)]).any(axis=0)
-    if missing.any():
-        names = [c for c, bad in zip(covariates, missing) if bad]
-        raise DesignError(f"covariate(s) {names} have missing values among units with an "
-                          f"observed {outcome!r}; the adjusted estimate needs complete "
-                          "baseline covariates")
 
 
 def _row(outcome: str, est: Estimate, estimand: str, *, subgroup: str | None = None) -> dict:

@@ -212,15 +212,15 @@ def test_cluster_must_not_mix_arms_or_span_blocks():
         estimate_effects(y, z, mechanism="blocked_cluster", block=block, cluster=labels)
 
 
-def test_covariates_with_missing_values_in_kept_rows_are_refused():
+def test_covariates_with_missing_values_in_kept_rows_are_refused_on_request():
     y, z = complete_data()
     X = np.random.default_rng(0).normal(size=(30, 2))
     X[3, 1] = np.nan
-    with pytest.raises(DesignError, match=r"covariates have missing values in 1 of the 30 units"):
-        estimate_adjusted(y, z, X, mechanism="complete")
+    with pytest.raises(DesignError, match=r"covariate\(s\) \['x2'\] have missing values in 1 of the 30 units"):
+        estimate_adjusted(y, z, X, mechanism="complete", missing_covariates="refuse")
     y = y.copy()
     y[3] = np.nan  # the row is dropped for the outcome, so its covariate does not matter
-    est = estimate_adjusted(y, z, X, mechanism="complete")
+    est = estimate_adjusted(y, z, X, mechanism="complete", missing_covariates="refuse")
     assert est.n_treated + est.n_control == 29
     assert est.n_missing == 1
 
@@ -1054,13 +1054,22 @@ def test_study_estimates_cluster_design_reports_cr2_and_ht():
                                           rel=1e-9)
 
 
-def test_study_estimates_names_covariates_with_missing_values():
+def test_study_estimates_impute_missing_covariates_with_mean_and_indicator():
+    # Missing baseline values: mean imputation plus a missingness indicator (the balance
+    # check's rule), then Lin's regression; reference: statsmodels OLS with HC2 on the
+    # same design written out here (Lin 2013 interacted form).
     y, z = complete_data()
     base = np.random.default_rng(1).normal(size=30)
-    base[7] = np.nan
+    base[np.r_[np.flatnonzero(z == 1)[:2], np.flatnonzero(z == 0)[:3]]] = np.nan
     frame = pd.DataFrame({"unit_id": np.arange(30), "assigned": z, "score": y, "baseline": base})
-    with pytest.raises(DesignError, match=r"covariate\(s\) \['baseline'\] have missing values"):
-        study_estimates(make_study(frame, covariates=["baseline"]))
+    rows = study_estimates(make_study(frame, covariates=["baseline"]))
+    adjusted = [r for r in rows if r["estimator"] == "adjusted"]
+    miss = np.isnan(base)
+    filled = np.where(miss, base[~miss].mean(), base)
+    X = np.column_stack([filled, miss.astype(float)])
+    fit = sm.OLS(y, lin_design(z, X)).fit(cov_type="HC2")
+    assert adjusted[0]["estimate"] == pytest.approx(fit.params[1], rel=1e-10)
+    assert adjusted[0]["std_error"] == pytest.approx(fit.bse[1], rel=1e-8)
 
 
 def test_estimate_to_dict_is_json_safe_and_keeps_fields():
