@@ -40,7 +40,7 @@ _PUBLIC = {
     "estimate_subgroups": "estimation.subgroups",
     # checks
     "covariate_balance": "checks.balance", "mahalanobis_balance_test": "checks.balance",
-    "participant_flow": "checks.balance",
+    "participant_flow": "checks.flow",
     "lee_bounds": "checks.attrition", "manski_bounds": "checks.attrition", "attrition_test": "checks.attrition",
     # planning
     "mde": "planning.power", "simulated_power": "planning.power", "plan_power": "planning.plan",

@@ -17,7 +17,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from report_kit.checks.attrition import study_attrition
-from report_kit.checks.balance import participant_flow, study_balance
+from report_kit.checks.balance import study_balance
+from report_kit.checks.flow import participant_flow
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inputs.model import Study
