@@ -33,7 +33,7 @@ _PUBLIC = {
     "randomization_test": "inference.randomization", "null_distribution": "inference.randomization",
     "invert_test": "inference.inversion",
     "holm": "inference.multiplicity", "benjamini_hochberg": "inference.multiplicity",
-    "westfall_young": "inference.multiplicity",
+    "westfall_young": "inference.multiplicity", "inference_scope": "inference.scope",
     # estimation
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",

@@ -19,6 +19,7 @@ import numpy as np
 from report_kit.checks.attrition import study_attrition
 from report_kit.checks.balance import study_balance
 from report_kit.checks.flow import participant_flow
+from report_kit.inference.scope import inference_scope
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inputs.model import Study
@@ -121,6 +122,7 @@ def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
         "flow": participant_flow(study, estimates),
         "attrition": attrition,
         "multiplicity": multiplicity,
+        "inference_scope": inference_scope(study),
         "power": study_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }

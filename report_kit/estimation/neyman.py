@@ -176,8 +176,9 @@ def study_subgroup_differences(study) -> list[dict]:
 
     One dict per (outcome, subgroup variable, level other than the first):
     ``{outcome, subgroup: "col=level", reference: "col=first", estimate,
-    std_error, ci_low, ci_high, df}``. Not part of the ``results.json`` schema 1
-    ``estimates`` list; offered for a report table.
+    std_error, ci_low, ci_high, df, label: "exploratory"}`` (not adjusted for
+    multiplicity; see ``inference_scope`` in ``results.json``). Not part of the
+    ``results.json`` schema 1 ``estimates`` list; offered for a report table.
     """
     spec = study.spec
     kw = _study_design(study)
@@ -190,7 +191,8 @@ def study_subgroup_differences(study) -> list[dict]:
                 item = diff.to_dict()
                 rows.append({"outcome": outcome.column,
                              "subgroup": f"{column}={item.pop('level')}",
-                             "reference": f"{column}={item.pop('reference')}", **item})
+                             "reference": f"{column}={item.pop('reference')}", **item,
+                             "label": "exploratory"})
     return rows
 
 
