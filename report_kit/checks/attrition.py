@@ -492,9 +492,14 @@ def _outcome_bounds(study, spec, zb: np.ndarray, notes: list[str]) -> list[dict]
     else:
         block = study.block if study.spec.design.block is not None else None
         lee = _lee(arms) if block is None else _lee_blocked(y, zb, observed, block)
+        se_lower, se_upper = lee.std_error_lower, lee.std_error_upper
+        if study.spec.design.cluster is not None:
+            se_lower = se_upper = None
+            notes.append(f"Lee bounds for {spec.column!r} have no standard errors: the formula of "
+                         "Lee (2009) treats units as independent, which a cluster design is not.")
         entries.append({"outcome": spec.column, "method": "lee", "lower": lee.lower,
-                        "upper": lee.upper, "std_error_lower": lee.std_error_lower,
-                        "std_error_upper": lee.std_error_upper, "trimmed_arm": lee.trimmed_arm,
+                        "upper": lee.upper, "std_error_lower": se_lower,
+                        "std_error_upper": se_upper, "trimmed_arm": lee.trimmed_arm,
                         "n_blocks": lee.n_blocks})
     if spec.range is not None:
         lo, hi = _check_range(*spec.range)
@@ -524,7 +529,8 @@ def study_attrition(study, chunks_factory: Callable[[], Iterable[np.ndarray]], m
         bounds, with standard errors and computed within blocks in blocked
         designs, for every outcome with a missing value; Manski bounds for
         outcomes with a declared ``range``), ``bounds_notes`` (a sentence for
-        each outcome whose Lee bounds are omitted because nothing is missing) and ``per_outcome`` (rates and test per outcome; see
+        each outcome whose Lee bounds are omitted because nothing is missing,
+        or have no standard errors because the design is clustered) and ``per_outcome`` (rates and test per outcome; see
         :meth:`AttritionTest.rows`).
 
     ``chunks_factory()`` returns a fresh iterator of assignment chunks drawn

@@ -141,3 +141,23 @@ def test_study_lee_bounds_use_blocks_of_a_blocked_design():
     (lee,) = section["bounds"]
     assert (lee["lower"], lee["upper"]) == (pytest.approx(2.0, rel=1e-12), pytest.approx(4.4, rel=1e-12))
     assert lee["n_blocks"] == 2 and lee["std_error_lower"] > 0
+
+
+def test_cluster_design_lee_bounds_have_no_unit_level_standard_errors():
+    # Lee (2009) Proposition 3 assumes independent units; a cluster design is not.
+    from pathlib import Path
+
+    from report_kit.inputs.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
+
+    y = [3.0, 5, 7, NAN, 1, 3, 2, 4]
+    z = [1, 1, 1, 1, 0, 0, 0, 0]
+    frame = pd.DataFrame({"uid": range(8), "z": z, "score": y, "school": [1, 1, 2, 2, 3, 3, 4, 4]})
+    spec = Spec(path=Path("/nonexistent/design.yaml"), spec_version=1, title="Invented", summary="",
+                data=DataSpec(units="data/units.csv", id="uid"),
+                design=DesignSpec(mechanism="cluster", treatment="z", cluster="school"),
+                analysis=AnalysisSpec(), outcomes=(OutcomeSpec(column="score", label="Score"),))
+    section = attrition.study_attrition(Study(spec=spec, frame=frame, inputs=()),
+                                        _all_assignments_of(z), "exact")
+    (lee,) = section["bounds"]
+    assert lee["lower"] is not None and lee["std_error_lower"] is None
+    assert "treats units as independent" in section["bounds_notes"][0]
