@@ -808,18 +808,23 @@ def test_lin_cluster_matches_direct_cr2():
     assert est.df == pytest.approx(direct_bm_df(D, cl, np.eye(D.shape[1])[1]), rel=1e-9)
 
 
-def test_lin_blocked_cluster_matches_direct_cr2():
+@pytest.mark.parametrize(("sizes", "treated", "seed"), [
+    ([2, 3, 4, 2, 3, 1, 2, 5, 3, 2, 4, 3, 2, 2, 3, 4],
+     [1, 1, 0, 0, 1, 0, 1, 0, 1, 0, 0, 1, 0, 1, 1, 0], 14),
+    # clusters of many sizes, several of each: the batched CR2 adjustment (one eigh per
+    # cluster size) must equal the cluster-by-cluster formula to 1e-10
+    ([1, 2, 3, 4, 5, 6, 2, 3, 4, 2, 5, 1, 3, 3, 2, 4, 6, 2, 3, 1, 2, 4, 3, 2], [1, 0] * 12, 31),
+])
+def test_lin_blocked_cluster_matches_direct_cr2(sizes, treated, seed):
     # Blocked cluster design, >= 2 clusters per arm in every block: Lin regression with
     # centred, interacted block indicators; CR2 by the direct Bell & McCaffrey (2002) code.
-    sizes = [2, 3, 4, 2, 3, 1, 2, 5, 3, 2, 4, 3, 2, 2, 3, 4]
-    treated = [1, 1, 0, 0, 1, 0, 1, 0, 1, 0, 0, 1, 0, 1, 1, 0]
-    y, z, cl, X = cluster_data(sizes, treated, seed=14, covariates=2)
-    block = np.repeat([0, 1, 2, 3], 4)[cl]
+    y, z, cl, X = cluster_data(sizes, treated, seed=seed, covariates=2)
+    block = np.repeat([0, 1, 2, 3], len(sizes) // 4)[cl]
     est = estimate_adjusted(y, z, X, mechanism="blocked_cluster", block=block, cluster=cl)
     dummies = (block[:, None] == np.arange(1, 4)[None, :]).astype(float)
     beta, V = direct_cr2(lin_design(z, np.column_stack([X, dummies])), y, cl)
     assert est.estimate == pytest.approx(beta[1], rel=1e-10)
-    assert est.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-8)
+    assert est.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-10)
     D = lin_design(z, np.column_stack([X, dummies]))
     assert est.df == pytest.approx(direct_bm_df(D, cl, np.eye(D.shape[1])[1]), rel=1e-9)
 

@@ -16,8 +16,7 @@ import pytest
 from scipy import stats
 
 from report_kit.errors import ReportKitWarning
-from report_kit.estimation.neyman import estimate_adjusted, estimate_effects
-from tests.estimation.test_estimate import cluster_data, direct_cr2, lin_design
+from report_kit.estimation.neyman import estimate_effects
 
 
 def test_bell_mccaffrey_df_cover_better_than_clusters_minus_two():
@@ -42,21 +41,6 @@ def test_bell_mccaffrey_df_cover_better_than_clusters_minus_two():
     assert cov_g2 < 0.95 - 3 * mc_se   # G - 2 under-covers beyond Monte Carlo error
     assert abs(cov_bm - 0.95) < abs(cov_g2 - 0.95)
     assert cov_bm > 0.95 - 4 * mc_se
-
-
-def test_batched_cr2_agrees_with_cluster_by_cluster_formula_to_1e10():
-    # Clusters of many sizes (several of each) in four blocks: the batched adjustment must
-    # equal the cluster-by-cluster Bell & McCaffrey (2002) CR2, written out densely in
-    # tests/estimation/test_estimate.py (matrix inverse + scipy sqrtm).
-    sizes = [1, 2, 3, 4, 5, 6, 2, 3, 4, 2, 5, 1, 3, 3, 2, 4, 6, 2, 3, 1, 2, 4, 3, 2]
-    treated = [1, 0] * 12
-    y, z, cl, X = cluster_data(sizes, treated, seed=31, covariates=2)
-    block = np.repeat([0, 1, 2, 3], 6)[cl]
-    est = estimate_adjusted(y, z, X, mechanism="blocked_cluster", block=block, cluster=cl)
-    dummies = (block[:, None] == np.arange(1, 4)[None, :]).astype(float)
-    beta, V = direct_cr2(lin_design(z, np.column_stack([X, dummies])), y, cl)
-    assert est.estimate == pytest.approx(beta[1], rel=1e-10)
-    assert est.std_error == pytest.approx(np.sqrt(V[1, 1]), rel=1e-10)
 
 
 def _random_blocked_design(rng):
