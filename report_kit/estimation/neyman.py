@@ -109,10 +109,13 @@ def estimate_effects(y, z, *, mechanism: str, block=None, cluster=None,
         ``s1^2/n1 + s0^2/n0`` (Neyman 1923), Welch–Satterthwaite df.
         ``blocked``/``matched_pairs``: block-size-weighted average of within-block
         differences; variance ``sum_b w_b^2 (s1b^2/n1b + s0b^2/n0b)``, with blocks
-        holding a single treated or control unit in the paired formula (Imai 2008).
+        holding a single treated or control unit in the shift-invariant small-block
+        estimator (Pashley & Miratrix 2021; for equal pairs the paired formula of
+        Imai 2008).
         ``cluster``/``blocked_cluster``: two estimates, the unit-level difference in
-        means with CR2 standard error (Bell & McCaffrey 2002; df = clusters - 2)
-        and the Horvitz–Thompson difference in totals (Middleton & Aronow 2015).
+        means with CR2 standard error and Bell–McCaffrey degrees of freedom
+        (Bell & McCaffrey 2002) and the Horvitz–Thompson difference in totals
+        (Middleton & Aronow 2015).
     """
     y, design = _validate(y, z, mechanism, block, cluster, alpha)
     s = _sample(design, y, np.ones(design.n, dtype=bool))
