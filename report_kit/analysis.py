@@ -17,8 +17,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from report_kit.checks.attrition import study_attrition_check
-from report_kit.checks.balance import participant_flow, study_balance_check
+from report_kit.checks.balance import study_balance_check
+from report_kit.checks.flow import participant_flow
 from report_kit.design.mechanism import Mechanism
+from report_kit.inference.scope import inference_scope
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inference.engine import ChunkMap
@@ -129,6 +131,7 @@ def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -
         "flow": participant_flow(study, estimates),
         "attrition": attrition,
         "multiplicity": multiplicity,
+        "inference_scope": inference_scope(study),
         "power": study_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }

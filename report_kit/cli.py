@@ -226,10 +226,15 @@ def lock(path: Path, force: bool) -> None:
                    "(every assignment instead when there are at most max(--draws, 10000) "
                    "and at most analysis.max_exact).")
 @click.option("--seed", type=int, help="Seed of the simulation (default: analysis.seed).")
+@click.option("--attrition", type=float, default=0.0, show_default=True,
+              help="Expected share of units whose outcome will be missing.")
+@click.option("--takeup-treated", type=float, help="Expected share taking the treatment when offered.")
+@click.option("--takeup-control", type=float, help="Expected share taking the treatment when not offered.")
 @click.option("--json", "as_json", is_flag=True, help="Print the plan as JSON.")
 def power(path: Path, sd: float | None, effect: float | None, target_power: float, icc: float | None,
           cluster_size: float | None, n_treated: int | None, n_control: int | None, n_clusters: int | None,
-          outcome: str | None, simulate: int, draws: int, seed: int | None, as_json: bool) -> None:
+          outcome: str | None, simulate: int, draws: int, seed: int | None, attrition: float,
+          takeup_treated: float | None, takeup_control: float | None, as_json: bool) -> None:
     """Power and minimum detectable effect for the design as planned."""
     from report_kit.pipeline import project_dir_of
     from report_kit.planning.power import format_plan_text, plan_power
@@ -249,12 +254,13 @@ def power(path: Path, sd: float | None, effect: float | None, target_power: floa
     try:
         plan = plan_power(project, sd=sd, effect=effect, power=target_power, icc=icc, cluster_size=cluster_size,
                           n_treated=n_treated, n_control=n_control, n_clusters=n_clusters, outcome=outcome,
-                          simulate=simulate, draws=draws, seed=seed, progress=report)
+                          simulate=simulate, draws=draws, seed=seed, progress=report, attrition=attrition,
+                          takeup_treated=takeup_treated, takeup_control=takeup_control)
     except UsageError as err:  # name the options as typed: `n_treated` -> --n-treated
         import re
 
         names = {"sd", "effect", "power", "icc", "cluster_size", "n_treated", "n_control", "n_clusters",
-                 "outcome", "simulate", "draws", "seed"}
+                 "outcome", "simulate", "draws", "seed", "attrition", "takeup_treated", "takeup_control"}
         text = re.sub(r"`(\w+)`", lambda m: "--" + m[1].replace("_", "-") if m[1] in names else m[0], str(err))
         raise UsageError(text) from err
     click.echo(json.dumps(plan.to_dict(), indent=2) if as_json else format_plan_text(plan))

@@ -8,8 +8,11 @@ number into a JSON-safe value.
 from __future__ import annotations
 
 import math
+import warnings
 
-from report_kit.errors import UsageError
+import numpy as np
+
+from report_kit.errors import ReportKitWarning, UsageError
 
 
 def finite_number(name: str, value) -> float:
@@ -70,3 +73,36 @@ def check_choice(name: str, value, choices) -> str:
     if not isinstance(value, str) or value not in choices:
         raise UsageError(f"`{name}` must be one of {braces(choices)}; got {value!r}")
     return value
+
+
+def mean_impute_with_indicators(arr, names, *, user: str = "the omnibus test") -> np.ndarray:
+    """Fill missing covariate values with the column mean and append missingness indicators.
+
+    The declared handling of missing baseline covariates, shared by the balance
+    check and the covariate adjustment: each column's missing values (NaN) are
+    replaced by the mean of its observed values, and one 0/1 indicator column
+    is appended per distinct pattern of missingness (two covariates missing for
+    the same units share one indicator). Both steps use the pooled sample only,
+    never the assignment (common practice; e.g. Lin, Green & Coppock 2016
+    standard operating procedures). A column missing for every unit is left out
+    with a warning that names ``user``.
+
+    Returns the (n, k') float array.
+    """
+    arr = np.asarray(arr, dtype=float)
+    cols, patterns = [], []
+    for j, name in enumerate(names):
+        x = arr[:, j]
+        miss = np.isnan(x)
+        if miss.all():
+            warnings.warn(f"covariate {name!r} is missing for every unit; {user} leaves it out",
+                          ReportKitWarning, stacklevel=3)
+            continue
+        if miss.any():
+            cols.append(np.where(miss, x[~miss].mean(), x))
+            if not any(np.array_equal(miss, seen) for seen in patterns):
+                patterns.append(miss)  # one indicator per distinct missingness pattern
+        else:
+            cols.append(x)
+    cols.extend(m.astype(float) for m in patterns)
+    return np.column_stack(cols) if cols else np.empty((arr.shape[0], 0))

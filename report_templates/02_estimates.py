@@ -7,6 +7,8 @@ project_dir = ""
 compare_to = ""
 
 # %%
+import html
+
 import pandas as pd
 
 from report_kit.report.figures import effect_plot
@@ -93,6 +95,14 @@ if comp:
         "of receiving the programme for units that take it when offered and only then. It assumes that "
         "assignment affects outcomes only through take-up and that no unit takes it up only when not offered "
         "(Angrist, Imbens & Rubin 1996).")
+    for item in comp.get("cace") or []:
+        if item.get("ar_shape") == "bounded":
+            say(f"Anderson–Rubin {100 - 100 * view.spec.analysis.alpha:g}% interval for the complier effect on "
+                f"{html.escape(view.label(item['outcome']))}, valid however weak the take-up difference: "
+                f"[{item['ar_ci_low']:.3g}, {item['ar_ci_high']:.3g}].")
+        elif item.get("ar_shape"):
+            say(f"The Anderson–Rubin interval for the complier effect on {html.escape(view.label(item['outcome']))} is "
+                "unbounded: the take-up difference is too weak to pin the effect down.")
     rows = pd.concat([takeup, cace])
     table = family_table(rows)
     table["Outcome"] = [f"Take-up ({o})" if o == comp["received"] else view.label(o) for o in rows["outcome"]]

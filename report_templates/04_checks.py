@@ -7,6 +7,8 @@ project_dir = ""
 compare_to = ""
 
 # %%
+import html
+
 import pandas as pd
 
 from report_kit.report.figures_checks import plot_balance
@@ -81,9 +83,12 @@ if att:
             "Lower": bounds["lower"], "Upper": bounds["upper"],
         }), "attrition_bounds", caption="Bounds on the average effect allowing for attrition", csv_frame=bounds,
             note="These are identification bounds: the range of effects consistent with the data if the missing "
-                 "outcomes were as favourable or unfavourable as possible, computed on all units pooled (blocks "
-                 "and clusters ignored) and without sampling error. Lee bounds assume attrition is monotone in "
-                 "treatment; Manski bounds assume only the outcome's declared range.")
+                 "outcomes were as favourable or unfavourable as possible, without sampling error. In blocked "
+                 "designs Lee bounds are computed within blocks and combined with the weights of the main "
+                 "estimate; they assume attrition is monotone in treatment. Manski bounds pool all units and "
+                 "assume only the outcome's declared range.")
+    for sentence in att.get("bounds_notes") or []:
+        say(html.escape(sentence))
 
 # %% [markdown]
 # ## Several outcomes

@@ -1,11 +1,12 @@
 """Covariate balance between the arms and the CONSORT-style participant flow.
 
 Owns: the per-covariate balance table (means by arm, standardized mean
-difference, variance ratio, missing counts), WHAT the omnibus Mahalanobis
-balance test computes for each assignment (:func:`mahalanobis_statistic`),
-and the participant-flow counts. HOW the draws are produced, counted and
-turned into p-values is the randomization engine's
-(:mod:`report_kit.inference.engine`, :mod:`report_kit.inference.pvalues`).
+difference, variance ratio, missing counts) and WHAT the omnibus Mahalanobis
+balance test computes for each assignment (:func:`mahalanobis_statistic`).
+HOW the draws are produced, counted and turned into p-values is the
+randomization engine's (:mod:`report_kit.inference.engine`,
+:mod:`report_kit.inference.pvalues`). The participant-flow counts live in
+:mod:`report_kit.checks.flow`.
 
 Assignment draws come from outside, as *chunks*: an iterable (or a callable
 returning one) of ``(k, n)`` 0/1 arrays, one row per drawn assignment and one
@@ -31,11 +32,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from report_kit.validate import finite_or_none as _num, mean_impute_with_indicators
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
 from report_kit.inference.engine import StoredDraws, drawn_statistics
 from report_kit.inference.pvalues import DrawnStatistics
 from report_kit.validate import METHODS, check_choice
-from report_kit.validate import finite_or_none as _num
 
 logger = logging.getLogger(__name__)
 
@@ -57,7 +58,6 @@ __all__ = [
     "mahalanobis_statistic",
     "omnibus_balance",
     "omnibus_from_draws",
-    "participant_flow",
     "study_balance",
     "study_balance_check",
 ]
@@ -111,6 +111,7 @@ class CovariateBalance:
     missing_treated: int
     missing_control: int
     flag: str | None
+    weighting: str = "none"
 
     def to_dict(self) -> dict:
         return {
@@ -124,6 +125,7 @@ class CovariateBalance:
             "missing_treated": self.missing_treated,
             "missing_control": self.missing_control,
             "flag": self.flag,
+            "weighting": self.weighting,
         }
 
 
@@ -169,9 +171,31 @@ def _arm_summary(x: np.ndarray) -> tuple[float | None, float | None, int]:
     return mean, sd, int(x.size - obs.size)
 
 
-def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray) -> CovariateBalance:
+def _block_weighted_means(x: np.ndarray, zb: np.ndarray, block: np.ndarray
+                          ) -> tuple[float | None, float | None]:
+    """``sum_b w_b xbar_ab`` per arm, ``w_b = n_b / n`` over blocks observed in both arms."""
+    obs = ~np.isnan(x)
+    sums = np.zeros((2, int(block.max()) + 1))
+    counts = np.zeros_like(sums)
+    for a, arm in enumerate((zb, ~zb)):
+        keep = arm & obs
+        sums[a] = np.bincount(block[keep], weights=x[keep], minlength=sums.shape[1])
+        counts[a] = np.bincount(block[keep], minlength=sums.shape[1])
+    both = (counts > 0).all(axis=0)
+    if not both.any():
+        return None, None
+    size = np.bincount(block, minlength=sums.shape[1]).astype(float) * both
+    w = size / size.sum()
+    means = np.divide(sums, counts, out=np.zeros_like(sums), where=counts > 0)
+    return float(w @ means[0]), float(w @ means[1])
+
+
+def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray,
+                   block: np.ndarray | None = None) -> CovariateBalance:
     m1, s1, miss1 = _arm_summary(x[zb])
     m0, s0, miss0 = _arm_summary(x[~zb])
+    if block is not None:
+        m1, m0 = _block_weighted_means(x, zb, block)
     std_diff = variance_ratio = None
     if None not in (m1, m0, s1, s0):
         pooled = np.sqrt((s1 ** 2 + s0 ** 2) / 2)
@@ -189,16 +213,23 @@ def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray) -> CovariateBalance
         sd_treated=_num(s1), sd_control=_num(s0),
         std_diff=_num(std_diff), variance_ratio=_num(variance_ratio),
         missing_treated=miss1, missing_control=miss0, flag=_flag(_num(std_diff)),
+        weighting="none" if block is None else "blocks",
     )
 
 
-def covariate_balance(X, z, names: Sequence[str]) -> tuple[CovariateBalance, ...]:
+def covariate_balance(X, z, names: Sequence[str], *, block=None) -> tuple[CovariateBalance, ...]:
     """Per-covariate balance as result objects (see :func:`balance_rows`)."""
     arr, zb, names = _check_covariates(X, z, names)
-    return tuple(_one_covariate(name, arr[:, j], zb) for j, name in enumerate(names))
+    codes = None
+    if block is not None:
+        labels = np.asarray(block, dtype=object)
+        if labels.shape != zb.shape:
+            raise UsageError(f"`block` must have one label per unit ({zb.size}); got shape {labels.shape}")
+        codes = np.unique(labels.astype(str), return_inverse=True)[1].ravel()
+    return tuple(_one_covariate(name, arr[:, j], zb, codes) for j, name in enumerate(names))
 
 
-def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
+def balance_rows(X, z, names: Sequence[str], *, block=None) -> list[dict]:
     r"""Means by arm, standardized mean difference and variance ratio per covariate.
 
     Parameters
@@ -210,13 +241,17 @@ def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
         Assignment, 1 treated and 0 control.
     names : sequence of str
         One name per column of ``X``.
+    block : array_like, shape (n,), optional
+        Block labels of a blocked design: the arm means become
+        ``sum_b w_b xbar_ab`` with ``w_b = n_b / n`` (blocks observed in both
+        arms), the weights of the block-weighted effect estimate.
 
     Returns
     -------
     list of dict
         One dict per covariate with ``name, mean_treated, mean_control,
         sd_treated, sd_control, std_diff, variance_ratio, missing_treated,
-        missing_control, flag``.
+        missing_control, flag, weighting`` (``"blocks"`` or ``"none"``).
 
     Notes
     -----
@@ -226,14 +261,18 @@ def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
 
     .. math:: d = \frac{\bar x_1 - \bar x_0}{\sqrt{(s_1^2 + s_0^2)/2}}
 
-    (Rosenbaum & Rubin 1985; Austin 2009), and the variance ratio is
+    (Rosenbaum & Rubin 1985; Austin 2009). In blocked designs the numerator
+    is the block-weighted difference :math:`\sum_b w_b (\bar x_{1b} - \bar
+    x_{0b})`, equal to the inverse-probability-weighted difference, over the
+    unweighted pooled SD (Austin & Stuart 2015), so that treatment shares
+    varying across blocks do not show as imbalance. The variance ratio is
     :math:`s_1^2 / s_0^2`. ``flag`` classes :math:`|d|` as ``"small"``
     (:math:`\le 0.1`), ``"moderate"`` (:math:`\le 0.25`) or ``"large"``; these
     cut-offs are common practice (Stuart 2010), not a test. Undefined values
     (fewer than two observed values in an arm, zero pooled SD, zero control
     variance) are None.
     """
-    return [row.to_dict() for row in covariate_balance(X, z, names)]
+    return [row.to_dict() for row in covariate_balance(X, z, names, block=block)]
 
 
 # ---------------------------------------------------------------------------
@@ -267,30 +306,6 @@ class OmnibusBalance:
             "df": self.df,
             "mc_std_error": self.mc_std_error,
         }
-
-
-def _impute_with_indicators(arr: np.ndarray, names: tuple[str, ...]) -> np.ndarray:
-    """Fill missing values with the column mean and append a missingness indicator.
-
-    Both steps use the pooled sample only, never the assignment, so the
-    statistic stays a fixed function of the assignment vector.
-    """
-    cols, patterns = [], []
-    for j, name in enumerate(names):
-        x = arr[:, j]
-        miss = np.isnan(x)
-        if miss.all():
-            warnings.warn(f"covariate {name!r} is missing for every unit; the omnibus test leaves it out",
-                          ReportKitWarning, stacklevel=4)
-            continue
-        if miss.any():
-            cols.append(np.where(miss, x[~miss].mean(), x))
-            if not any(np.array_equal(miss, seen) for seen in patterns):
-                patterns.append(miss)  # one indicator per distinct missingness pattern
-        else:
-            cols.append(x)
-    cols.extend(m.astype(float) for m in patterns)
-    return np.column_stack(cols) if cols else np.empty((arr.shape[0], 0))
 
 
 def _whiten(arr: np.ndarray) -> np.ndarray:
@@ -340,7 +355,7 @@ def balance_statistic(X, names: Sequence[str]) -> tuple[Callable[[np.ndarray], n
     direction is left. Warns when constant or collinear directions are dropped.
     """
     arr = np.asarray(X, dtype=float)
-    filled = _impute_with_indicators(arr, tuple(names))
+    filled = mean_impute_with_indicators(arr, tuple(names))
     W = _whiten(filled)
     if W.shape[1] == 0:
         return None, 0
@@ -469,7 +484,8 @@ def study_balance_check(study) -> BalanceCheck:
     X = study.frame.loc[:, list(names)].to_numpy(dtype=float)
     arr, _, names = _check_covariates(X, study.z, names)
     statistic, df = balance_statistic(arr, names)
-    return BalanceCheck(covariates=balance_rows(X, study.z, names), statistic=statistic, df=df)
+    block = study.block if study.spec.design.block else None
+    return BalanceCheck(covariates=balance_rows(X, study.z, names, block=block), statistic=statistic, df=df)
 
 
 def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], method: str,
@@ -490,52 +506,3 @@ def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], met
         draws = StoredDraws.from_arrays(chunks_factory, study.z.size, method, weights)
         drawn = drawn_statistics(draws, [check.statistic], study.z)[0]
     return check.section(drawn, method)
-
-
-def _main_estimate_sizes(estimates, outcome: str) -> tuple[int, int] | None:
-    for e in estimates or ():
-        if (e.get("outcome") == outcome and e.get("estimator") == "unadjusted"
-                and e.get("estimand") in ("ATE", "ITT") and e.get("subgroup") is None):
-            return int(e["n_treated"]), int(e["n_control"])
-    return None
-
-
-def participant_flow(study, estimates: Sequence[dict] | None = None) -> list[dict]:
-    """CONSORT-style participant flow by arm and outcome.
-
-    One dict per outcome and arm (``"treated"`` then ``"control"``):
-
-    ``outcome``, ``arm``, ``randomized`` (units assigned to the arm),
-    ``received_treatment`` (units of the arm with ``compliance.received`` = 1;
-    None without a compliance column), ``outcome_observed`` (non-missing
-    outcome), ``lost`` (``randomized - outcome_observed``) and ``analysed``
-    (units in the main unadjusted ITT/ATE estimate when ``estimates`` — the
-    ``results.json`` list — is given, else the units with an observed outcome,
-    the complete-case rule of the estimators).
-
-    The stages follow the CONSORT 2010 flow diagram (Schulz, Altman & Moher 2010).
-    """
-    zb = _check_assignment(study.z)
-    received = None
-    if study.spec.compliance is not None:
-        received = study.frame[study.spec.compliance.received].to_numpy(dtype=float) == 1
-    rows = []
-    for spec in study.spec.outcomes:
-        observed = ~np.isnan(study.outcome(spec.column))
-        sizes = _main_estimate_sizes(estimates, spec.column)
-        for arm, mask in (("treated", zb), ("control", ~zb)):
-            n_obs = int(observed[mask].sum())
-            if sizes is None:
-                analysed = n_obs
-            else:
-                analysed = sizes[0] if arm == "treated" else sizes[1]
-            rows.append({
-                "outcome": spec.column,
-                "arm": arm,
-                "randomized": int(mask.sum()),
-                "received_treatment": None if received is None else int(received[mask].sum()),
-                "outcome_observed": n_obs,
-                "lost": int(mask.sum()) - n_obs,
-                "analysed": analysed,
-            })
-    return rows

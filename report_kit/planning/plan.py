@@ -108,10 +108,11 @@ class PowerPlan:
         The project folder and the spec's title.
     mechanism : str
         ``design.mechanism``.
-    sizes_from : {"data", "options"}
-        Where the sizes came from: the units table, or the planned sizes given.
+    sizes_from : {"assignment", "data", "options"}
+        Where the sizes came from: the actual arms of an assigned units table,
+        the units table (expected arm sizes), or the planned sizes given.
     units_table : str or None
-        ``data.units`` when ``sizes_from == "data"``.
+        ``data.units`` when the sizes come from it.
     n_units : int
     n_blocks, n_clusters, clusters_treated : int or None
         ``None`` when the design has no blocks (clusters).
@@ -160,7 +161,9 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
                power: float = 0.8, icc: float | None = None, cluster_size: float | None = None,
                n_treated: int | None = None, n_control: int | None = None, n_clusters: int | None = None,
                outcome: str | None = None, simulate: int = 0, draws: int = DEFAULT_TEST_DRAWS,
-               seed: int | None = None, progress: Callable[[int, int], None] | None = None) -> PowerPlan:
+               seed: int | None = None, progress: Callable[[int, int], None] | None = None,
+               attrition: float = 0.0, takeup_treated: float | None = None,
+               takeup_control: float | None = None) -> PowerPlan:
     r"""Power and MDE of a project's design as planned, before (or without) outcome data.
 
     Parameters
@@ -197,6 +200,10 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
         Seed of the simulation (default ``analysis.seed``).
     progress : callable ``(done, total)``, optional
         Called after each simulated experiment.
+    attrition, takeup_treated, takeup_control : float, optional
+        Expected share of missing outcomes and expected take-up by arm, passed
+        to :func:`planned_power` (the analytic MDE of the ITT with the analysed
+        units, and ``mde_cace``).
 
     Returns
     -------
@@ -204,7 +211,9 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
 
     Notes
     -----
-    With a units table, the sizes are those of the real design: the number
+    With a units table whose treatment column (``design.treatment``) is
+    already filled with 0/1 for every unit, the arm sizes are the actual ones
+    (``sizes_from = "assignment"``). Otherwise, with a units table, the sizes are those of the real design: the number
     of randomization units (units or clusters) treated in each stratum is
     :func:`~report_kit.design.mechanism.number_treated` of ``design.probability``
     (0.5 when absent, as ``report-kit assign`` draws it), and the expected
@@ -247,7 +256,8 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
     analytic = planned_power(n_treated=units.n_treated, n_control=units.n_control, sd=opts.sd,
                              effect=opts.effect, power=opts.power, icc=opts.icc,
                              cluster_size=units.cluster_size, alpha=spec.analysis.alpha,
-                             alternative=target.alternative)
+                             alternative=target.alternative, attrition=attrition,
+                             takeup_treated=takeup_treated, takeup_control=takeup_control)
     simulation = None
     if opts.simulate:
         simulation = _simulate_plan(units, target, analytic, opts, alpha=spec.analysis.alpha,
@@ -360,7 +370,25 @@ def _units_from_table(spec: Spec) -> _PlannedUnits:
         draw_assignment(kind, ids, seed=0, block=block, cluster=cluster, probability=p)
     except (DataError, DesignError) as err:
         raise type(err)(f"{spec.project_dir / spec.data.units}: {err}") from err
-    return _describe_units(kind, ids, block, cluster, p, sizes_from="data", units_table=spec.data.units)
+    units = _describe_units(kind, ids, block, cluster, p, sizes_from="data", units_table=spec.data.units)
+    return _actual_arms(units, frame, spec.design.treatment)
+
+
+def _actual_arms(units: _PlannedUnits, frame, treatment: str) -> _PlannedUnits:
+    """The planned units with the actual arm sizes when the treatment column is filled."""
+    if treatment not in frame.columns:
+        return units
+    z = frame[treatment].to_numpy()
+    try:
+        zf = z.astype(float)
+    except (TypeError, ValueError):
+        return units
+    if np.isnan(zf).any() or not np.isin(zf, (0, 1)).all():
+        return units
+    n1 = int(zf.sum())
+    clusters_treated = None if units.cluster is None else int(np.unique(units.cluster[zf == 1]).size)
+    return replace(units, sizes_from="assignment", n_treated=float(n1), n_control=float(zf.size - n1),
+                   clusters_treated=clusters_treated)
 
 
 def _codes(labels: np.ndarray) -> np.ndarray:
@@ -533,7 +561,9 @@ def _g(x, digits: int = 4) -> str:
 def format_plan_text(plan: PowerPlan) -> str:
     """A readable summary of a :class:`PowerPlan` (what ``report-kit power`` prints)."""
     a, sim = plan.analytic, plan.simulation
-    source = f"sizes from {plan.units_table}" if plan.sizes_from == "data" else "planned sizes (no units table yet)"
+    source = {"data": f"sizes from {plan.units_table}",
+              "assignment": f"actual arm sizes from {plan.units_table}"}.get(
+        plan.sizes_from, "planned sizes (no units table yet)")
     expected = plan.mechanism == "bernoulli" or (plan.mechanism in _CLUSTERED and plan.sizes_from == "data")
     lines = [f"Power plan: {plan.title}",
              f"  design         {plan.mechanism}; {source}",
@@ -553,6 +583,12 @@ def format_plan_text(plan: PowerPlan) -> str:
               f"  outcome SD     {_g(a['sd'])}",
               f"  std. error     {_g(a['std_error'])} (t test, {_g(a['df'], 8)} df)",
               f"  MDE            {_g(a['mde'])} at {a['target_power']:.0%} power ({_g(a['mde_std'], 3)} SD)"]
+    if a.get("attrition"):
+        lines.insert(-1, f"  attrition      {a['attrition']:.0%} expected: {_g(a['n_treated_analysed'], 8)} treated and "
+                         f"{_g(a['n_control_analysed'], 8)} control units analysed")
+    if a.get("mde_cace") is not None:
+        lines.append(f"  MDE (CACE)     {_g(a['mde_cace'])} = MDE / ({_g(a['takeup_treated'])} - "
+                     f"{_g(a['takeup_control'])}) take-up difference")
     if a["power"] is not None:
         lines.append(f"  power          {a['power']:.3f} at effect {_g(a['effect'])} (analytic)")
     if sim is not None:

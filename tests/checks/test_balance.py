@@ -14,6 +14,7 @@ from matplotlib.figure import Figure
 from scipy import stats
 
 from report_kit.checks import balance
+from report_kit.checks import flow as flow_module
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
 from report_kit.report.figures_checks import plot_balance
 from report_kit.inputs.model import AnalysisSpec, ComplianceSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
@@ -332,7 +333,7 @@ def test_participant_flow_counts_by_hand():
     frame = flow_frame()
     outcomes = (OutcomeSpec(column="y", label="Y"), OutcomeSpec(column="w", label="W", family="secondary"))
     study = make_study(frame, outcomes=outcomes, received="got")
-    flow = balance.participant_flow(study)
+    flow = flow_module.participant_flow(study)
     by = {(r["outcome"], r["arm"]): r for r in flow}
     # counted by hand from flow_frame()
     assert by["y", "treated"] == {"outcome": "y", "arm": "treated", "randomized": 4, "received_treatment": 3,
@@ -342,9 +343,9 @@ def test_participant_flow_counts_by_hand():
     assert by["w", "control"]["outcome_observed"] == 4
     estimates = [{"outcome": "y", "estimand": "ATE", "estimator": "unadjusted", "subgroup": None,
                   "n_treated": 2, "n_control": 2}]
-    by = {(r["outcome"], r["arm"]): r for r in balance.participant_flow(study, estimates)}
+    by = {(r["outcome"], r["arm"]): r for r in flow_module.participant_flow(study, estimates)}
     assert by["y", "treated"]["analysed"] == 2 and by["w", "treated"]["analysed"] == 4
-    no_compliance = balance.participant_flow(make_study(frame))
+    no_compliance = flow_module.participant_flow(make_study(frame))
     assert no_compliance[0]["received_treatment"] is None
 
 

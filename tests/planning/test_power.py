@@ -245,7 +245,7 @@ def test_cli_power_quiet_hours_matches_statsmodels(tmp_path):
     # complete randomization of the 12 branches, half treated (design.probability absent -> 0.5)
     assert plan["design"]["n_units"] == len(units) == 12
     assert (plan["design"]["n_treated"], plan["design"]["n_control"]) == (6, 6)
-    assert plan["design"]["sizes_from"] == "data" and plan["design"]["design_effect"] == 1.0
+    assert plan["design"]["sizes_from"] == "assignment" and plan["design"]["design_effect"] == 1.0
     # Reference: statsmodels.stats.power.TTestIndPower (noncentral t, df = 10).
     ref = TTestIndPower()
     assert plan["analytic"]["power"] == pytest.approx(ref.power(effect_size=60 / 50, nobs1=6, ratio=1.0,
@@ -262,6 +262,8 @@ def test_cli_power_quiet_hours_matches_statsmodels(tmp_path):
 def test_cli_power_tutoring_clubs_design_effect_by_hand(tmp_path):
     project = copy_project("tutoring-clubs", tmp_path)
     pupils = pd.read_csv(project / "data" / "pupils.csv")
+    # before the assignment: the treatment column is not in the units table yet
+    pupils.drop(columns="assigned").to_csv(project / "data" / "pupils.csv", index=False)
     n, clusters = len(pupils), pupils["school"].nunique()
     m, rho, sd, effect = n / clusters, 0.05, 10.0, 3.0
     result = power_cli(project, "--sd", sd, "--icc", rho, "--effect", effect, "--json")
@@ -284,6 +286,66 @@ def test_cli_power_tutoring_clubs_design_effect_by_hand(tmp_path):
     text = power_cli(project, "--sd", sd, "--icc", rho).stdout
     assert f"clusters       {clusters} ({clusters // 2} treated, {clusters // 2} control)" in text
     assert "design effect  " in text and "blocks         4" in text
+
+
+def test_cli_power_uses_actual_arm_sizes_once_assigned(tmp_path):
+    # Reference: statsmodels TTestIndPower with the arm sizes counted here from the units
+    # table's filled treatment column (the actual arms, not the expected ones).
+    project = copy_project("quiet-hours", tmp_path)
+    spec = yaml.safe_load((project / "design.yaml").read_text())
+    units = pd.read_csv(project / spec["data"]["units"])
+    units.loc[units.index[:2], spec["design"]["treatment"]] = 1     # unequal arms on purpose
+    units.to_csv(project / spec["data"]["units"], index=False)
+    z = units[spec["design"]["treatment"]]
+    n1, n0 = int(z.sum()), int((1 - z).sum())
+    assert n1 != n0
+    plan = json.loads(power_cli(project, "--sd", 2.0, "--effect", 1.5, "--json").stdout)
+    assert plan["design"]["sizes_from"] == "assignment"
+    assert (plan["design"]["n_treated"], plan["design"]["n_control"]) == (n1, n0)
+    expected = TTestIndPower().power(effect_size=1.5 / 2.0, nobs1=n1, ratio=n0 / n1, alpha=0.05)
+    assert plan["analytic"]["power"] == pytest.approx(expected, rel=1e-9)
+
+
+@pytest.mark.parametrize("attrition", [0.0, 0.1, 0.3])
+def test_planned_mde_with_attrition_matches_statsmodels_on_analysed_units(attrition):
+    # statsmodels TTestIndPower.solve_power on the units left after attrition
+    # (n_a (1 - attrition) per arm): same noncentral t (Cohen 1988), same df.
+    n1, n0 = 120, 80
+    # solve_power stops at a loose tolerance (1e-5); statsmodels' power at our MDE must
+    # hit the target to 1e-9.
+    res = pw.planned_power(n_treated=n1, n_control=n0, sd=1.0, power=0.8, attrition=attrition)
+    ref = TTestIndPower().solve_power(effect_size=None, nobs1=n1 * (1 - attrition),
+                                      ratio=n0 / n1, alpha=0.05, power=0.8)
+    assert res["mde"] == pytest.approx(ref, rel=1e-5)
+    at_mde = TTestIndPower().power(effect_size=res["mde"], nobs1=n1 * (1 - attrition), ratio=n0 / n1,
+                                   alpha=0.05)
+    assert at_mde == pytest.approx(0.8, abs=1e-9)
+    assert res["n_treated_analysed"] == pytest.approx(n1 * (1 - attrition))
+
+
+def test_planned_mde_of_cace_is_itt_mde_over_takeup_difference():
+    # Bloom (1984): the complier effect is the ITT divided by the take-up difference, so
+    # the smallest detectable complier effect is MDE_ITT / (c1 - c0); 0.7 - 0.1 = 0.6.
+    res = pw.planned_power(n_treated=100, n_control=100, sd=1.0, takeup_treated=0.7, takeup_control=0.1)
+    ref = TTestIndPower().solve_power(effect_size=None, nobs1=100, ratio=1.0, alpha=0.05, power=0.8)
+    assert res["mde"] == pytest.approx(ref, rel=1e-5)           # solve_power's tolerance
+    assert res["mde_cace"] == pytest.approx(res["mde"] / 0.6, rel=1e-12)
+    with pytest.raises(UsageError, match="go together"):
+        pw.planned_power(n_treated=100, n_control=100, takeup_treated=0.7)
+    with pytest.raises(UsageError, match="must exceed"):
+        pw.planned_power(n_treated=100, n_control=100, takeup_treated=0.2, takeup_control=0.3)
+
+
+def test_cluster_attrition_shrinks_cluster_size_not_clusters():
+    # Donner & Klar (2000): with m (1 - a) units observed per cluster the design effect is
+    # 1 + (m (1 - a) - 1) rho and the df stay J - 2; written out here.
+    m, rho, a, J = 20, 0.1, 0.25, 30
+    res = pw.planned_power(n_treated=J / 2 * m, n_control=J / 2 * m, sd=1.0, icc=rho, cluster_size=m,
+                           attrition=a)
+    deff = 1 + (m * (1 - a) - 1) * rho
+    n_arm = J / 2 * m * (1 - a)
+    assert res["df"] == J - 2
+    assert res["std_error"] == pytest.approx(np.sqrt(deff * 2 / n_arm), rel=1e-12)
 
 
 def test_cli_power_missing_or_conflicting_options(tmp_path):
