@@ -32,10 +32,12 @@ from report_kit.audit.provenance import (
 __all__ = [
     "RECORD_KEYS", "ResultChange", "ResultRecord", "ResultsDiff", "TableDiff", "InputChange",
     "RunDiff", "compare_runs", "diff_results", "diff_tables", "conclusion_changes",
-    "format_diff_text",
+    "format_diff_text", "CHANGES_NAME",
 ]
 
 DIFF_SCHEMA = "report-kit/diff/1"
+#: A run made with ``--compare-to`` keeps its diff from the compared run here, beside results.json.
+CHANGES_NAME = "changes.json"
 #: Results that differ by less than this (relative, or absolute near zero) are not
 #: reported as moved: floating-point noise from a different summation order. Same
 #: tolerance as `report-kit verify`.
