@@ -18,6 +18,8 @@ import subprocess
 import warnings
 from datetime import datetime, timezone
 from pathlib import Path
+from urllib.parse import urlsplit
+from urllib.request import url2pathname
 
 from report_kit.errors import UsageError
 from report_kit.report.notebooks import TEMPLATE_DIR, ReportError
@@ -139,15 +141,57 @@ def render_builtin(notebooks: list[Path], run_dir: Path, *, title: str, pdf: boo
         write_pdf(run_dir / "report.html", run_dir / "report.pdf")
 
 
+def fetch_allowed(url: str, root: Path) -> bool:
+    """Whether the PDF renderer may load ``url``: inline ``data:`` or a file inside ``root``.
+
+    Anything else (``http:``, ``https:``, ``ftp:``, files outside the run
+    folder) is refused, so rendering a report never reaches the network or
+    reads another file of the machine, whatever the HTML contains.
+    """
+    scheme = urlsplit(url).scheme.lower()
+    if scheme == "data":
+        return True
+    if scheme != "file":
+        return False
+    path = Path(url2pathname(urlsplit(url).path)).resolve()
+    return path == root.resolve() or root.resolve() in path.parents
+
+
+def _offline_fetcher(root: Path):
+    """A weasyprint URL fetcher that loads only what :func:`fetch_allowed` allows."""
+    import weasyprint.urls as urls
+
+    def refuse(url: str) -> None:
+        log.warning("PDF: refused to load %s (only data: URLs and files of the run folder)", url[:200])
+        raise ValueError(f"report-kit renders offline; refused {url[:200]}")
+
+    if hasattr(urls, "URLFetcher"):  # weasyprint >= 68: a fetcher class
+        class RunFolderFetcher(urls.URLFetcher):
+            def fetch(self, url, headers=None):
+                if not fetch_allowed(url, root):
+                    refuse(url)
+                return super().fetch(url, headers)
+
+        return RunFolderFetcher(allowed_protocols={"data", "file"}, allow_redirects=False)
+
+    def fetcher(url: str):  # older weasyprint: a function
+        if not fetch_allowed(url, root):
+            refuse(url)
+        return urls.default_url_fetcher(url)
+
+    return fetcher
+
+
 def write_pdf(html_path: Path, pdf_path: Path) -> None:
-    """PDF from the self-contained HTML with weasyprint."""
+    """PDF from the self-contained HTML with weasyprint; nothing outside the HTML's folder is fetched."""
     logging.getLogger("weasyprint").setLevel(logging.ERROR)
     logging.getLogger("fontTools").setLevel(logging.ERROR)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DeprecationWarning)  # weasyprint's notice about optional HarfBuzz-Subset
         import weasyprint
 
-        weasyprint.HTML(filename=str(html_path)).write_pdf(str(pdf_path))
+        weasyprint.HTML(filename=str(html_path), url_fetcher=_offline_fetcher(html_path.parent)).write_pdf(
+            str(pdf_path))
 
 
 def quarto_available() -> bool:

@@ -37,16 +37,3 @@ def test_cautions_state_the_plan_lock():
     moved = cautions({"locked": True, "locked_at": "x", "changes": [{"key": "analysis.alpha"}]})[-1]
     assert "1 key(s) changed since" in moved
     assert any("not proof of benefit or of safety" in c for c in cautions({"locked": False}))
-
-
-def test_estimate_roles():
-    from report_kit.report.view import estimate_role
-
-    seen: set = set()
-    rows = [
-        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "unadjusted", "method": "cr2"},
-        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "unadjusted", "method": "horvitz_thompson"},
-        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "adjusted", "method": "lin_cr2"},
-        {"outcome": "y", "estimand": "CACE", "subgroup": None, "estimator": "unadjusted", "method": "wald_delta"},
-    ]
-    assert [estimate_role(r, seen) for r in rows] == ["lead", "check", "adjusted", ""]
