@@ -110,8 +110,13 @@ def make_run_id(study: Study, now: datetime) -> str:
 
 
 def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
-                progress: Progress = _quiet, on_run_id: Progress = _quiet) -> RunOutcome:
-    """Analyse a project, execute the report notebooks, render, record provenance."""
+                progress: Progress = _quiet, on_run_id: Progress = _quiet, kernel=None) -> RunOutcome:
+    """Analyse a project, execute the report notebook, render, record provenance.
+
+    ``kernel``: an entered :class:`report_kit.report.notebooks.ReportKernel`
+    started before this call (the command line does), or None to start one
+    when the notebook runs.
+    """
     from report_kit.report import notebooks
     from report_kit.report import render
 
@@ -136,7 +141,7 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
         if options.compare_to is not None:
             write_changes(tmp, options.compare_to, run_id)
         progress("executing the report notebook")
-        executed = notebooks.execute_all(tmp, study.spec.project_dir, progress=progress)
+        executed = notebooks.execute_all(tmp, study.spec.project_dir, progress=progress, kernel=kernel)
         progress(f"rendering HTML{' and PDF' if options.pdf else ''} ({options.renderer} renderer)")
         render.render_report(executed, tmp, title=study.spec.title, renderer=options.renderer,
                              pdf=options.pdf)

@@ -10,10 +10,14 @@ template and the error.
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import logging
 import os
+import shutil
 import sys
+import tempfile
+import threading
 from collections.abc import Callable
 from pathlib import Path
 
@@ -80,63 +84,103 @@ def assemble(templates: list[Path], params: dict):
 
 
 def execute_all(run_dir: Path, project_dir: Path, *, progress: Callable[[str], None] = lambda _: None,
-                template_dir: Path = TEMPLATE_DIR) -> list[Path]:
+                template_dir: Path = TEMPLATE_DIR, kernel: ReportKernel | None = None) -> list[Path]:
     """Assemble the templates into ``notebooks/report.ipynb`` and execute it in one kernel.
 
-    Returns the executed notebook's path in a list (the renderers take a list).
+    ``kernel``: a :class:`ReportKernel` started earlier (its start-up and imports
+    overlap the analysis); without one, papermill starts a kernel now. Returns
+    the executed notebook's path in a list (the renderers take a list).
     """
     out_dir = run_dir / "notebooks"
     out_dir.mkdir(exist_ok=True)
     params = {"run_dir": str(run_dir), "project_dir": str(project_dir)}
     templates = template_paths(template_dir)
     progress(f"  one kernel, {len(templates)} sections: " + ", ".join(t.stem for t in templates))
-    return [execute_notebook(assemble(templates, params), run_dir / REPORT_NOTEBOOK, cwd=run_dir)]
+    notebook = assemble(templates, params)
+    _kernel_manager_class()  # imports papermill's kernel stack here, before the warm-up thread starts
+    warm = threading.Thread(target=_import_pdf_renderer, name="report-kit-warm-import", daemon=True)
+    warm.start()  # this process only waits for the kernel meanwhile
+    try:
+        return [execute_notebook(notebook, run_dir / REPORT_NOTEBOOK, cwd=run_dir, kernel=kernel)]
+    finally:
+        warm.join()
 
 
-def execute_notebook(nb, output: Path, *, cwd: Path) -> Path:
+def _import_pdf_renderer() -> None:
+    """Import weasyprint (about a second) while the kernel runs the notebook.
+
+    weasyprint shares no module with the kernel client, so importing it in a
+    thread cannot deadlock on an import lock; any failure is left for
+    rendering to report with its own message.
+    """
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)  # as in render.write_pdf
+        try:
+            import weasyprint  # noqa: F401
+        except Exception:  # noqa: BLE001 - rendering imports it again and reports the error
+            return
+
+
+def execute_notebook(nb, output: Path, *, cwd: Path, kernel: ReportKernel | None = None) -> Path:
     """Execute an assembled notebook with papermill in a kernel of this very interpreter."""
     import nbformat
     import papermill
 
     source = output.with_suffix(".source.ipynb")
     nbformat.write(nb, source)
+    started = {} if kernel is None or kernel.manager is None else {"km": kernel.manager}
     try:
         with _kernel_stderr_to(cwd / "run.log"):
             papermill.execute_notebook(str(source), str(output), kernel_name="python3", progress_bar=False,
-                                       log_output=False, cwd=str(cwd),
-                                       kernel_manager_class=_kernel_manager_class())
+                                       log_output=False, cwd=str(cwd), request_save_on_cell_execute=False,
+                                       kernel_manager_class=_kernel_manager_class(), **started)
     except papermill.PapermillExecutionError as err:
-        section = _section_of(output, err.cell_index)
+        section = _section_of(output)
         raise ReportError(f"{section}: report notebook failed in cell {err.exec_count}: "
                           f"{err.ename}: {err.evalue}") from err
     finally:
         source.unlink(missing_ok=True)
+        if kernel is not None:
+            kernel.copy_log_to(cwd / "run.log")
     return output
 
 
-def _section_of(executed: Path, cell_index: int) -> str:
-    """The template a failed cell came from (papermill writes the notebook before raising)."""
+def _section_of(executed: Path) -> str:
+    """The template of the cell that failed: papermill writes the notebook, error output included, before
+    raising (it also adds its own marker cells, so the cell index of the error does not point at it)."""
     import nbformat
 
     try:
         cells = nbformat.read(executed, as_version=4).cells
-        return cells[cell_index].metadata.get(SECTION_KEY, "report") + ".py"
-    except (OSError, ValueError, IndexError):
+    except (OSError, ValueError):
         return "report notebook"
+    for cell in cells:
+        if any(out.get("output_type") == "error" for out in cell.get("outputs", [])):
+            return cell.metadata.get(SECTION_KEY, "report") + ".py"
+    return "report notebook"
 
 
-def _kernel_manager_class():
+#: Imported by a kernel started ahead of time (:class:`ReportKernel`) while the analysis runs.
+WARM_IMPORTS = ("pandas", "report_kit.report.view", "report_kit.report.figures", "report_kit.report.figures_checks")
+
+
+def _kernel_manager_class(warm: tuple[str, ...] = ()):
     """A kernel manager that starts ``ipykernel`` in this interpreter, whatever kernelspecs exist.
 
     A ``python3`` kernelspec found elsewhere (another environment, the user's
     folder) could start a Python without this report-kit; the report must run
-    with the code that made ``results.json``.
+    with the code that made ``results.json``. ``warm`` modules are imported by
+    the kernel as it starts (IPython's ``exec_lines``), before it is ready.
     """
+    import papermill  # noqa: F401 - its kernel stack, imported once in this thread
     from jupyter_client.kernelspec import KernelSpec
     from jupyter_client.manager import AsyncKernelManager
 
     argv = [sys.executable, *(["-Xfrozen_modules=off"] if sys.version_info >= (3, 11) else []),
             "-m", "ipykernel_launcher", "-f", "{connection_file}"]
+    argv += [f"--IPKernelApp.exec_lines=import {name}" for name in warm]
 
     class ThisInterpreterKernelManager(AsyncKernelManager):
         @property
@@ -144,6 +188,44 @@ def _kernel_manager_class():
             return KernelSpec(argv=argv, display_name="Python 3", language="python")
 
     return ThisInterpreterKernelManager
+
+
+class ReportKernel:
+    """A report kernel started ahead of time, importing :data:`WARM_IMPORTS` while the run goes on.
+
+    Use as a context manager around the whole run (the command line enters it
+    before importing the analysis, so the kernel's start-up and imports overlap
+    the command's own); the kernel is shut down on exit, whatever happened.
+    What the kernel writes to stderr is kept and appended to ``run.log`` by
+    :meth:`copy_log_to`.
+    """
+
+    def __init__(self) -> None:
+        self.manager = None
+        self._log = tempfile.TemporaryFile()
+
+    def __enter__(self) -> ReportKernel:
+        self.manager = _kernel_manager_class(WARM_IMPORTS)(kernel_name="python3")
+        try:
+            asyncio.run(self.manager.start_kernel(stderr=self._log))
+        except Exception:  # noqa: BLE001 - papermill starts its own kernel later instead
+            log.warning("could not start the report kernel ahead of time", exc_info=True)
+            self.manager = None
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self.manager is not None and self.manager.has_kernel:
+            asyncio.run(self.manager.shutdown_kernel(now=True))
+        self._log.close()
+
+    def copy_log_to(self, path: Path) -> None:
+        """Append what the kernel wrote to stderr so far to ``path``."""
+        self._log.flush()
+        self._log.seek(0)
+        with open(path, "ab") as sink:
+            shutil.copyfileobj(self._log, sink)
+        self._log.seek(0)
+        self._log.truncate()
 
 
 @contextlib.contextmanager
