@@ -102,7 +102,7 @@ def verify_run(target: Path | str, *, analyse: Analyse, rel_tol: float = REL_TOL
     reported in the returned :class:`VerifyReport` instead.
     """
     if not callable(analyse):
-        raise UsageError(f"`analyse` must be callable; got {type(analyse).__name__}")
+        raise TypeError(f"`analyse` must be callable; got {type(analyse).__name__}")
     rel_tol, abs_tol = tolerance("rel_tol", rel_tol), tolerance("abs_tol", abs_tol)
     path = Path(target)
     if path.is_file():
@@ -304,7 +304,7 @@ def _verdict(report: VerifyReport) -> str:
 def format_verify_text(report: VerifyReport, *, max_items: int = 50) -> str:
     """The verification outcome as readable plain text, verdict on the last line."""
     if not isinstance(report, VerifyReport):
-        raise UsageError(f"`report` must be a VerifyReport; got {type(report).__name__}")
+        raise TypeError(f"`report` must be a VerifyReport; got {type(report).__name__}")
     lines = [f"Verifying {report.target} (run {report.run_id})", ""]
     if report.input_mismatches:
         lines.append(f"Inputs that differ from the recorded ones ({len(report.input_mismatches)}):")

@@ -16,7 +16,6 @@ import numpy as np
 from scipy import optimize, stats
 
 from report_kit.validate import closed_unit_interval
-from report_kit.errors import UsageError
 from report_kit.inputs.model import ALTERNATIVES
 
 
@@ -29,9 +28,9 @@ def _check_unit_interval(name: str, value) -> float:
     try:
         v = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a number in (0, 1); got {value!r}") from err
+        raise TypeError(f"`{name}` must be a number in (0, 1); got {value!r}") from err
     if not 0 < v < 1:
-        raise UsageError(f"`{name}` must be in (0, 1); got {value!r}")
+        raise ValueError(f"`{name}` must be in (0, 1); got {value!r}")
     return v
 
 
@@ -41,15 +40,15 @@ def _check_positive(name: str, value, *, allow_none: bool = False) -> float | No
     try:
         v = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a positive number; got {value!r}") from err
+        raise TypeError(f"`{name}` must be a positive number; got {value!r}") from err
     if not (np.isfinite(v) and v > 0):
-        raise UsageError(f"`{name}` must be a positive number; got {value!r}")
+        raise ValueError(f"`{name}` must be a positive number; got {value!r}")
     return v
 
 
 def _check_alternative(alternative: str) -> str:
     if alternative not in ALTERNATIVES:
-        raise UsageError(
+        raise ValueError(
             f"`alternative` must be one of {{'two-sided', 'greater', 'less'}}; got {alternative!r}"
         )
     return alternative
@@ -152,13 +151,13 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
     _check_alternative(alternative)
     m = _check_positive("cluster_size", cluster_size)
     if m < 1:
-        raise UsageError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
+        raise ValueError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
     rho = closed_unit_interval("icc", icc)
     if effect is not None and not np.isfinite(float(effect)):
-        raise UsageError(f"`effect` must be a finite number; got {effect!r}")
+        raise ValueError(f"`effect` must be a finite number; got {effect!r}")
     df = (n1 + n0) / m - 2
     if df <= 0:
-        raise UsageError(f"the design needs more than two clusters (or units); got {(n1 + n0) / m:g}")
+        raise ValueError(f"the design needs more than two clusters (or units); got {(n1 + n0) / m:g}")
     deff = design_effect(m, rho)
     se = sd * np.sqrt(deff * (1 / n1 + 1 / n0))
     size = _solve_mde(se, df, alpha, power, alternative)
@@ -179,7 +178,7 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
 
 def _check_progress(progress):
     if progress is not None and not callable(progress):
-        raise UsageError(f"`progress` must be a callable (done, total) or None; got {progress!r}")
+        raise TypeError(f"`progress` must be a callable (done, total) or None; got {progress!r}")
     return progress
 
 

@@ -12,7 +12,6 @@ from collections.abc import Mapping, Sequence
 from matplotlib.figure import Figure
 
 from report_kit.checks.balance import SMD_THRESHOLDS
-from report_kit.errors import UsageError
 from report_kit.report.figures import INK
 
 __all__ = ["plot_balance"]
@@ -26,7 +25,7 @@ _TONES = {"small": "#2a7f7a", "moderate": "#c98a1b", "large": "#b2432f"}
 def _rows(balance_dict) -> Sequence[Mapping]:
     if isinstance(balance_dict, Mapping):
         if "covariates" not in balance_dict:
-            raise UsageError(
+            raise ValueError(
                 "`balance_dict` must have a 'covariates' list (the results.json balance section)"
             )
         return balance_dict["covariates"]

@@ -227,5 +227,5 @@ def render_report(notebooks: list[Path], run_dir: Path, *, title: str, renderer:
                   pdf: bool = True) -> None:
     """Render with the named renderer; ``renderer`` must be one of :data:`RENDERERS`."""
     if renderer not in RENDERERS:
-        raise UsageError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
+        raise ValueError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
     RENDERERS[renderer](notebooks, run_dir, title=title, pdf=pdf)

@@ -224,9 +224,9 @@ def test_usage_errors(tmp_path):
     (tmp_path / "notes.txt").write_text("x")
     with pytest.raises(UsageError, match="notes.txt: not a run folder or a .zip archive"):
         verify_run(tmp_path / "notes.txt", analyse=analyse)
-    with pytest.raises(UsageError, match="`analyse` must be callable; got str"):
+    with pytest.raises(TypeError, match="`analyse` must be callable; got str"):
         verify_run(run, analyse="analyse_project")
-    with pytest.raises(UsageError, match="`rel_tol` must be a finite number >= 0; got -1"):
+    with pytest.raises(ValueError, match="`rel_tol` must be a finite number >= 0; got -1"):
         verify_run(run, analyse=analyse, rel_tol=-1)
 
 
