@@ -75,7 +75,7 @@ def plot_balance(balance_dict) -> Figure:
         tone = _TONES.get(row.get("flag"), _INK)
         ax.hlines(y, 0, v, color=tone, linewidth=1.6, zorder=2)
         ax.plot([v], [y], marker="D", markersize=6, color=tone, zorder=3, linestyle="none")
-    ax.set_yticks(range(len(rows)), [r.get("name", "") for r in reversed(rows)])
+    ax.set_yticks(range(len(rows)), [r.get("name", "") for r in reversed(rows)], parse_math=False)
     ax.set_ylim(-0.7, max(len(rows), 1) - 0.3)
     ax.set_xlim(-reach, reach)
     ax.set_xlabel("Standardized difference, treated minus control (pooled SD units)")

@@ -12,6 +12,7 @@ Owns the renderers, registered by name:
 from __future__ import annotations
 
 import html
+import json
 import logging
 import shutil
 import subprocess
@@ -202,10 +203,13 @@ def render_quarto(notebooks: list[Path], run_dir: Path, *, title: str, pdf: bool
     """Render the combined notebook with ``quarto render`` (HTML; PDF via weasyprint of it)."""
     import nbformat
 
+    from report_kit.report.view import esc
+
     if not quarto_available():
         raise UsageError("--renderer quarto: `quarto` is not on PATH; install it or use the built-in renderer")
     nb = combine(notebooks)
-    nb.cells.insert(0, nbformat.v4.new_raw_cell(f"---\ntitle: \"{title}\"\nexecute:\n  enabled: false\n"
+    # the title as a JSON string (valid YAML) of entities: quarto reads it as Markdown, shows it as text
+    nb.cells.insert(0, nbformat.v4.new_raw_cell(f"---\ntitle: {json.dumps(esc(title))}\nexecute:\n  enabled: false\n"
                                                 f"echo: false\nembed-resources: true\n---"))
     source = run_dir / "report.ipynb"
     nbformat.write(nb, source)

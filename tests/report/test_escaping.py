@@ -16,6 +16,7 @@ HOSTILE = {
     "link": "[read more](http://127.0.0.1:9/page)",
     "template": "{{ 7 * 7 }} {% raw %}",
     "markdown": "**bold** _under_ `code` # not a heading",
+    "dollars": "cost in $\\frac{$ and x",  # not TeX: matplotlib must draw it as text (no mathtext)
 }
 
 
@@ -85,6 +86,7 @@ def _hostile_project(project: Path) -> None:
     content["summary"] = " ".join(HOSTILE.values())
     content["outcomes"][0]["label"] = f"{HOSTILE['image']} {HOSTILE['link']}"
     content["outcomes"][1]["label"] = HOSTILE["markdown"]
+    content["outcomes"][0]["label"] += " " + HOSTILE["dollars"]  # primary: in two figures
     spec.write_text(yaml.safe_dump(content, sort_keys=False), encoding="utf-8")
 
 
