@@ -178,8 +178,16 @@ def _pick_source(run_dir: Path, project: Path, rel: str, sha: str | None) -> tup
 
 
 def _copy_lock(run_dir: Path, project: Path, rebuilt: Path) -> dict | None:
-    """Give the re-run the plan lock too (not a hashed input; used for the deviations section)."""
-    for source, kind in ((run_dir / INPUTS_DIR / LOCK_NAME, "run copy"), (project / LOCK_NAME, "project folder")):
+    """Give the re-run the plan lock the run had (not a hashed input; it makes the ``plan`` section).
+
+    A run folder with input copies kept the lock when there was one, so only its
+    copy counts: a lock made after the run must not change the re-run. Only a
+    run without copies falls back to the project's lock.
+    """
+    kept_copies = (run_dir / INPUTS_DIR).is_dir()
+    sources = (((run_dir / INPUTS_DIR / LOCK_NAME, "run copy"),) if kept_copies
+               else ((project / LOCK_NAME, "project folder"),))
+    for source, kind in sources:
         if source.is_file():
             rebuilt.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(source, rebuilt / LOCK_NAME)
