@@ -25,7 +25,8 @@ from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inference.engine import ChunkMap
 from report_kit.inputs.model import Study
-from report_kit.inference.multiplicity import SharedNull, study_multiplicity
+from report_kit.estimation.roles import estimate_roles
+from report_kit.inference.multiplicity import SharedNull, multiplicity_table, study_multiplicity
 from report_kit.planning.power import study_power
 from report_kit.inference.randomization import StudyRandomization, study_assignments, study_randomization
 
@@ -87,6 +88,13 @@ def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]
     return arrays
 
 
+def with_roles(estimates: list[dict], compliance: dict | None) -> None:
+    """Give each estimate row its ``role`` (which estimate leads; see :mod:`report_kit.estimation.roles`)."""
+    received = (compliance or {}).get("received")
+    for row, role in zip(estimates, estimate_roles(estimates, take_up_column=received)):
+        row["role"] = role
+
+
 def analyse(study: Study, *, assignment_check: str = "not_checked", chunk_map: ChunkMap | None = None) -> Analysis:
     """Run every analysis step on a validated study and return the results.
 
@@ -119,12 +127,14 @@ def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -
     log.info("multiplicity and power")
     multiplicity = study_multiplicity(rand.tests, spec.outcomes, shared_nulls(study, rand),
                                       lead=spec.analysis.multiplicity)
+    compliance = study_compliance(study)
+    with_roles(estimates, compliance)
     results = {
         "schema": SCHEMA,
         "design": design_summary(study, rand, assignment_check=assignment_check, mechanism=mechanism),
         "estimates": estimates,
         "subgroup_differences": study_subgroup_differences(study),
-        "compliance": study_compliance(study),
+        "compliance": compliance,
         "tests": rand.tests,
         "intervals": rand.intervals,
         "balance": balance,
@@ -132,6 +142,7 @@ def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -
         "attrition": attrition,
         "multiplicity": multiplicity,
         "inference_scope": inference_scope(study),
+        "multiplicity_table": multiplicity_table(multiplicity),
         "power": study_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }

@@ -138,15 +138,19 @@ def assign(path: Path, output: Path | None, force: bool) -> None:
 @click.option("--no-pdf", is_flag=True, help="Skip the PDF (HTML only).")
 def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool) -> None:
     """Analyse, execute the report notebooks and render to runs/<run-id>/."""
-    from report_kit.pipeline import RunOptions, run_project
+    from report_kit.report.notebooks import ReportKernel
 
-    options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
-                         argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
-    def announce(run_dir: str) -> None:
-        click.echo(f"report: {run_dir}/report.html")
-        _progress(_plan_line(Path(run_dir).parent.parent))
+    with ReportKernel() as kernel:  # starts now: its start-up overlaps the imports and the analysis
+        from report_kit.pipeline import RunOptions, run_project
 
-    outcome = run_project(path, options, progress=_progress, on_run_id=announce)
+        options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
+                             argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
+
+        def announce(run_dir: str) -> None:
+            click.echo(f"report: {run_dir}/report.html")
+            _progress(_plan_line(Path(run_dir).parent.parent))
+
+        outcome = run_project(path, options, progress=_progress, on_run_id=announce, kernel=kernel)
     click.echo(f"done: {outcome.report_html}")
     if outcome.report_pdf:
         click.echo(f"      {outcome.report_pdf}")
@@ -156,7 +160,7 @@ def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool)
 @click.argument("run_a", type=click.Path(path_type=Path))
 @click.argument("run_b", type=click.Path(path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print the differences as JSON.")
-@click.option("--max-items", default=20, show_default=True, help="Changed cells and results listed before summarising.")
+@click.option("--max-items", default=20, show_default=True, type=click.IntRange(min=1), help="Changed cells and results listed before summarising.")
 def diff(run_a: Path, run_b: Path, as_json: bool, max_items: int) -> None:
     """What changed between two runs: inputs (row level, by id) and results."""
     from report_kit.audit.compare import compare_runs, format_diff_text
@@ -256,7 +260,7 @@ def power(path: Path, sd: float | None, effect: float | None, target_power: floa
                           n_treated=n_treated, n_control=n_control, n_clusters=n_clusters, outcome=outcome,
                           simulate=simulate, draws=draws, seed=seed, progress=report, attrition=attrition,
                           takeup_treated=takeup_treated, takeup_control=takeup_control)
-    except UsageError as err:  # name the options as typed: `n_treated` -> --n-treated
+    except (TypeError, ValueError, UsageError) as err:  # the options were wrong; name them as typed: `n_treated` -> --n-treated
         import re
 
         names = {"sd", "effect", "power", "icc", "cluster_size", "n_treated", "n_control", "n_clusters",

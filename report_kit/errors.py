@@ -13,6 +13,10 @@ class                      exit code  raised when
 ``VerificationError``      3          ``verify`` found a difference
 =========================  =========  ==========================================
 
+Library misuse from Python (an argument of the wrong type or out of range)
+raises plain ``TypeError`` or ``ValueError``, not ``UsageError``; the command
+line validates its own options and maps the errors they cause to exit code 2.
+
 Degenerate-but-computable situations warn with :class:`ReportKitWarning`
 instead of failing.
 """

@@ -78,9 +78,27 @@ def analyse_project(project: Path | str) -> dict:
 
 def run_analysis(study: Study) -> Analysis:
     """The deterministic analysis step (the assignment check included)."""
+    from report_kit.audit.planlock import plan_deviations
     from report_kit.design.assignment import assignment_check_status
 
-    return analyse(study, assignment_check=assignment_check_status(study))
+    result = analyse(study, assignment_check=assignment_check_status(study))
+    result.results["plan"] = plan_deviations(study.spec.project_dir)
+    return result
+
+
+def write_changes(run_dir: Path, compare_to: Path, run_id: str) -> dict:
+    """``changes.json``: what changed since the compared run (beside results.json).
+
+    It depends on a second run folder, so it is not part of ``results.json``;
+    ``report-kit verify`` re-derives it when the compared run is still next to
+    this one (see docs/results.md).
+    """
+    from report_kit.audit.compare import CHANGES_NAME, compare_runs
+
+    changes = compare_runs(Path(compare_to), run_dir).to_dict()
+    changes["run_b"] = run_id
+    provenance.write_json(run_dir / CHANGES_NAME, changes)
+    return changes
 
 
 def make_run_id(study: Study, now: datetime) -> str:
@@ -92,8 +110,13 @@ def make_run_id(study: Study, now: datetime) -> str:
 
 
 def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
-                progress: Progress = _quiet, on_run_id: Progress = _quiet) -> RunOutcome:
-    """Analyse a project, execute the report notebooks, render, record provenance."""
+                progress: Progress = _quiet, on_run_id: Progress = _quiet, kernel=None) -> RunOutcome:
+    """Analyse a project, execute the report notebook, render, record provenance.
+
+    ``kernel``: an entered :class:`report_kit.report.notebooks.ReportKernel`
+    started before this call (the command line does), or None to start one
+    when the notebook runs.
+    """
     from report_kit.report import notebooks
     from report_kit.report import render
 
@@ -115,9 +138,10 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
         result = run_analysis(study)
         write_analysis(tmp, result)
         copy_inputs(study, tmp)
-        progress("executing report notebooks")
-        executed = notebooks.execute_all(tmp, study.spec.project_dir, compare_to=options.compare_to,
-                                         progress=progress)
+        if options.compare_to is not None:
+            write_changes(tmp, options.compare_to, run_id)
+        progress("executing the report notebook")
+        executed = notebooks.execute_all(tmp, study.spec.project_dir, progress=progress, kernel=kernel)
         progress(f"rendering HTML{' and PDF' if options.pdf else ''} ({options.renderer} renderer)")
         render.render_report(executed, tmp, title=study.spec.title, renderer=options.renderer,
                              pdf=options.pdf)

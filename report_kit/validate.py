@@ -2,7 +2,9 @@
 
 One place for the validators that more than one module needs, so that the
 same mistake gets the same message everywhere, and for the rule that turns a
-number into a JSON-safe value.
+number into a JSON-safe value. Library misuse raises plain ``TypeError`` (a
+value of the wrong type) or ``ValueError`` (a value out of range); the command
+line turns the ones caused by its own options into usage errors (exit 2).
 """
 
 from __future__ import annotations
@@ -16,13 +18,13 @@ from report_kit.errors import ReportKitWarning, UsageError
 
 
 def finite_number(name: str, value) -> float:
-    """``value`` as a float; UsageError unless it converts to a finite number."""
+    """``value`` as a float; TypeError unless it converts to a number, ValueError unless finite."""
     try:
         number = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a finite number; got {value!r}") from err
+        raise TypeError(f"`{name}` must be a finite number; got {value!r}") from err
     if not math.isfinite(number):
-        raise UsageError(f"`{name}` must be a finite number; got {value!r}")
+        raise ValueError(f"`{name}` must be a finite number; got {value!r}")
     return number
 
 
@@ -31,16 +33,18 @@ def closed_unit_interval(name: str, value) -> float:
     try:
         number = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a number in [0, 1]; got {value!r}") from err
+        raise TypeError(f"`{name}` must be a number in [0, 1]; got {value!r}") from err
     if not 0 <= number <= 1:
-        raise UsageError(f"`{name}` must be in [0, 1]; got {value!r}")
+        raise ValueError(f"`{name}` must be in [0, 1]; got {value!r}")
     return number
 
 
 def tolerance(name: str, value) -> float:
     """A comparison tolerance: a real (not bool) finite number >= 0."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value < 0:
-        raise UsageError(f"`{name}` must be a finite number >= 0; got {value!r}")
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise TypeError(f"`{name}` must be a finite number >= 0; got {value!r}")
+    if not math.isfinite(value) or value < 0:
+        raise ValueError(f"`{name}` must be a finite number >= 0; got {value!r}")
     return float(value)
 
 

@@ -4,13 +4,11 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
 import pandas as pd
 
-from report_kit.audit.planlock import plan_deviations
-from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, fmt_count, p_phrase, say, show_table
+from report_kit.report import RunView, callout, cautions, esc, fmt, fmt_count, p_phrase, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -19,32 +17,25 @@ d = res["design"]
 
 # %%
 if spec.summary:
-    say(spec.summary.strip())
-deviations = plan_deviations(view.run_dir / "inputs")
-callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(deviations)) + "</ul>", "caution")
+    say(esc(spec.summary.strip()))
+callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(view.plan)) + "</ul>", "caution")
 
 # %% [markdown]
 # ## Main results
 
 # %%
-alpha = spec.analysis.alpha
-level = round(100 * (1 - alpha))
-seen: set = set()
+level = view.level
 tests = {t["outcome"]: t for t in res.get("tests") or []}
 lead_method = spec.analysis.multiplicity
 adjusted = {m["outcome"]: m["p_adjusted"] for m in res.get("multiplicity") or [] if m.get("lead")}
 lines = []
-for row in res["estimates"]:
-    if estimate_role(row, seen) != "lead" or row["estimand"] not in ("ATE", "ITT") or row["subgroup"]:
-        continue
-    outcome = next((o for o in spec.outcomes if o.column == row["outcome"]), None)
-    if outcome is None:
-        continue
+for _, row in view.lead_estimates().iterrows():
+    outcome = next(o for o in spec.outcomes if o.column == row["outcome"])
     test = tests.get(row["outcome"], {})
     adj = adjusted.get(row["outcome"])
     adj_text = "" if adj is None or lead_method == "none" else f"; adjusted for multiple outcomes, {p_phrase(adj)}"
     lines.append(
-        f"<li><b>{outcome.label}</b> ({outcome.family}): estimated effect <b>{fmt(row['estimate'])}</b> "
+        f"<li><b>{esc(outcome.label)}</b> ({esc(outcome.family)}): estimated effect <b>{fmt(row['estimate'])}</b> "
         f"({level}% CI {fmt(row['ci_low'])} to {fmt(row['ci_high'])}); randomization test "
         f"{p_phrase(test.get('p_value'))}{adj_text}.</li>")
 if lines:

@@ -4,19 +4,17 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
 import pandas as pd
 
-from report_kit.report.figures import randomization_plot
-from report_kit.report.view import RunView, fmt_count, fmt_p, p_phrase, say, show_figure, show_table
+from report_kit.report import RunView, fmt_count, fmt_p, p_phrase, randomization_plot, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
 d = res["design"]
 tests = pd.DataFrame(res.get("tests") or [])
-level = round(100 * (1 - view.spec.analysis.alpha))
+level = view.level
 
 # %%
 if d.get("inference_method") == "exact":

@@ -32,10 +32,12 @@ from report_kit.audit.provenance import (
 __all__ = [
     "RECORD_KEYS", "ResultChange", "ResultRecord", "ResultsDiff", "TableDiff", "InputChange",
     "RunDiff", "compare_runs", "diff_results", "diff_tables", "conclusion_changes",
-    "format_diff_text",
+    "format_diff_text", "CHANGES_NAME",
 ]
 
 DIFF_SCHEMA = "report-kit/diff/1"
+#: A run made with ``--compare-to`` keeps its diff from the compared run here, beside results.json.
+CHANGES_NAME = "changes.json"
 #: Results that differ by less than this (relative, or absolute near zero) are not
 #: reported as moved: floating-point noise from a different summation order. Same
 #: tolerance as `report-kit verify`.
@@ -254,7 +256,7 @@ def diff_results(results_a: dict, results_b: dict, *, rel_tol: float = 0.0,
     abs_tol = tolerance("abs_tol", abs_tol)
     for name, value in (("results_a", results_a), ("results_b", results_b)):
         if not isinstance(value, dict):
-            raise UsageError(f"`{name}` must be a dict; got {type(value).__name__}")
+            raise TypeError(f"`{name}` must be a dict; got {type(value).__name__}")
     rec_a, rec_b = _records(to_json_value(results_a)), _records(to_json_value(results_b))
     changed = []
     for ident, fields_a in rec_a.items():
@@ -365,11 +367,11 @@ def conclusion_changes(results_a: dict, results_b: dict, alpha: float) -> list[d
     intervals, ibid., section 3.5).
     """
     if not _is_number(alpha) or not 0 < alpha < 1:
-        raise UsageError(f"`alpha` must be a number in (0, 1); got {alpha!r}")
+        raise ValueError(f"`alpha` must be a number in (0, 1); got {alpha!r}")
     diff_inputs = [to_json_value(results_a), to_json_value(results_b)]
     for name, value in zip(("results_a", "results_b"), diff_inputs):
         if not isinstance(value, dict):
-            raise UsageError(f"`{name}` must be a dict; got {type(value).__name__}")
+            raise TypeError(f"`{name}` must be a dict; got {type(value).__name__}")
     rec_a, rec_b = (_records(r) for r in diff_inputs)
     out = []
     for (section, key), fa in rec_a.items():
@@ -484,7 +486,7 @@ def diff_tables(path_a: Path | str, path_b: Path | str, id_column: str, *,
     numerically when they look like numbers, else as text.
     """
     if not isinstance(limit, int) or isinstance(limit, bool) or limit < 0:
-        raise UsageError(f"`limit` must be an integer >= 0; got {limit!r}")
+        raise ValueError(f"`limit` must be an integer >= 0; got {limit!r}")
     path_a, path_b = Path(path_a), Path(path_b)
     frame_a, frame_b = _read_table(path_a), _read_table(path_b)
     ia, ib = _indexed(frame_a, id_column, path_a), _indexed(frame_b, id_column, path_b)
@@ -703,7 +705,7 @@ def compare_runs(run_a: Path | str, run_b: Path | str, *, alpha: float | None = 
     input diff reports those files in detail).
     """
     if alpha is not None and (not _is_number(alpha) or not 0 < alpha < 1):
-        raise UsageError(f"`alpha` must be a number in (0, 1); got {alpha!r}")
+        raise ValueError(f"`alpha` must be a number in (0, 1); got {alpha!r}")
     a, b = _load_run(run_a, "RUN_A"), _load_run(run_b, "RUN_B")
     if alpha is None:
         alpha = _alpha_of(b) or _alpha_of(a) or DEFAULT_ALPHA
@@ -798,9 +800,9 @@ def format_diff_text(diff: RunDiff, *, max_items: int = 20) -> str:
     Long lists are cut at ``max_items`` entries with a count of the rest.
     """
     if not isinstance(diff, RunDiff):
-        raise UsageError(f"`diff` must be a RunDiff; got {type(diff).__name__}")
+        raise TypeError(f"`diff` must be a RunDiff; got {type(diff).__name__}")
     if not isinstance(max_items, int) or isinstance(max_items, bool) or max_items < 1:
-        raise UsageError(f"`max_items` must be an integer >= 1; got {max_items!r}")
+        raise ValueError(f"`max_items` must be an integer >= 1; got {max_items!r}")
     lines = [f"Run A: {diff.run_a}", f"Run B: {diff.run_b}", ""]
     if diff.identical:
         lines.append("No differences: same inputs, same results.")

@@ -24,6 +24,7 @@ __all__ = [
     "SharedNull",
     "benjamini_hochberg",
     "holm",
+    "multiplicity_table",
     "study_multiplicity",
     "westfall_young",
 ]
@@ -379,3 +380,36 @@ def study_multiplicity(tests: Sequence[Mapping], outcomes, null_by_family: Mappi
                     "lead": method == lead,
                 })
     return entries
+
+
+def multiplicity_table(entries: Sequence[Mapping]) -> list[dict]:
+    """The ``multiplicity`` rows pivoted to one row per outcome (the report's table).
+
+    Parameters
+    ----------
+    entries : sequence of mappings
+        The ``multiplicity`` section (:func:`study_multiplicity`).
+
+    Returns
+    -------
+    list of dict
+        ``{outcome, family, p_value, adjusted, lead_method}`` in the order the
+        outcomes first appear; ``adjusted`` maps each method of
+        :data:`ADJUSTMENTS` that was computed to its adjusted p-value, and
+        ``lead_method`` is the pre-specified method (None when none leads).
+    """
+    if isinstance(entries, (str, bytes)) or not isinstance(entries, Sequence):
+        raise TypeError(f"`entries` must be a sequence of mappings; got {type(entries).__name__}")
+    rows: dict[tuple, dict] = {}
+    for i, entry in enumerate(entries):
+        if not isinstance(entry, Mapping):
+            raise TypeError(f"`entries[{i}]` must be a mapping; got {type(entry).__name__}")
+        key = (entry["outcome"], entry["family"])
+        row = rows.setdefault(key, {"outcome": entry["outcome"], "family": entry["family"],
+                                    "p_value": entry.get("p_value"), "adjusted": {}, "lead_method": None})
+        row["adjusted"][entry["method"]] = entry.get("p_adjusted")
+        if entry.get("lead"):
+            row["lead_method"] = entry["method"]
+    for row in rows.values():
+        row["adjusted"] = {m: row["adjusted"][m] for m in ADJUSTMENTS if m in row["adjusted"]}
+    return list(rows.values())

@@ -16,7 +16,6 @@ import numpy as np
 from scipy import optimize, stats
 
 from report_kit.validate import closed_unit_interval
-from report_kit.errors import UsageError
 from report_kit.inputs.model import ALTERNATIVES
 
 
@@ -29,9 +28,9 @@ def _check_unit_interval(name: str, value) -> float:
     try:
         v = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a number in (0, 1); got {value!r}") from err
+        raise TypeError(f"`{name}` must be a number in (0, 1); got {value!r}") from err
     if not 0 < v < 1:
-        raise UsageError(f"`{name}` must be in (0, 1); got {value!r}")
+        raise ValueError(f"`{name}` must be in (0, 1); got {value!r}")
     return v
 
 
@@ -41,15 +40,15 @@ def _check_positive(name: str, value, *, allow_none: bool = False) -> float | No
     try:
         v = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a positive number; got {value!r}") from err
+        raise TypeError(f"`{name}` must be a positive number; got {value!r}") from err
     if not (np.isfinite(v) and v > 0):
-        raise UsageError(f"`{name}` must be a positive number; got {value!r}")
+        raise ValueError(f"`{name}` must be a positive number; got {value!r}")
     return v
 
 
 def _check_alternative(alternative: str) -> str:
     if alternative not in ALTERNATIVES:
-        raise UsageError(
+        raise ValueError(
             f"`alternative` must be one of {{'two-sided', 'greater', 'less'}}; got {alternative!r}"
         )
     return alternative
@@ -170,19 +169,19 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
     _check_alternative(alternative)
     m = _check_positive("cluster_size", cluster_size)
     if m < 1:
-        raise UsageError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
+        raise ValueError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
     rho = closed_unit_interval("icc", icc)
     if effect is not None and not np.isfinite(float(effect)):
-        raise UsageError(f"`effect` must be a finite number; got {effect!r}")
+        raise ValueError(f"`effect` must be a finite number; got {effect!r}")
     attrition = closed_unit_interval("attrition", attrition)
     if attrition >= 1:
-        raise UsageError(f"`attrition` must be below 1; got {attrition!r}")
+        raise ValueError(f"`attrition` must be below 1; got {attrition!r}")
     takeup = _check_takeup(takeup_treated, takeup_control)
     kept = 1.0 - attrition
     n1a, n0a = n1 * kept, n0 * kept
     df = (n1 + n0) / m - 2 if m > 1 else n1a + n0a - 2
     if df <= 0:
-        raise UsageError(f"the design needs more than two clusters (or analysed units); got {df + 2:g}")
+        raise ValueError(f"the design needs more than two clusters (or analysed units); got {df + 2:g}")
     deff = design_effect(max(1.0, m * kept), rho) if m > 1 else design_effect(m, rho)
     se = sd * np.sqrt(deff * (1 / n1a + 1 / n0a))
     size = _solve_mde(se, df, alpha, power, alternative)
@@ -204,11 +203,11 @@ def _check_takeup(treated, control) -> tuple[float, float] | None:
     if treated is None and control is None:
         return None
     if treated is None or control is None:
-        raise UsageError("`takeup_treated` and `takeup_control` go together: give both expected take-up shares")
+        raise ValueError("`takeup_treated` and `takeup_control` go together: give both expected take-up shares")
     t1 = closed_unit_interval("takeup_treated", treated)
     t0 = closed_unit_interval("takeup_control", control)
     if not t1 > t0:
-        raise UsageError(f"`takeup_treated` must exceed `takeup_control` for a complier effect; got {t1!r} and {t0!r}")
+        raise ValueError(f"`takeup_treated` must exceed `takeup_control` for a complier effect; got {t1!r} and {t0!r}")
     return t1, t0
 
 
@@ -219,7 +218,7 @@ def _check_takeup(treated, control) -> tuple[float, float] | None:
 
 def _check_progress(progress):
     if progress is not None and not callable(progress):
-        raise UsageError(f"`progress` must be a callable (done, total) or None; got {progress!r}")
+        raise TypeError(f"`progress` must be a callable (done, total) or None; got {progress!r}")
     return progress
 
 

@@ -31,7 +31,7 @@ from report_kit.planning.core import (
 )
 from report_kit.inputs.data import load_units_for_assignment, resolve_inside
 from report_kit.design.mechanism import draw_assignment, mechanism_from_arrays, number_treated
-from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.inputs.model import OutcomeSpec, Spec
 from report_kit.inference.randomization import randomization_test
 from report_kit.inputs.spec import load_spec
@@ -252,7 +252,7 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
     target = _target_outcome(spec, outcome)
     units = _planned_units(spec, opts)
     if opts.simulate and units.ids is None:
-        raise UsageError(f"cannot simulate: {units.why_not}")
+        raise ValueError(f"cannot simulate: {units.why_not}")
     analytic = planned_power(n_treated=units.n_treated, n_control=units.n_control, sd=opts.sd,
                              effect=opts.effect, power=opts.power, icc=opts.icc,
                              cluster_size=units.cluster_size, alpha=spec.analysis.alpha,
@@ -279,7 +279,7 @@ def _check_count(name: str, value) -> int | None:
     if value is None:
         return None
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise UsageError(f"`{name}` must be a whole number >= 1; got {value!r}")
+        raise ValueError(f"`{name}` must be a whole number >= 1; got {value!r}")
     return int(value)
 
 
@@ -288,35 +288,35 @@ def _check_plan(spec: Spec, *, sd, effect, power, icc, cluster_size, n_treated, 
     kind = spec.design.mechanism
     clustered = kind in _CLUSTERED
     if sd is None:
-        raise UsageError("`sd` is required: the standard deviation of the outcome in its own units "
+        raise ValueError("`sd` is required: the standard deviation of the outcome in its own units "
                          "(e.g. from a pilot or an earlier study)")
     sd = _check_positive("sd", sd)
     if effect is not None:
         effect = finite_number("effect", effect)
     power = _check_unit_interval("power", power)
     if clustered and icc is None:
-        raise UsageError(f"`icc` is required for a {kind} design: the intraclass correlation of the outcome "
+        raise ValueError(f"`icc` is required for a {kind} design: the intraclass correlation of the outcome "
                          "within clusters, a number in [0, 1]")
     if not clustered and icc not in (None, 0):
-        raise UsageError(f"`icc` applies to cluster designs only; design.mechanism is {kind!r}")
+        raise ValueError(f"`icc` applies to cluster designs only; design.mechanism is {kind!r}")
     icc = 0.0 if icc is None else closed_unit_interval("icc", icc)
     for name, value in (("cluster_size", cluster_size), ("n_clusters", n_clusters)):
         if value is not None and not clustered:
-            raise UsageError(f"`{name}` applies to cluster designs only; design.mechanism is {kind!r}")
+            raise ValueError(f"`{name}` applies to cluster designs only; design.mechanism is {kind!r}")
     cluster_size = _check_positive("cluster_size", cluster_size, allow_none=True)
     if cluster_size is not None and cluster_size < 1:
-        raise UsageError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
+        raise ValueError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
     n_treated, n_control = _check_count("n_treated", n_treated), _check_count("n_control", n_control)
     n_clusters = _check_count("n_clusters", n_clusters)
     if (n_treated is None) != (n_control is None):
-        raise UsageError("`n_treated` and `n_control` go together: give both planned arm sizes")
+        raise ValueError("`n_treated` and `n_control` go together: give both planned arm sizes")
     if n_clusters is not None and n_treated is not None:
-        raise UsageError("give either `n_clusters` or `n_treated` and `n_control`, not both")
+        raise ValueError("give either `n_clusters` or `n_treated` and `n_control`, not both")
     if isinstance(simulate, bool) or not isinstance(simulate, (int, np.integer)) or simulate < 0:
-        raise UsageError(f"`simulate` must be a whole number >= 0; got {simulate!r}")
+        raise ValueError(f"`simulate` must be a whole number >= 0; got {simulate!r}")
     draws = _check_count("draws", draws)
     if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0):
-        raise UsageError(f"`seed` must be a non-negative integer; got {seed!r}")
+        raise ValueError(f"`seed` must be a non-negative integer; got {seed!r}")
     return _PlanOptions(sd=sd, effect=effect, power=power, icc=icc, cluster_size=cluster_size,
                         n_treated=n_treated, n_control=n_control, n_clusters=n_clusters,
                         simulate=int(simulate), draws=draws, seed=None if seed is None else int(seed))
@@ -330,7 +330,7 @@ def _target_outcome(spec: Spec, outcome: str | None) -> OutcomeSpec:
     if outcome not in names:
         close = difflib.get_close_matches(str(outcome), names, n=1)
         hint = f" — did you mean {close[0]!r}?" if close else ""
-        raise UsageError(f"`outcome` must be one of the spec's outcomes {names}; got {outcome!r}{hint}")
+        raise ValueError(f"`outcome` must be one of the spec's outcomes {names}; got {outcome!r}{hint}")
     return spec.outcomes[names.index(outcome)]
 
 
@@ -342,13 +342,13 @@ def _planned_units(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
     table = resolve_inside(spec.project_dir, spec.data.units, "data.units")
     if table.is_file():
         if opts.sizes_given:
-            raise UsageError(f"{table}: the units table exists and gives the sizes; planned sizes "
+            raise ValueError(f"{table}: the units table exists and gives the sizes; planned sizes "
                              "(`n_treated`, `n_control`, `n_clusters`, `cluster_size`) are for a design without data")
         return _units_from_table(spec)
     if not opts.sizes_given:
         needs = ("`cluster_size` with `n_clusters` (or `n_treated` and `n_control`)"
                  if spec.design.mechanism in _CLUSTERED else "`n_treated` and `n_control`")
-        raise UsageError(f"{table}: no units table yet; give the planned sizes: {needs}")
+        raise ValueError(f"{table}: no units table yet; give the planned sizes: {needs}")
     return _units_from_sizes(spec, opts)
 
 
@@ -430,7 +430,7 @@ def _units_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
     n1, n0 = opts.n_treated, opts.n_control
     n = n1 + n0
     if kind == "matched_pairs" and n1 != n0:
-        raise UsageError(f"matched pairs treat one unit of each pair: `n_treated` must equal `n_control`; "
+        raise ValueError(f"matched pairs treat one unit of each pair: `n_treated` must equal `n_control`; "
                          f"got {n1} and {n0}")
     _agree_with_spec(spec, n1, n, "units")
     if kind == "blocked":
@@ -449,7 +449,7 @@ def _units_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
 def _clusters_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
     kind, m = spec.design.mechanism, opts.cluster_size
     if m is None:
-        raise UsageError(f"`cluster_size` is required for a {kind} design without data: "
+        raise ValueError(f"`cluster_size` is required for a {kind} design without data: "
                          "the planned (average) number of units per cluster")
     if opts.n_clusters is not None:
         total = opts.n_clusters
@@ -486,7 +486,7 @@ def _agree_with_spec(spec: Spec, treated, total, what: str) -> None:
         return
     expected = number_treated(p, int(total))
     if expected != treated:
-        raise UsageError(f"design.probability {p:g} treats {expected} of {int(total)} {what}; "
+        raise ValueError(f"design.probability {p:g} treats {expected} of {int(total)} {what}; "
                          f"the planned sizes treat {int(treated)}")
 
 

@@ -66,7 +66,7 @@ def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, leve
         _tidy(ax)
         ax.tick_params(axis="y", length=0)
         ax.tick_params(axis="x", labelsize=8)
-        ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold")
+        ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold", parse_math=False)  # user text
     axes[-1, 0].set_xlabel(f"Effect with {level}% confidence interval, in each outcome's own units", fontsize=8)
     handles = [Line2D([], [], color=INK, marker="s", linewidth=2.2, label="unadjusted"),
                Line2D([], [], color=ACCENT, marker="s", linewidth=2.2, label="covariate-adjusted")]
@@ -91,7 +91,7 @@ def randomization_plot(null: np.ndarray, observed: float, *, label: str, statist
     ax.set_yticks([])
     ax.spines["left"].set_visible(False)
     ax.grid(False)
-    ax.set_title(label, fontsize=9, loc="left")
+    ax.set_title(label, fontsize=9, loc="left", parse_math=False)  # user text: a "$" is not math
     ax.set_xlabel(f"{statistic.replace('_', ' ')} under the null of no effect — {count_text}", fontsize=8)
     fig.tight_layout()
     return fig

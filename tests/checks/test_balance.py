@@ -367,5 +367,5 @@ def test_plot_balance_draws_one_row_per_covariate():
     assert any(t.get_text() == "n/a" for t in ax.texts)
     lo, hi = ax.get_xlim()
     assert lo < -0.31 and hi > 0.31
-    with pytest.raises(UsageError, match="'covariates'"):
+    with pytest.raises(ValueError, match="'covariates'"):
         plot_balance({"omnibus": {}})

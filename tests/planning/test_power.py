@@ -16,7 +16,6 @@ from statsmodels.stats.power import NormalIndPower, TTestIndPower
 
 from report_kit.planning import power as pw
 from report_kit.cli import main
-from report_kit.errors import UsageError
 from report_kit.inputs.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
 
 from tests.conftest import copy_project
@@ -47,11 +46,11 @@ def test_mde_multiplier_is_about_2_8():
 
 
 def test_mde_validation_messages():
-    with pytest.raises(UsageError, match=r"`se` must be a positive number; got -1"):
+    with pytest.raises(ValueError, match=r"`se` must be a positive number; got -1"):
         pw.mde(-1)
-    with pytest.raises(UsageError, match=r"`alpha` must be in \(0, 1\); got 1.5"):
+    with pytest.raises(ValueError, match=r"`alpha` must be in \(0, 1\); got 1.5"):
         pw.mde(1, alpha=1.5)
-    with pytest.raises(UsageError, match=r"`alternative` must be one of \{'two-sided', 'greater', 'less'\}; got 'both'"):
+    with pytest.raises(ValueError, match=r"`alternative` must be one of \{'two-sided', 'greater', 'less'\}; got 'both'"):
         pw.mde(1, alternative="both")
 
 
@@ -104,11 +103,11 @@ def test_cluster_design_uses_design_effect():
 
 
 def test_planned_power_validation_messages():
-    with pytest.raises(UsageError, match=r"`icc` must be in \[0, 1\]; got 1.5"):
+    with pytest.raises(ValueError, match=r"`icc` must be in \[0, 1\]; got 1.5"):
         pw.planned_power(n_treated=10, n_control=10, icc=1.5)
-    with pytest.raises(UsageError, match="more than two clusters"):
+    with pytest.raises(ValueError, match="more than two clusters"):
         pw.planned_power(n_treated=10, n_control=10, cluster_size=10)
-    with pytest.raises(UsageError, match=r"`n_treated` must be a positive number"):
+    with pytest.raises(ValueError, match=r"`n_treated` must be a positive number"):
         pw.planned_power(n_treated=0, n_control=10)
     json.dumps(pw.planned_power(n_treated=10, n_control=12, effect=1.0), allow_nan=False)
 
@@ -155,11 +154,11 @@ def test_simulated_power_is_reproducible_and_validates():
     a = pw.simulated_power(*args, randomization_test(99, 1), n_sims=40, seed=5)
     b = pw.simulated_power(*args, randomization_test(99, 1), n_sims=40, seed=5)
     assert a == b
-    with pytest.raises(UsageError, match=r"`test` must return a p-value in \[0, 1\]; got 2.0"):
+    with pytest.raises(ValueError, match=r"`test` must return a p-value in \[0, 1\]; got 2.0"):
         pw.simulated_power(*args, lambda y, z: 2.0, n_sims=3, seed=5)
-    with pytest.raises(UsageError, match=r"`n_sims` must be a positive integer; got 0"):
+    with pytest.raises(ValueError, match=r"`n_sims` must be a positive integer; got 0"):
         pw.simulated_power(*args, lambda y, z: 0.5, n_sims=0, seed=5)
-    with pytest.raises(UsageError, match=r"`draw_assignment` returned shape \(3,\)"):
+    with pytest.raises(ValueError, match=r"`draw_assignment` returned shape \(3,\)"):
         pw.simulated_power(y0, 0.5, lambda rng: np.zeros(3), lambda y, z: 0.5, n_sims=3, seed=5)
     # a test that always rejects gives power 1 with zero Monte Carlo error
     one = pw.simulated_power(*args, lambda y, z: 0.0, n_sims=10, seed=5)
@@ -330,9 +329,9 @@ def test_planned_mde_of_cace_is_itt_mde_over_takeup_difference():
     ref = TTestIndPower().solve_power(effect_size=None, nobs1=100, ratio=1.0, alpha=0.05, power=0.8)
     assert res["mde"] == pytest.approx(ref, rel=1e-5)           # solve_power's tolerance
     assert res["mde_cace"] == pytest.approx(res["mde"] / 0.6, rel=1e-12)
-    with pytest.raises(UsageError, match="go together"):
+    with pytest.raises(ValueError, match="go together"):
         pw.planned_power(n_treated=100, n_control=100, takeup_treated=0.7)
-    with pytest.raises(UsageError, match="must exceed"):
+    with pytest.raises(ValueError, match="must exceed"):
         pw.planned_power(n_treated=100, n_control=100, takeup_treated=0.2, takeup_control=0.3)
 
 
@@ -371,23 +370,23 @@ def test_cli_power_missing_or_conflicting_options(tmp_path):
 
 def test_plan_power_library_messages(tmp_path):
     quiet = copy_project("quiet-hours", tmp_path)
-    with pytest.raises(UsageError, match=r"`sd` is required"):
+    with pytest.raises(ValueError, match=r"`sd` is required"):
         pw.plan_power(quiet)
-    with pytest.raises(UsageError, match=r"`sd` must be a positive number; got 0"):
+    with pytest.raises(ValueError, match=r"`sd` must be a positive number; got 0"):
         pw.plan_power(quiet, sd=0)
-    with pytest.raises(UsageError, match=r"`simulate` must be a whole number >= 0; got -1"):
+    with pytest.raises(ValueError, match=r"`simulate` must be a whole number >= 0; got -1"):
         pw.plan_power(quiet, sd=1, simulate=-1)
-    with pytest.raises(UsageError, match=r"`n_clusters` applies to cluster designs only"):
+    with pytest.raises(ValueError, match=r"`n_clusters` applies to cluster designs only"):
         pw.plan_power(quiet, sd=1, n_clusters=10)
     clubs = copy_project("tutoring-clubs", tmp_path)
-    with pytest.raises(UsageError, match=r"cannot simulate: a blocked cluster design needs its blocks"):
+    with pytest.raises(ValueError, match=r"cannot simulate: a blocked cluster design needs its blocks"):
         pw.plan_power(without_data(clubs), sd=1, icc=0.1, n_clusters=20, cluster_size=10, simulate=5)
     def complete_at_one_half(design):
         design.update(mechanism="complete", probability=0.5)
         del design["block"]
 
     share = edit_design(without_data(copy_project("arrival-signs", tmp_path / "b")), complete_at_one_half)
-    with pytest.raises(UsageError, match=r"design.probability 0.5 treats 5 of 10 units; the planned sizes treat 4"):
+    with pytest.raises(ValueError, match=r"design.probability 0.5 treats 5 of 10 units; the planned sizes treat 4"):
         pw.plan_power(share, sd=1, n_treated=4, n_control=6)
 
 
