@@ -27,6 +27,7 @@ import zipfile
 from pathlib import Path, PurePosixPath
 
 from report_kit.errors import UsageError, VerificationError
+from report_kit.files import share_like_umask
 from report_kit.audit.planlock import LOCK_NAME
 from report_kit.audit.provenance import (
     INPUTS_DIR, MANIFEST_NAME, RESULTS_NAME, SPEC_NAME, check_relative_path, load_json_file,
@@ -122,6 +123,7 @@ def archive_run(run_dir: Path | str, out: Path | str | None = None) -> Path:
     os.close(fd)
     try:
         _write_zip(Path(tmp), project, members)
+        share_like_umask(tmp)
         os.replace(tmp, out)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

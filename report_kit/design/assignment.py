@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DesignError, ReportKitError, SpecError, UsageError
+from report_kit.files import share_like_umask
 from report_kit.inputs.model import Spec, Study
 
 ASSIGNMENT_FILE = "data/assignment.csv"
@@ -177,6 +178,7 @@ def _write_atomically(table: pd.DataFrame, target: Path, shown: Path) -> None:
         fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
         with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
             table.to_csv(fh, index=False, lineterminator="\n")
+        share_like_umask(tmp)
         os.replace(tmp, target)
     except OSError as err:
         if tmp is not None:
