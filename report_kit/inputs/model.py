@@ -24,6 +24,7 @@ class DataSpec:
     units: str
     id: str
     merge: tuple[str, ...] = ()
+    missing_values: tuple[str, ...] = ()   # texts read as missing besides a blank (never in the id)
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -382,7 +382,8 @@ def _build_spec(path: Path, doc: dict) -> Spec:
         spec_version=doc["spec_version"],
         title=doc["title"],
         summary=doc.get("summary", ""),
-        data=DataSpec(units=data["units"], id=data["id"], merge=tuple(data.get("merge", ()))),
+        data=DataSpec(units=data["units"], id=data["id"], merge=tuple(data.get("merge", ())),
+                      missing_values=tuple(data.get("missing_values", ()))),
         design=DesignSpec(
             mechanism=design["mechanism"], treatment=design["treatment"],
             block=design.get("block"), cluster=design.get("cluster"),
