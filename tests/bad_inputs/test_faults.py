@@ -19,13 +19,14 @@ from pathlib import Path
 
 import pytest
 
+from report_kit.files import file_mode, folder_mode
+
 ROOT = Path(__file__).resolve().parents[2]
 
 # (signal, progress text at which it is sent, exit status expected)
 FAULTS = [
-    (signal.SIGTERM, "analysing (estimates", 128 + signal.SIGTERM),
-    (signal.SIGKILL, "notebook 2/", -signal.SIGKILL),
-    (signal.SIGHUP, "notebook 4/", 128 + signal.SIGHUP),
+    (signal.SIGHUP, "analysing (estimates", 128 + signal.SIGHUP),
+    (signal.SIGTERM, "notebook 2/", 128 + signal.SIGTERM),
     (signal.SIGKILL, "rendering HTML", -signal.SIGKILL),
 ]
 
@@ -90,3 +91,6 @@ def test_killed_runs_leave_earlier_runs_intact_and_the_next_run_clean(example_ru
     assert len(names) == 2 and earlier.name in names, names
     assert _snapshot(project / "runs" / earlier.name) == before
     assert _snapshot(project / "data") == data_before
+    new = project / "runs" / next(n for n in names if n != earlier.name)
+    for path in (new, new / "results.json", new / "manifest.json", new / "report.html"):  # shared per umask
+        assert path.stat().st_mode & 0o777 == (folder_mode() if path.is_dir() else file_mode()), path
