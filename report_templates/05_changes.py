@@ -78,8 +78,8 @@ if compare_to:
 
     def readable(change) -> str:
         key = dict(change.key)
-        if "outcome" not in key:
-            return change.section
+        if "outcome" not in key:  # e.g. balance.covariates rows: name the covariate
+            return f"{change.section}: {key['name']}" if key.get("name") is not None else change.section
         parts = [view.label(key["outcome"])]
         parts += [str(key[k]) for k in ("estimand", "subgroup", "statistic", "method", "family") if key.get(k)]
         return f"{change.section}: " + " · ".join(parts)
