@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DataError
+from report_kit.inputs.handling import handled_missing_columns
 from report_kit.inputs.model import Spec
 from report_kit.inputs.readers import _SHOW, Table
 
@@ -173,14 +174,16 @@ def _check_columns(problems: _Problems, spec: Spec, origin: dict[str, Table]) ->
     for col, key in numeric.items():
         _check_numeric(problems, origin[col], col, id_col, key)
     for col, key in _every_unit_columns(spec).items():
-        if key not in ("design.treatment", "compliance.received"):
+        if key not in ("design.treatment", "compliance.received") and col not in handled_missing_columns(spec):
             _check_no_missing(problems, origin[col], col, key, id_col)
 
 
 def _check_no_missing(problems: _Problems, table: Table, col: str, key: str, id_col: str) -> None:
     missing = np.flatnonzero(table.frame[col].isna().to_numpy())
     if missing.size:
-        problems.add(f"{table.path}: column '{col}' ({key}): missing value at {_rows(table, missing, id_col)}")
+        hint = ("; to keep such units as their own level or leave them out of this subgroup analysis, declare "
+                "analysis.subgroup_missing: own_level or drop" if key.startswith("subgroups[") else "")
+        problems.add(f"{table.path}: column '{col}' ({key}): missing value at {_rows(table, missing, id_col)}{hint}")
 
 
 def _check_merge_gaps(problems: _Problems, spec: Spec, frame: pd.DataFrame, units: Table, origin: dict[str, Table],
@@ -188,7 +191,7 @@ def _check_merge_gaps(problems: _Problems, spec: Spec, frame: pd.DataFrame, unit
     """A column every unit needs that comes from a merged table must have a row for every unit."""
     for col, key in _every_unit_columns(spec).items():
         table = origin[col]
-        if table is units:
+        if table is units or col in handled_missing_columns(spec):
             continue
         gaps = frame[spec.data.id][frame[col].isna()].tolist()
         if gaps:
@@ -252,13 +255,18 @@ def _check_adjustment_covariates(problems: _Problems, spec: Spec, frame: pd.Data
             problems.add(f"{origin[col].path}: column '{col}' (analysis.covariates[{i}]) is missing for "
                          f"{gaps.size} unit(s) with an observed outcome: {locate.rows(ids)}; the "
                          "covariate-adjusted estimate (analysis.adjust: true) needs complete baseline "
-                         "covariates — fill them in, remove the covariate, or set analysis.adjust: false")
+                         "covariates — fill them in, remove the covariate, set analysis.adjust: false, or "
+                         "declare analysis.missing_covariates: drop_units")
 
 
 def _check_design(problems: _Problems, spec: Spec, frame: pd.DataFrame, units: Table, locate: _Locator) -> None:
     z_col, id_col = spec.design.treatment, spec.data.id
     z = frame[z_col]
     where = f"{units.path}"
+    if z.empty:
+        problems.add(f"{where}: no unit is left once the data handling declared in design.yaml is applied "
+                     "(analysis.missing_covariates, design.single_arm_blocks); check those options")
+        return
     if z.nunique() < 2:
         problems.add(f"{where}: column '{z_col}': every unit has the value {z.iloc[0]}; "
                       "both arms (0 and 1) must be present")
@@ -298,7 +306,9 @@ def _check_design(problems: _Problems, spec: Spec, frame: pd.DataFrame, units: T
             more = f" and {len(one_arm) - _SHOW} more" if len(one_arm) > _SHOW else ""
             problems.add(f"{where}: every {label} needs treated and control units; "
                          f"{label}(s) with one arm only in '{blk}': {described}{more}; "
-                         f"{label} {_plain(one_arm.index[0])} is at {locate.rows(first[id_col].tolist())}")
+                         f"{label} {_plain(one_arm.index[0])} is at {locate.rows(first[id_col].tolist())}"
+                         + ("" if label == "pair" else "; to leave such blocks out or pool them, declare "
+                            "design.single_arm_blocks: drop or pool in design.yaml"))
         if spec.design.cluster:
             nested = frame.groupby(spec.design.cluster, sort=True)[blk].nunique()
             crossing = nested[nested > 1].index.tolist()

@@ -30,6 +30,7 @@ from report_kit.inputs.checks import (
     _check_merge_gaps, _check_no_missing, _check_ranges, _close_hint, _is_missing, _plain,
     _require_id_column, _rows,
 )
+from report_kit.inputs.handling import apply_handling, handled_missing_columns
 from report_kit.inputs.model import InputFile, Spec, Study
 from report_kit.inputs.readers import SUFFIXES, Table, read_table, resolve_inside
 
@@ -74,12 +75,14 @@ def load_study(spec: Spec) -> Study:
     frame = _normalise_labels(frame, [c for c in (spec.design.block, spec.design.cluster, *spec.subgroups) if c])
     frame = frame.sort_values(id_col, kind="mergesort").reset_index(drop=True)
     frame = _coerce(spec, frame)
+    frame, handling = apply_handling(spec, frame)
+    frame = _normalise_labels(frame, list(handled_missing_columns(spec)))
     _check_ranges(problems, spec, frame, origin, locate)
     _check_adjustment_covariates(problems, spec, frame, origin, locate)
     _check_design(problems, spec, frame, units, locate)
     problems.raise_if_any()
     inputs = tuple(InputFile(path=t.relpath, sha256=t.sha256, rows=len(t.frame)) for t in tables)
-    return Study(spec=spec, frame=frame, inputs=inputs)
+    return Study(spec=spec, frame=frame, inputs=inputs, handling=handling)
 
 
 def load_units_for_assignment(spec: Spec) -> pd.DataFrame:

@@ -35,6 +35,7 @@ class DesignSpec:
     cluster: str | None = None
     probability: float | None = None
     seed: int | None = None
+    single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -46,6 +47,8 @@ class AnalysisSpec:
     max_exact: int = 200000
     seed: int = 5150
     multiplicity: str = "holm"
+    missing_covariates: str = "error"    # error | drop_units (a unit lacking a baseline covariate)
+    subgroup_missing: str = "error"      # error | own_level | drop (a unit lacking its subgroup value)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -103,6 +106,7 @@ class Study:
     spec: Spec
     frame: pd.DataFrame
     inputs: tuple[InputFile, ...]
+    handling: tuple[dict, ...] = ()      # what the declared data handling did (results.json data_handling)
 
     @property
     def z(self):

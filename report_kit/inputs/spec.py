@@ -284,6 +284,9 @@ def cross_field_problems(doc: dict) -> list[str]:
     if "block" in design and mech not in _NEEDS_BLOCK:
         problems.append(f"design.block: given, but mechanism '{mech}' has no blocks; "
                         f"use one of {', '.join(_NEEDS_BLOCK)} or remove the key")
+    if design.get("single_arm_blocks", "error") != "error" and mech not in ("blocked", "blocked_cluster"):
+        problems.append(f"design.single_arm_blocks: given, but mechanism '{mech}' has no blocks to drop or "
+                        "pool; it applies to blocked and blocked_cluster designs")
     if "cluster" in design and mech not in _NEEDS_CLUSTER:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
@@ -389,6 +392,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             block=design.get("block"), cluster=design.get("cluster"),
             probability=design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
+            single_arm_blocks=design.get("single_arm_blocks", "error"),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
@@ -398,6 +402,8 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             max_exact=int(analysis.get("max_exact", defaults.max_exact)),
             seed=int(analysis.get("seed", defaults.seed)),
             multiplicity=analysis.get("multiplicity", defaults.multiplicity),
+            missing_covariates=analysis.get("missing_covariates", defaults.missing_covariates),
+            subgroup_missing=analysis.get("subgroup_missing", defaults.subgroup_missing),
         ),
         outcomes=outcomes,
         compliance=ComplianceSpec(received=doc["compliance"]["received"]) if "compliance" in doc else None,
