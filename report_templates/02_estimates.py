@@ -7,6 +7,8 @@ project_dir = ""
 compare_to = ""
 
 # %%
+import html
+
 import pandas as pd
 
 from report_kit.report.figures import effect_plot
@@ -30,6 +32,10 @@ say(
     f"and a {level}% confidence interval. Units missing an outcome are left out of that outcome only; "
     "the counts used are shown per arm. Methods and formulas: docs/methods.md."
 )
+
+# %%
+for handled in res.get("data_handling", []):  # declared in design.yaml; the sentence comes from results.json
+    say(html.escape(handled["statement"]))
 
 # %%
 METHOD_WORDS = {

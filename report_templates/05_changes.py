@@ -38,6 +38,10 @@ else:
     }), "plan_deviations", caption="Deviations from the locked plan")
 if dev.get("locked") and dev.get("lock_intact") is False:
     callout("<b>The lock file was edited after locking</b>: its text no longer matches its recorded SHA-256.", "caution")
+handled = [h for h in view.results.get("data_handling", []) if h["changes_plan"]]
+if handled:
+    items = "".join(f"<li>{html.escape(h['statement'])}</li>" for h in handled)
+    callout(f"<b>Data handling declared in the plan changed the analysed units</b><ul>{items}</ul>", "caution")
 if dev.get("runs_before_lock"):
     say(f"Note: {len(dev['runs_before_lock'])} run(s) existed before the plan was locked.")
 

@@ -94,3 +94,19 @@ def test_subgroup_missing(tmp_path, option, level):
 def test_unknown_option_values_are_spec_errors(tmp_path):
     with pytest.raises(SpecError, match="analysis.missing_covariates: found 'mean' .* expected one of"):
         _load(tmp_path, spec={"analysis.missing_covariates": "mean"})
+
+
+def test_the_report_states_the_handling_in_methods_and_deviations(tmp_path):
+    """End to end (one run): the sentence from results.json reaches the report twice."""
+    from click.testing import CliRunner
+
+    from report_kit.cli import main
+
+    project = Case(name="h", code=0, words=(), units=SOUTH_ONE_ARM,
+                   spec={**BLOCKED, "design.single_arm_blocks": "drop"}).build(tmp_path)
+    result = CliRunner().invoke(main, ["run", str(project), "--no-pdf"])
+    assert result.exit_code == 0, result.output
+    (run,) = (project / "runs").iterdir()
+    report = (run / "report.html").read_text(encoding="utf-8")
+    assert report.count("As the plan declares (design.single_arm_blocks: drop)") >= 2
+    assert "Data handling declared in the plan changed the analysed units" in report
