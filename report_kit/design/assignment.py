@@ -93,12 +93,13 @@ def check_assignment(study: Study) -> AssignmentCheck:
     seed, treatment = spec.design.seed, spec.design.treatment
     if seed is None:
         return AssignmentCheck(status="not_checked", treatment=treatment)
-    drawn = redraw(spec, study.frame).astype(int)
-    z = study.z
+    frame = study.randomized_frame  # every unit as randomized, before any declared data handling
+    drawn = redraw(spec, frame).astype(int)
+    z = frame[treatment].to_numpy(dtype=int)
     differ = np.flatnonzero(drawn != z)
     if differ.size == 0:
         return AssignmentCheck(status="reproduced", seed=seed, treatment=treatment)
-    ids = tuple(v.item() if isinstance(v, np.generic) else v for v in study.ids[differ].tolist())
+    ids = tuple(v.item() if isinstance(v, np.generic) else v for v in frame[spec.data.id].to_numpy()[differ].tolist())
     return AssignmentCheck(status="mismatch", differing_ids=ids, recorded=tuple(int(v) for v in z[differ]),
                            seed=seed, treatment=treatment)
 

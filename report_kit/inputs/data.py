@@ -74,7 +74,7 @@ def load_study(spec: Spec) -> Study:
     problems.raise_if_any()
     frame = _normalise_labels(frame, [c for c in (spec.design.block, spec.design.cluster, *spec.subgroups) if c])
     frame = frame.sort_values(id_col, kind="mergesort").reset_index(drop=True)
-    frame = _coerce(spec, frame)
+    frame = as_randomized = _coerce(spec, frame)
     frame, handling = apply_handling(spec, frame)
     frame = _normalise_labels(frame, list(handled_missing_columns(spec)))
     _check_ranges(problems, spec, frame, origin, locate)
@@ -82,7 +82,8 @@ def load_study(spec: Spec) -> Study:
     _check_design(problems, spec, frame, units, locate)
     problems.raise_if_any()
     inputs = tuple(InputFile(path=t.relpath, sha256=t.sha256, rows=len(t.frame)) for t in tables)
-    return Study(spec=spec, frame=frame, inputs=inputs, handling=handling)
+    return Study(spec=spec, frame=frame, inputs=inputs, handling=handling,
+                 as_randomized=as_randomized if handling else None)
 
 
 def load_units_for_assignment(spec: Spec) -> pd.DataFrame:

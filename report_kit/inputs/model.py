@@ -107,6 +107,12 @@ class Study:
     frame: pd.DataFrame
     inputs: tuple[InputFile, ...]
     handling: tuple[dict, ...] = ()      # what the declared data handling did (results.json data_handling)
+    as_randomized: pd.DataFrame | None = field(default=None, compare=False, repr=False)  # before handling
+
+    @property
+    def randomized_frame(self) -> pd.DataFrame:
+        """Every unit as randomized (before a declared handling left some out or pooled blocks)."""
+        return self.frame if self.as_randomized is None else self.as_randomized
 
     @property
     def z(self):

@@ -110,3 +110,29 @@ def test_the_report_states_the_handling_in_methods_and_deviations(tmp_path):
     report = (run / "report.html").read_text(encoding="utf-8")
     assert report.count("As the plan declares (design.single_arm_blocks: drop)") >= 2
     assert "Data handling declared in the plan changed the analysed units" in report
+
+
+def test_the_assignment_check_sees_every_unit_as_randomized(tmp_path):
+    """Leaving units out (drop_units) must not turn a reproduced assignment into a mismatch."""
+    import csv
+
+    from click.testing import CliRunner
+
+    from report_kit.cli import main
+
+    spec = {"design.seed": 2026, "analysis.missing_covariates": "drop_units"}
+    project = Case(name="h", code=0, words=(), spec=spec).build(tmp_path)
+    runner = CliRunner()
+    assert runner.invoke(main, ["assign", str(project)]).exit_code == 0
+    drawn = {row["school"]: row["corner"] for row in csv.DictReader((project / "data/assignment.csv").open())}
+    rows = list(csv.DictReader((project / "data/units.csv").open()))
+    for row in rows:
+        row["corner"] = drawn[row["school"]]
+    rows[2]["books_before"] = ""   # S3 lacks its baseline covariate: left out of the analysis
+    with (project / "data/units.csv").open("w", newline="") as fh:
+        writer = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        writer.writeheader()
+        writer.writerows(rows)
+    result = runner.invoke(main, ["check", str(project)])
+    assert result.exit_code == 0, result.output
+    assert "7 units" in result.output and "assignment reproduced from design.seed 2026" in result.output
