@@ -146,4 +146,6 @@ def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -
         "power": study_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }
+    if study.handling:  # only when design.yaml declares a data-handling option
+        results["data_handling"] = list(study.handling)
     return results, plot_arrays(study, rand)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -51,8 +52,10 @@ class Group(click.Group):
             _fail(err, err.exit_code)
         except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException, SystemExit):
             raise
-        except KeyboardInterrupt:
-            _fail(Exception("interrupted; no run folder was left behind"), 130)
+        except KeyboardInterrupt as err:  # Ctrl-C, or SIGTERM/SIGHUP during a run (runfolder.Stopped)
+            signum = getattr(err, "signum", 2)
+            _fail(Exception(f"stopped ({signal.Signals(signum).name}); no run folder was left behind and "
+                            "earlier runs are untouched"), 128 + signum)
         except BrokenPipeError:
             # The reader went away (e.g. `report-kit diff A B | head`): stop quietly.
             devnull = os.open(os.devnull, os.O_WRONLY)

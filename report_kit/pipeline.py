@@ -11,7 +11,6 @@ from __future__ import annotations
 import hashlib
 import logging
 import shutil
-import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -26,6 +25,9 @@ from report_kit.errors import SpecError, UsageError
 from report_kit.inputs.model import Study
 from report_kit.audit.planlock import LOCK_NAME
 from report_kit.inputs.spec import SPEC_FILENAME, load_spec
+from report_kit.runfolder import (
+    finish_run, output_error, remove_stale_partials, reserve_run, stop_on_signals,
+)
 
 log = logging.getLogger(__name__)
 
@@ -115,24 +117,40 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
 
     ``kernel``: an entered :class:`report_kit.report.notebooks.ReportKernel`
     started before this call (the command line does), or None to start one
-    when the notebook runs.
+    when the notebook runs. SIGTERM and SIGHUP stop the run like Ctrl-C; an
+    ``OSError`` while writing becomes :class:`report_kit.errors.OutputError`
+    (see :mod:`report_kit.runfolder`).
     """
-    from report_kit.report import notebooks
-    from report_kit.report import render
-
     started = datetime.now(timezone.utc)
     study = load_project(project)
     if options.compare_to is not None:
         _check_previous_run(options.compare_to)
-    run_id = make_run_id(study, started)
     runs = study.spec.project_dir / "runs"
+    with stop_on_signals():
+        try:
+            run_dir, result = _build_run(study, options, started, runs, progress, on_run_id, kernel)
+        except OSError as err:
+            raise output_error(err, runs) from err
+    pdf = run_dir / "report.pdf"
+    return RunOutcome(run_dir=run_dir, report_html=run_dir / "report.html",
+                      report_pdf=pdf if pdf.exists() else None, results=result.results)
+
+
+def _build_run(study: Study, options: RunOptions, started: datetime, runs: Path, progress: Progress,
+               on_run_id: Progress, kernel=None) -> tuple[Path, Analysis]:
+    """Reserve a run id, build the run in its partial folder, rename it into place."""
+    from report_kit.report import notebooks
+    from report_kit.report import render
+
+    for stale in remove_stale_partials(runs):
+        progress(f"removed {stale.name} left by a stopped run")
+    run_id, tmp = reserve_run(runs, make_run_id(study, started))
     final = runs / run_id
-    on_run_id(str(final))
-    progress(f"design spec and data valid: {len(study.frame)} units, {len(study.inputs)} input file(s)")
-    runs.mkdir(exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".partial-{run_id}-", dir=runs))
-    handler = _log_to(tmp / "run.log")
+    handler = None
     try:
+        on_run_id(str(final))
+        progress(f"design spec and data valid: {len(study.frame)} units, {len(study.inputs)} input file(s)")
+        handler = _log_to(tmp / "run.log")
         log.info("report-kit run of %s (run id %s)", study.spec.project_dir, run_id)
         progress("analysing (estimates, randomization tests, checks)")
         result = run_analysis(study)
@@ -157,14 +175,13 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
         )
         provenance.write_manifest(tmp, record)
         provenance.write_ro_crate(tmp, record)
-        tmp.rename(final)
+        finish_run(tmp, final)
     except BaseException:
-        _close_log(handler)
+        if handler is not None:
+            _close_log(handler)
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    pdf = final / "report.pdf"
-    return RunOutcome(run_dir=final, report_html=final / "report.html",
-                      report_pdf=pdf if pdf.exists() else None, results=result.results)
+    return final, result
 
 
 def write_analysis(run_dir: Path, result: Analysis) -> None:

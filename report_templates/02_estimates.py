@@ -30,6 +30,10 @@ say(
 )
 
 # %%
+for handled in res.get("data_handling", []):  # declared in design.yaml; the sentence comes from results.json
+    say(esc(handled["statement"]))
+
+# %%
 METHOD_WORDS = {
     "neyman": "Difference in means",
     "blocked_neyman": "Block-weighted",

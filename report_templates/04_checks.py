@@ -66,8 +66,8 @@ if len(flow):
 att = res.get("attrition")
 if att:
     lost_if = [esc(view.label(c)) for c in att.get("attrited_if_missing", [])]
-    rule = (f"its {lost_if[0].lower()} is missing" if len(lost_if) == 1
-            else "any of " + ", ".join(x.lower() for x in lost_if) + " is missing")
+    rule = (f"its outcome “{lost_if[0]}” is missing" if len(lost_if) == 1  # user labels kept as written
+            else "any of " + ", ".join(f"“{x}”" for x in lost_if) + " is missing")
     say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of treated and "
         f"{100 * att['rate_control']:.1f}% of control units (a unit counts as lost when {rule}). "
         f"Randomization test of equal attrition: {p_phrase(att['p_value'])}.")

@@ -33,6 +33,10 @@ else:
     }), "plan_deviations", caption="Deviations from the locked plan")
 if dev.get("locked") and dev.get("lock_intact") is False:
     callout("<b>The lock file was edited after locking</b>: its text no longer matches its recorded SHA-256.", "caution")
+handled = [h for h in view.results.get("data_handling", []) if h["changes_plan"]]
+if handled:
+    items = "".join(f"<li>{esc(h['statement'])}</li>" for h in handled)
+    callout(f"<b>Data handling declared in the plan changed the analysed units</b><ul>{items}</ul>", "caution")
 if dev.get("runs_before_lock"):
     say(f"Note: {len(dev['runs_before_lock'])} run(s) existed before the plan was locked.")
 
@@ -73,8 +77,8 @@ if diff is not None:
 
     def readable(change: dict) -> str:
         key = change["key"]
-        if "outcome" not in key:
-            return change["section"]
+        if "outcome" not in key:  # e.g. balance.covariates rows: name the covariate
+            return f"{change['section']}: {key['name']}" if key.get("name") is not None else change["section"]
         parts = [view.label(key["outcome"])]
         parts += [str(key[k]) for k in ("estimand", "subgroup", "statistic", "method", "family") if key.get(k)]
         return f"{change['section']}: " + " · ".join(parts)

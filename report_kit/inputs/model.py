@@ -23,6 +23,7 @@ class DataSpec:
     units: str
     id: str
     merge: tuple[str, ...] = ()
+    missing_values: tuple[str, ...] = ()   # texts read as missing besides a blank (never in the id)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -33,6 +34,7 @@ class DesignSpec:
     cluster: str | None = None
     probability: float | None = None
     seed: int | None = None
+    single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -44,6 +46,8 @@ class AnalysisSpec:
     max_exact: int = 200000
     seed: int = 5150
     multiplicity: str = "holm"
+    missing_covariates: str = "error"    # error | drop_units (a unit lacking a baseline covariate)
+    subgroup_missing: str = "error"      # error | own_level | drop (a unit lacking its subgroup value)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -101,6 +105,13 @@ class Study:
     spec: Spec
     frame: pd.DataFrame
     inputs: tuple[InputFile, ...]
+    handling: tuple[dict, ...] = ()      # what the declared data handling did (results.json data_handling)
+    as_randomized: pd.DataFrame | None = field(default=None, compare=False, repr=False)  # before handling
+
+    @property
+    def randomized_frame(self) -> pd.DataFrame:
+        """Every unit as randomized (before a declared handling left some out or pooled blocks)."""
+        return self.frame if self.as_randomized is None else self.as_randomized
 
     @property
     def z(self):

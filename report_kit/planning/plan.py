@@ -18,6 +18,7 @@ from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from report_kit.validate import closed_unit_interval, finite_number
 from report_kit.planning.core import (
@@ -359,13 +360,33 @@ def _share(spec: Spec) -> float:
     return float(spec.design.probability)
 
 
+def _share_in_data(spec: Spec, frame) -> float | None:
+    """Share treated in the units table's treatment column, when it holds both arms as 0/1.
+
+    Used instead of 0.5 when ``design.probability`` is absent, so a study that
+    treated 185 of 445 units is planned with those arm sizes. Shares of
+    clusters for cluster designs; not used for Bernoulli designs (their
+    probability is the plan) nor matched pairs (one of two by construction).
+    """
+    col, kind = spec.design.treatment, spec.design.mechanism
+    if spec.design.probability is not None or kind in ("bernoulli", "matched_pairs") or col not in frame.columns:
+        return None
+    z = pd.to_numeric(frame[col], errors="coerce")
+    if z.isna().any() or not z.isin([0, 1]).all() or z.nunique() < 2:
+        return None
+    if kind in _CLUSTERED:
+        z = z.groupby(frame[spec.design.cluster].to_numpy()).first()
+    return float(Fraction(int(z.sum()), int(z.size)))
+
+
 def _units_from_table(spec: Spec) -> _PlannedUnits:
     frame = load_units_for_assignment(spec)
     kind, design = spec.design.mechanism, spec.design
     ids = frame[spec.data.id].to_numpy()
     block = frame[design.block].to_numpy() if kind in _BLOCKED else None
     cluster = frame[design.cluster].to_numpy() if kind in _CLUSTERED else None
-    p = _share(spec)
+    p = _share_in_data(spec, frame)
+    p = _share(spec) if p is None else p
     try:  # the real draw validates ids, labels, nesting and pairs
         draw_assignment(kind, ids, seed=0, block=block, cluster=cluster, probability=p)
     except (DataError, DesignError) as err:

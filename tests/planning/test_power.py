@@ -456,3 +456,19 @@ def test_plan_power_matched_pairs_from_data(tmp_path):
     assert less.simulation["effect"] == pytest.approx(-less.analytic["mde"])
     # 2**14 = 16384 assignments > 10 000: random draws
     assert less.simulation["test_method"] == "monte_carlo" and less.simulation["alternative"] == "less"
+
+
+def test_plan_power_uses_the_share_treated_in_the_data(tmp_path):
+    """3 of 8 units treated in the data: the plan uses 3 and 5, not 4 and 4 (counted by hand).
+
+    Analytic power checked against statsmodels' two-sample t-test power with ratio 5/3.
+    """
+    from tests.bad_inputs.builder import Case, units_with
+
+    units = units_with(("S7,1,", "S7,0,"))   # S1, S3, S5 treated
+    project = Case(name="p", code=0, words=(), units=units).build(tmp_path)
+    plan = pw.plan_power(project, sd=10.0, effect=12.0)
+    assert (plan.analytic["n_treated"], plan.analytic["n_control"]) == (3, 5)
+    # statsmodels TTestIndPower (outside reference): nobs1 = 3 treated, ratio = 5/3
+    expected = TTestIndPower().power(effect_size=1.2, nobs1=3, ratio=5 / 3, alpha=0.05)
+    assert plan.analytic["power"] == pytest.approx(expected, rel=1e-6)
