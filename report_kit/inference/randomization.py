@@ -51,6 +51,7 @@ from report_kit.inference.engine import (
 )
 from report_kit.design.mechanism import AssignmentSource, Mechanism, mechanism_from_arrays
 from report_kit.errors import ReportKitWarning, UsageError
+from report_kit.inference.exact_tests import upgrade_tests
 from report_kit.inference.inversion import Interval, _interval, _LinearInversion, invert_test
 from report_kit.inference.kernels import Kernel  # noqa: F401
 
@@ -347,6 +348,9 @@ def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] |
             centre=dists[0].centre[[k, len(names) + k]], method=source.method, weights=dists[0].weights)
         inv = _LinearInversion(pair, DEFAULT_RTOL, mechanism.fixed_arms_within_blocks)
         intervals.append(_interval(inv, inv.hodges_lehmann(), inv.scale(), "two-sided", level, name).to_dict())
+    if source.method != "exact":
+        tests = upgrade_tests(tests, y, names, mechanism,
+                              resolutions={o.column: o.resolution for o in spec.outcomes})
     return StudyRandomization(
         tests=tests, intervals=intervals, n_assignments=count_digits(mechanism.count()),
         method=source.method, draws=source.draws, distributions=per_outcome, alternatives=alts,

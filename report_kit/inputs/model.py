@@ -55,6 +55,7 @@ class OutcomeSpec:
     alternative: str = "two-sided"
     statistic: str = "mean_difference"
     range: tuple[float, float] | None = None
+    resolution: float | None = None
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -326,6 +326,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             family=o.get("family", "primary"), alternative=o.get("alternative", "two-sided"),
             statistic=o.get("statistic", "mean_difference"),
             range=tuple(float(v) for v in o["range"]) if "range" in o else None,
+            resolution=float(o["resolution"]) if "resolution" in o else None,
         )
         for o in doc["outcomes"]
     )
