@@ -27,6 +27,7 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python benchmarks/randomization.py
 	$(BIN)/python benchmarks/sampler.py
+	$(BIN)/python benchmarks/exact.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info
