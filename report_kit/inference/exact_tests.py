@@ -186,7 +186,7 @@ def _lattice(y0: np.ndarray, mechanism: Mechanism, statistic: str, resolution) -
     treated = tuple(int(k) for k in mechanism.stratum_treated)
     if statistic == "rank_sum":
         doubled = 2.0 * _rank_scores(y0[:, None], mechanism)[:, 0]
-        return _Lattice(scores=np.round(doubled).astype(np.int64), multipliers=(1,) * len(blocks),
+        return _Lattice(scores=_reduced(np.round(doubled).astype(np.int64)), multipliers=(1,) * len(blocks),
                         blocks=blocks, treated=treated, note=" (mid-ranks doubled to integers)")
     if np.isnan(y0).any():
         raise NoExactLaw("missing outcomes make the per-arm counts depend on the assignment")
@@ -195,8 +195,19 @@ def _lattice(y0: np.ndarray, mechanism: Mechanism, statistic: str, resolution) -
     scale = math.lcm(*(w.denominator for w in weights))
     mult = [int(w * scale) for w in weights]
     common = math.gcd(*mult)
-    return _Lattice(scores=scores, multipliers=tuple(g // common for g in mult), blocks=blocks,
+    return _Lattice(scores=_reduced(scores), multipliers=tuple(g // common for g in mult), blocks=blocks,
                     treated=treated, note=note)
+
+
+def _reduced(q: np.ndarray) -> np.ndarray:
+    """``(q - min q) / d`` with ``d`` the greatest common divisor of ``q - min q``.
+
+    Every statistic here is an increasing affine function of ``U``, and so of
+    the ``U`` of the reduced scores: the p-values are unchanged, the lattice shorter.
+    """
+    shifted = q - q.min()
+    divisor = int(np.gcd.reduce(shifted)) if shifted.any() else 1
+    return shifted // divisor
 
 
 def _integer_scores(y0: np.ndarray, resolution) -> tuple[np.ndarray, str]:

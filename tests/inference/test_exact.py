@@ -11,6 +11,7 @@ from __future__ import annotations
 import itertools
 import math
 from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -301,3 +302,30 @@ def test_upgrade_tests_replaces_monte_carlo_rows_only():
     assert out[0]["p_value"] == pytest.approx(ref, rel=1e-12)
     assert out[1]["method"] == "monte_carlo" and out[1]["detail"].startswith("monte carlo: ")
     assert out[2] == rows[2]
+
+
+def test_collection_postcards_example_is_exact_without_listing(tmp_path):
+    # the invented 8,000-household example: its 0/1 primary outcome's two-sided p-value is the
+    # distance-from-mean hypergeometric tail (scipy.stats.hypergeom) from the counts in its CSV;
+    # the count outcome agrees with a seeded Monte Carlo run within 4 standard errors
+    import pandas as pd
+
+    from report_kit.pipeline import analyse_project
+
+    root = Path(__file__).resolve().parents[2] / "projects" / "collection-postcards"
+    results = analyse_project(root)
+    frame = pd.read_csv(root / "data" / "households.csv")
+    z, y = frame["postcard"].to_numpy(), frame["booked"].to_numpy()
+    n, k, m, x = z.size, int(z.sum()), int(y.sum()), int(y[z == 1].sum())
+    support = np.arange(max(0, k - (n - m)), min(k, m) + 1)
+    mean = k * m / n
+    ref = stats.hypergeom.pmf(support, n, m, k)[np.abs(support - mean) >= abs(x - mean) - 1e-9].sum()
+    booked, items = results["tests"]
+    assert booked["method"] == "exact" and booked["draws"] == 0 and "hypergeometric" in booked["detail"]
+    assert booked["p_value"] == pytest.approx(ref, rel=1e-9)
+    assert results["design"]["assignment_check"] == "reproduced"
+    assert items["method"] == "exact" and "FFT" in items["detail"]
+    mech = mechanism_from_arrays("complete", z)
+    mc = randomization_test(frame["items_set_out"].to_numpy(float), mech, alternative="greater",
+                            source=mech.assignments(max_exact=0, draws=20000, seed=9))[0]
+    assert abs(items["p_value"] - mc.p_value) <= 4 * mc.mc_std_error
