@@ -120,11 +120,38 @@ def collection_postcards(rng: np.random.Generator) -> None:
                                                    index=False)
 
 
+#: ``design.seed`` of projects/rooftop-shade: the seed that drew its (rerandomized) assignment.
+ROOFTOP_SHADE_SEED = 20261203
+
+
+def rooftop_shade(rng: np.random.Generator) -> None:
+    """Rerandomized trial: 20 invented apartment blocks, 10 given rooftop shade sails.
+
+    The assignment was redrawn from ``ROOFTOP_SHADE_SEED`` until the
+    Mahalanobis distance of the means of last summer's electricity use and the
+    number of floors was at most 0.5 (``design.rerandomization`` in the spec),
+    with report-kit's own documented algorithm, so ``report-kit check``
+    reproduces it.
+    """
+    from report_kit.design.rerandomization import Rerandomization, draw_rerandomized
+
+    names = [f"Block {c}" for c in "ABCDEFGHIJKLMNOPQRST"]
+    floors = rng.integers(3, 13, size=20)
+    last_summer = (180 + 22 * floors + rng.normal(0, 40, size=20)).round()
+    criterion = Rerandomization.from_arrays(np.column_stack([last_summer, floors]), 0.5)
+    z = draw_rerandomized("complete", names, criterion, seed=ROOFTOP_SHADE_SEED)[0].astype(int)
+    this_summer = (last_summer * 1.04 - 18 * z + rng.normal(0, 15, size=20)).round()
+    pd.DataFrame(dict(building=names, shade=z, floors=floors, kwh_last_summer=last_summer,
+                      kwh_this_summer=this_summer)).to_csv(ROOT / "rooftop-shade" / "data" / "buildings.csv",
+                                                           index=False)
+
+
 GENERATORS = {
     "tutoring-clubs": lambda: tutoring_clubs(np.random.default_rng(20261201)),
     "quiet-hours": lambda: quiet_hours(np.random.default_rng(7)),
     "arrival-signs": lambda: arrival_signs(np.random.default_rng(11)),
     "collection-postcards": lambda: collection_postcards(np.random.default_rng(23)),
+    "rooftop-shade": lambda: rooftop_shade(np.random.default_rng(29)),
 }
 
 

@@ -43,7 +43,7 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
     """The ``design`` section: counts of units, arms, blocks, clusters and assignments."""
     z = study.z
     block, cluster = study.block, study.cluster
-    return {
+    summary = {
         "mechanism": study.spec.design.mechanism,
         "n_units": int(z.size),
         "n_treated": int(z.sum()),
@@ -55,6 +55,9 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
         "inference_method": None if rand is None else rand.method,
         "draws": None if rand is None else int(rand.draws),
     }
+    if rand is not None and rand.rerandomization is not None:
+        summary["rerandomization"] = rand.rerandomization
+    return summary
 
 
 def shared_nulls(study: Study, rand: StudyRandomization) -> dict[str, SharedNull]:

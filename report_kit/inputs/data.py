@@ -114,6 +114,13 @@ def load_units_for_assignment(spec: Spec) -> pd.DataFrame:
                             "in the units table")
         _check_no_missing(units, col, key, id_col)
         labels.append(col)
+    for col, key in rerandomization_columns(spec).items():
+        if col not in units.frame.columns:
+            raise DataError(f"{units.path}: column '{col}' (named by {key} in design.yaml) not found"
+                            f"{_close_hint(col, list(units.frame.columns))}; the rerandomized draw needs it "
+                            "in the units table")
+        _check_numeric(units, col, id_col, key)
+        _check_no_missing(units, col, key, id_col)
     frame = _normalise_labels(units.frame, labels)
     _check_drawable(spec, frame, units)
     return frame.sort_values(id_col, kind="mergesort").reset_index(drop=True)
@@ -537,6 +544,7 @@ def _required_columns(spec: Spec) -> dict[str, str]:
         need.setdefault(o.column, f"outcomes[{i}].column")
     for i, c in enumerate(spec.analysis.covariates):
         need.setdefault(c, f"analysis.covariates[{i}]")
+    need.update((c, k) for c, k in rerandomization_columns(spec).items() if c not in need)
     if spec.compliance:
         need.setdefault(spec.compliance.received, "compliance.received")
     for i, g in enumerate(spec.subgroups):
@@ -544,9 +552,19 @@ def _required_columns(spec: Spec) -> dict[str, str]:
     return need
 
 
+def rerandomization_columns(spec: Spec) -> dict[str, str]:
+    """Covariates of ``design.rerandomization`` and their key paths (numeric, a value for every unit)."""
+    rer = spec.design.rerandomization
+    if rer is None:
+        return {}
+    return {c: f"design.rerandomization.covariates[{i}]" for i, c in enumerate(rer.covariates)}
+
+
 def _every_unit_columns(spec: Spec) -> dict[str, str]:
     """Columns that need a value for every unit (no missing values allowed)."""
     need = {spec.design.treatment: "design.treatment"}
+    for col, key in rerandomization_columns(spec).items():
+        need.setdefault(col, key)
     if spec.compliance:
         need.setdefault(spec.compliance.received, "compliance.received")
     if spec.design.block:
@@ -574,6 +592,8 @@ def _check_columns(spec: Spec, origin: dict[str, Table]) -> None:
     numeric = {o.column: f"outcomes[{i}].column" for i, o in enumerate(spec.outcomes)}
     for i, c in enumerate(spec.analysis.covariates):
         numeric.setdefault(c, f"analysis.covariates[{i}]")
+    for col, key in rerandomization_columns(spec).items():
+        numeric.setdefault(col, key)
     for col, key in numeric.items():
         _check_numeric(origin[col], col, id_col, key)
     for col, key in _every_unit_columns(spec).items():
@@ -631,7 +651,8 @@ def _coerce(spec: Spec, frame: pd.DataFrame) -> pd.DataFrame:
     frame[spec.design.treatment] = pd.to_numeric(frame[spec.design.treatment]).astype(int)
     if spec.compliance:
         frame[spec.compliance.received] = pd.to_numeric(frame[spec.compliance.received]).astype(int)
-    for col in [o.column for o in spec.outcomes] + list(spec.analysis.covariates):
+    columns = [o.column for o in spec.outcomes] + list(spec.analysis.covariates) + list(rerandomization_columns(spec))
+    for col in columns:
         frame[col] = pd.to_numeric(frame[col], errors="coerce").astype(float)
     return frame
 

@@ -27,6 +27,12 @@ class DataSpec:
 
 
 @dataclass(frozen=True, kw_only=True)
+class RerandomizationSpec:
+    covariates: tuple[str, ...]
+    max_distance: float
+
+
+@dataclass(frozen=True, kw_only=True)
 class DesignSpec:
     mechanism: str
     treatment: str
@@ -34,6 +40,7 @@ class DesignSpec:
     cluster: str | None = None
     probability: float | None = None
     seed: int | None = None
+    rerandomization: RerandomizationSpec | None = None
 
 
 @dataclass(frozen=True, kw_only=True)

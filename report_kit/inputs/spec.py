@@ -28,6 +28,7 @@ from report_kit.inputs.model import (
     DataSpec,
     DesignSpec,
     OutcomeSpec,
+    RerandomizationSpec,
     Spec,
 )
 
@@ -240,6 +241,9 @@ def cross_field_problems(doc: dict) -> list[str]:
     if "cluster" in design and mech not in _NEEDS_CLUSTER:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
+    if "rerandomization" in design and mech == "bernoulli":
+        problems.append("design.rerandomization: a bernoulli design treats a random number of units; "
+                        "rerandomization needs complete, blocked, cluster or matched_pairs")
     problems += _role_problems(doc)
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
@@ -342,6 +346,9 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             block=design.get("block"), cluster=design.get("cluster"),
             probability=design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
+            rerandomization=None if "rerandomization" not in design else RerandomizationSpec(
+                covariates=tuple(design["rerandomization"]["covariates"]),
+                max_distance=float(design["rerandomization"]["max_distance"])),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
