@@ -7,6 +7,8 @@ project_dir = ""
 compare_to = ""
 
 # %%
+import html
+
 import pandas as pd
 
 from report_kit.report.figures import randomization_plot
@@ -19,9 +21,24 @@ tests = pd.DataFrame(res.get("tests") or [])
 level = round(100 * (1 - view.spec.analysis.alpha))
 
 # %%
+rerandomized = d.get("rerandomization")
+if rerandomized:
+    rate = ("exact" if rerandomized["acceptance_rate_method"] == "exact"
+            else f"estimated from {int(rerandomized['candidates']):,} random candidates")
+    say("The assignment was **rerandomized** (Morgan & Rubin 2012): candidate assignments were drawn from "
+        "design.seed until the Mahalanobis distance of the arm means of "
+        f"{', '.join(html.escape(c) for c in rerandomized['covariates'])} was at most "
+        f"{rerandomized['max_distance']:g} (observed: {rerandomized['observed_distance']:.3g}). "
+        f"{100 * rerandomized['acceptance_rate']:.1f}% of the assignments are acceptable ({rate}); the tests "
+        "and test-inversion intervals below run over the acceptable assignments only, while Neyman standard "
+        "errors ignore the rerandomization and are conservative.")
 if d.get("inference_method") == "exact":
-    how = (f"all {int(d['n_assignments']):,} assignments the design allows were enumerated, so the p-values "
-           "are exact")
+    how = (f"all {int(d['n_assignments']):,} {'acceptable ' if rerandomized else ''}assignments the design "
+           "allows were enumerated, so the p-values are exact")
+elif rerandomized:
+    how = (f"{d['draws']:,} acceptable assignments were drawn at random by the same accept/reject rule "
+           f"(seed {view.spec.analysis.seed}) and each p-value carries a Monte Carlo standard error; "
+           "p = (1 + #{at least as extreme}) / (1 + draws)")
 else:
     how = (f"the design allows {len(d['n_assignments'] or '')}-digit many assignments, so "
            f"{d['draws']:,} were drawn at random (seed {view.spec.analysis.seed}) and each p-value carries a "
@@ -29,6 +46,10 @@ else:
 say("Each test asks how surprising the observed statistic would be if the programme had no effect on any "
     "unit (Fisher's sharp null), using the assignment mechanism actually used: "
     f"{how}. Two-sided tests count assignments at least as far from the null mean as the observed one.")
+if len(tests) and "detail" in tests and tests["detail"].fillna("").str.startswith("exact").any():
+    say("Tests shown as exact with 0 assignments used were computed from the exact null distribution of "
+        "their statistic without listing assignments (the outcome's values lie on a lattice; see "
+        "docs/methods/exact.md), so their p-values are exact too.")
 
 # %%
 STAT_WORDS = {"mean_difference": "difference in means", "rank_sum": "rank sum", "studentized": "studentized difference",
@@ -65,7 +86,10 @@ for o in view.spec.outcomes:
     if o.family != "primary" or key not in arrays:
         continue
     row = tests[tests["outcome"] == o.column].iloc[0]
-    count = "every assignment" if row["method"] == "exact" else f"{int(row['draws']):,} random assignments"
+    if row["method"] == "exact" and int(row["draws"]) == 0:  # exact law; the plot shows the shared draws
+        count = f"{len(arrays[key]):,} random assignments (the p-value is exact)"
+    else:
+        count = "every assignment" if row["method"] == "exact" else f"{int(row['draws']):,} random assignments"
     fig = randomization_plot(arrays[key], float(arrays[f"observed::{o.column}"][0]), label=o.label,
                              statistic=row["statistic"], method=row["method"], count_text=count)
     show_figure(view, fig, f"randomization_{o.column}",
