@@ -20,6 +20,7 @@ from report_kit.checks.attrition import study_attrition
 from report_kit.checks.balance import participant_flow, study_balance
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
+from report_kit.estimation.rerandomized import study_rerandomized_intervals
 from report_kit.inputs.model import Study
 from report_kit.inference.multiplicity import SharedNull, study_multiplicity
 from report_kit.planning.power import study_power
@@ -126,4 +127,6 @@ def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
         "power": study_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }
+    if study.spec.design.rerandomization is not None:
+        results["rerandomization_intervals"] = study_rerandomized_intervals(study)
     return results, plot_arrays(study, rand)

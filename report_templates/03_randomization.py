@@ -80,6 +80,23 @@ if len(intervals):
              "the Hodges–Lehmann estimate is the effect at which that test is most compatible.")
 
 # %%
+rr_intervals = pd.DataFrame(res.get("rerandomization_intervals") or [])
+if len(rr_intervals):
+    show_table(view, pd.DataFrame({
+        "Outcome": [view.label(o) for o in rr_intervals["outcome"]],
+        "Difference in means": rr_intervals["estimate"],
+        f"{level}% interval, low": rr_intervals["ci_low"],
+        f"{level}% interval, high": rr_intervals["ci_high"],
+        "Neyman interval, low": rr_intervals["neyman_ci_low"],
+        "Neyman interval, high": rr_intervals["neyman_ci_high"],
+        "R² of the covariates": rr_intervals["r_squared"],
+    }), "rerandomization_intervals", caption="Large-sample intervals that account for the rerandomization",
+        csv_frame=rr_intervals,
+        note="Li, Ding & Rubin (2018): under rerandomization the difference in means is a normal plus a "
+             "truncated-normal part; the interval uses that law (conservative, like the Neyman interval, "
+             "whose bounds are shown for comparison). Outcomes with missing values are left out.")
+
+# %%
 arrays = view.arrays()
 for o in view.spec.outcomes:
     key = f"null::{o.column}"

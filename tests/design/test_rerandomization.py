@@ -184,3 +184,6 @@ def test_rerandomized_example_project_end_to_end(project_copy):
     assert rer["observed_distance"] == pytest.approx(scipy_distance(x, study.z), rel=1e-9)
     assert any("conservative" in note for note in results["notes"])
     assert results["tests"][0]["draws"] == count
+    (ldr,) = results["rerandomization_intervals"]
+    assert ldr["method"] == "li_ding_rubin_2018" and ldr["ci_high"] - ldr["ci_low"] < ldr["neyman_ci_high"] - ldr[
+        "neyman_ci_low"]
