@@ -78,3 +78,22 @@ def test_missing_or_bad_covariate_names_file_key_and_row(project_copy):
     edit_spec(project, lambda d: d["design"]["rerandomization"].update(covariates=["kwh_last_summer", "floors"]))
     out = fails_cleanly(invoke("check", project))
     assert "'floors'" in out and "Block D" in out
+
+
+def test_rerandomized_run_by_monte_carlo_when_too_many_to_list(project_copy):
+    # more assignments than analysis.max_exact: acceptable ones are sampled by the accept/reject rule;
+    # the report renders and results.json says the acceptance rate is an estimate and the count unknown
+    import json
+
+    project = project_copy("rooftop-shade")
+    edit_spec(project, lambda d: d["analysis"].update(max_exact=1000, randomizations=500))
+    result = invoke("run", project)
+    assert result.exit_code == 0, result.output
+    (run_dir,) = (project / "runs").iterdir()
+    results = json.loads((run_dir / "results.json").read_text(encoding="utf-8"))
+    design = results["design"]
+    assert design["n_assignments"] is None and design["inference_method"] == "monte_carlo"
+    assert design["rerandomization"]["acceptance_rate_method"] == "monte_carlo"
+    assert int(design["rerandomization"]["candidates"]) > 500
+    assert results["tests"][0]["method"] == "monte_carlo" and "detail" not in results["tests"][0]
+    assert "acceptable assignments were drawn at random" in (run_dir / "report.html").read_text(encoding="utf-8")
