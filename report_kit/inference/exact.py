@@ -28,6 +28,8 @@ __all__ = ["LatticeLaw", "LatticeTooLarge", "treated_sum_law", "weighted_block_l
 
 #: Largest FFT grid (cells x distinct scores) or lattice length accepted before giving up.
 DEFAULT_MAX_CELLS = 2_000_000_000
+#: Largest ``M x D`` block held in memory at once (a few arrays of this many float64 values).
+_MAX_ROW_CELLS = 5_000_000
 #: Grid cells with ``log|G|`` below this are left out (each contributes less than 1e-39).
 _NEGLIGIBLE = -90.0
 #: Probability left outside the FFT windows (per window, Bernstein bound; see :func:`_window`).
@@ -177,9 +179,9 @@ def _fft_law(values: np.ndarray, counts: np.ndarray, k: int, max_cells: int) -> 
     size_m = hi - lo + 1  # every alias s + beta * M of a window point lies outside the window
     size_n = min(n + 1, _window(n * p * (1 - p), 1.0) + 1)
     cells = size_n * size_m * v.size
-    if cells > max_cells:
+    if cells > max_cells or size_m * v.size > _MAX_ROW_CELLS:
         raise LatticeTooLarge(f"the FFT grid would need {size_n} x {size_m} x {v.size} = {cells:,} cells "
-                              f"(limit {max_cells:,})")
+                              f"(limits: {max_cells:,} in all, {_MAX_ROW_CELLS:,} per x frequency)")
     probs = _fft_conditional(v, counts, k, p, size_n, size_m)
     start = lo % size_m
     pmf = np.roll(probs, -start)[: hi - lo + 1]
