@@ -173,17 +173,23 @@ def test_rerandomized_example_project_end_to_end(project_copy):
         warnings.simplefilter("ignore", ReportKitWarning)
         results = analyse_project(project)
     x = study.frame[["kwh_last_summer", "floors"]].to_numpy(float)
-    count = 0
+    y = study.outcome("kwh_this_summer")
+    t_obs = y[study.z == 1].mean() - y[study.z == 0].mean()
+    count = hits = 0
     for chosen in itertools.combinations(range(20), 10):
         z = np.zeros(20, dtype=int)
         z[list(chosen)] = 1
-        count += scipy_distance(x, z) <= 0.5
+        if scipy_distance(x, z) <= 0.5:
+            count += 1
+            hits += y[z == 1].mean() - y[z == 0].mean() <= t_obs + 1e-9  # alternative "less"
     rer = results["design"]["rerandomization"]
     assert results["design"]["n_assignments"] == str(count)
     assert rer["acceptance_rate"] == pytest.approx(count / math.comb(20, 10))
     assert rer["observed_distance"] == pytest.approx(scipy_distance(x, study.z), rel=1e-9)
     assert any("conservative" in note for note in results["notes"])
     assert results["tests"][0]["draws"] == count
+    # the p-value runs over the acceptable assignments only (guards any change of the engine's draws)
+    assert results["tests"][0]["p_value"] == pytest.approx(hits / count, abs=1e-12)
     (ldr,) = results["rerandomization_intervals"]
     assert ldr["method"] == "li_ding_rubin_2018" and ldr["ci_high"] - ldr["ci_low"] < ldr["neyman_ci_high"] - ldr[
         "neyman_ci_low"]
