@@ -27,6 +27,12 @@ class DataSpec:
 
 
 @dataclass(frozen=True, kw_only=True)
+class RerandomizationSpec:
+    covariates: tuple[str, ...]
+    max_distance: float
+
+
+@dataclass(frozen=True, kw_only=True)
 class DesignSpec:
     mechanism: str
     treatment: str
@@ -35,6 +41,7 @@ class DesignSpec:
     probability: float | None = None
     seed: int | None = None
     single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
+    rerandomization: RerandomizationSpec | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -58,6 +65,7 @@ class OutcomeSpec:
     alternative: str = "two-sided"
     statistic: str = "mean_difference"
     range: tuple[float, float] | None = None
+    resolution: float | None = None
 
 
 @dataclass(frozen=True, kw_only=True)

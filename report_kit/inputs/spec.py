@@ -28,6 +28,7 @@ from report_kit.inputs.model import (
     DataSpec,
     DesignSpec,
     OutcomeSpec,
+    RerandomizationSpec,
     Spec,
 )
 
@@ -290,6 +291,9 @@ def cross_field_problems(doc: dict) -> list[str]:
     if "cluster" in design and mech not in _NEEDS_CLUSTER:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
+    if "rerandomization" in design and mech == "bernoulli":
+        problems.append("design.rerandomization: a bernoulli design treats a random number of units; "
+                        "rerandomization needs complete, blocked, cluster or matched_pairs")
     problems += _role_problems(doc)
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
@@ -376,6 +380,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             family=o.get("family", "primary"), alternative=o.get("alternative", "two-sided"),
             statistic=o.get("statistic", "mean_difference"),
             range=tuple(float(v) for v in o["range"]) if "range" in o else None,
+            resolution=float(o["resolution"]) if "resolution" in o else None,
         )
         for o in doc["outcomes"]
     )
@@ -393,6 +398,9 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             probability=design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
             single_arm_blocks=design.get("single_arm_blocks", "error"),
+            rerandomization=None if "rerandomization" not in design else RerandomizationSpec(
+                covariates=tuple(design["rerandomization"]["covariates"]),
+                max_distance=float(design["rerandomization"]["max_distance"])),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
