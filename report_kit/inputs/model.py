@@ -17,6 +17,7 @@ FAMILIES = ("primary", "secondary", "exploratory")
 ALTERNATIVES = ("two-sided", "greater", "less")
 STATISTICS = ("mean_difference", "rank_sum", "studentized", "ks")
 MULTIPLICITY = ("none", "holm", "bh", "westfall_young")
+DEFAULT_ARM_LABELS = ("control", "treated")   # words for the arms coded 0 and 1
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -34,6 +35,7 @@ class DesignSpec:
     cluster: str | None = None
     probability: float | None = None
     seed: int | None = None
+    arm_labels: tuple[str, str] = DEFAULT_ARM_LABELS   # (label of 0, label of 1)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -45,6 +47,7 @@ class AnalysisSpec:
     max_exact: int = 200000
     seed: int = 5150
     multiplicity: str = "holm"
+    std_effect: str = "hedges_g"
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -55,11 +58,27 @@ class OutcomeSpec:
     alternative: str = "two-sided"
     statistic: str = "mean_difference"
     range: tuple[float, float] | None = None
+    unit: str = ""
 
 
 @dataclass(frozen=True, kw_only=True)
 class ComplianceSpec:
     received: str
+
+
+@dataclass(frozen=True, kw_only=True)
+class RegistrationSpec:
+    id: str
+    address: str = ""
+
+
+@dataclass(frozen=True, kw_only=True)
+class EnrolmentSpec:
+    """Counts before randomization declared in the spec (CONSORT-style flow)."""
+
+    assessed: int | None = None
+    excluded: tuple[tuple[str, int], ...] = ()
+    randomized: int | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -74,6 +93,8 @@ class Spec:
     outcomes: tuple[OutcomeSpec, ...]
     compliance: ComplianceSpec | None = None
     subgroups: tuple[str, ...] = ()
+    registration: RegistrationSpec | None = None
+    enrolment: EnrolmentSpec | None = None
     raw: dict = field(default_factory=dict, compare=False, repr=False)
 
     @property

@@ -23,11 +23,14 @@ import yaml
 
 from report_kit.errors import SpecError
 from report_kit.inputs.model import (
+    DEFAULT_ARM_LABELS,
     AnalysisSpec,
     ComplianceSpec,
     DataSpec,
     DesignSpec,
+    EnrolmentSpec,
     OutcomeSpec,
+    RegistrationSpec,
     Spec,
 )
 
@@ -241,6 +244,10 @@ def cross_field_problems(doc: dict) -> list[str]:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
     problems += _role_problems(doc)
+    problems += _enrolment_problems(doc.get("enrolment"))
+    labels = design.get("arm_labels")
+    if labels and labels["control"] == labels["treated"]:
+        problems.append(f"design.arm_labels: both arms are called {labels['control']!r}; give each arm its own label")
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
         col = outcome["column"]
@@ -251,6 +258,17 @@ def cross_field_problems(doc: dict) -> list[str]:
         if rng is not None and not rng[0] < rng[1]:
             problems.append(f"outcomes[{i}].range: found {rng}; expected [min, max] with min < max")
     return problems
+
+
+def _enrolment_problems(enrolment: dict | None) -> list[str]:
+    """Assessed = excluded + randomized when all three are declared (CONSORT-style arithmetic)."""
+    if not enrolment or "assessed" not in enrolment or "randomized" not in enrolment:
+        return []
+    excluded = sum(int(e["n"]) for e in enrolment.get("excluded", ()))
+    if enrolment["assessed"] != excluded + enrolment["randomized"]:
+        return [f"enrolment.assessed: found {enrolment['assessed']}; expected excluded + randomized = "
+                f"{excluded} + {enrolment['randomized']} = {excluded + enrolment['randomized']}"]
+    return []
 
 
 def _repeats(where: str, items: list) -> list[str]:
@@ -326,6 +344,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             family=o.get("family", "primary"), alternative=o.get("alternative", "two-sided"),
             statistic=o.get("statistic", "mean_difference"),
             range=tuple(float(v) for v in o["range"]) if "range" in o else None,
+            unit=o.get("unit", ""),
         )
         for o in doc["outcomes"]
     )
@@ -341,6 +360,8 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             block=design.get("block"), cluster=design.get("cluster"),
             probability=design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
+            arm_labels=(design["arm_labels"]["control"], design["arm_labels"]["treated"])
+            if "arm_labels" in design else DEFAULT_ARM_LABELS,
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
@@ -350,9 +371,23 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             max_exact=int(analysis.get("max_exact", defaults.max_exact)),
             seed=int(analysis.get("seed", defaults.seed)),
             multiplicity=analysis.get("multiplicity", defaults.multiplicity),
+            std_effect=analysis.get("std_effect", defaults.std_effect),
         ),
         outcomes=outcomes,
         compliance=ComplianceSpec(received=doc["compliance"]["received"]) if "compliance" in doc else None,
         subgroups=tuple(doc.get("subgroups", ())),
+        registration=_registration(doc.get("registration")),
+        enrolment=_enrolment(doc.get("enrolment")),
         raw=doc,
     )
+
+
+def _registration(doc: dict | None) -> RegistrationSpec | None:
+    return None if doc is None else RegistrationSpec(id=doc["id"], address=doc.get("address", ""))
+
+
+def _enrolment(doc: dict | None) -> EnrolmentSpec | None:
+    if doc is None:
+        return None
+    return EnrolmentSpec(assessed=doc.get("assessed"), randomized=doc.get("randomized"),
+                         excluded=tuple((e["reason"], int(e["n"])) for e in doc.get("excluded", ())))
