@@ -18,6 +18,7 @@ import numpy as np
 
 from report_kit.checks.attrition import study_attrition
 from report_kit.checks.balance import participant_flow, study_balance
+from report_kit.checks.points import points_to_weigh
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inputs.model import Study
@@ -52,6 +53,7 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
         "n_clusters": None if cluster is None else int(len(set(cluster.tolist()))),
         "n_assignments": None if rand is None else rand.n_assignments,
         "assignment_check": assignment_check,
+        "arm_labels": dict(zip(("control", "treated"), study.spec.design.arm_labels)),
         "inference_method": None if rand is None else rand.method,
         "draws": None if rand is None else int(rand.draws),
     }
@@ -82,8 +84,12 @@ def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]
     return arrays
 
 
-def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
-    """Run every analysis step on a validated study and return the results."""
+def analyse(study: Study, *, assignment_check: str = "not_checked", plan: dict | None = None) -> Analysis:
+    """Run every analysis step on a validated study and return the results.
+
+    ``plan`` is the plan-lock status (``report_kit.audit.planlock.plan_deviations``)
+    that the points to weigh quote; None leaves the plan out of them.
+    """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ReportKitWarning)
         results, arrays = _sections(study, assignment_check)
@@ -91,7 +97,27 @@ def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
     for note in notes:
         log.warning("%s", note)
     results["notes"] = notes
+    results["enrolment"] = enrolment_summary(study)
+    results["points_to_weigh"] = study_points(study, results, plan)
     return Analysis(results=results, arrays=arrays)
+
+
+def enrolment_summary(study: Study) -> dict | None:
+    """The ``enrolment`` section: counts before randomization declared in the spec, or None."""
+    e = study.spec.enrolment
+    if e is None:
+        return None
+    return {"assessed": e.assessed, "randomized": e.randomized,
+            "excluded": [{"reason": reason, "n": n} for reason, n in e.excluded]}
+
+
+def study_points(study: Study, results: dict, plan: dict | None) -> list[dict]:
+    """The ``points_to_weigh`` list for a study's finished results."""
+    labels = {o.column: o.label for o in study.spec.outcomes}
+    enrolment = study.spec.enrolment
+    return points_to_weigh(results, alpha=study.spec.analysis.alpha, label=lambda c: labels.get(c, c),
+                           arm_labels=study.spec.design.arm_labels, plan=plan,
+                           enrolled=None if enrolment is None else enrolment.randomized)
 
 
 def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:

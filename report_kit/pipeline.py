@@ -77,10 +77,12 @@ def analyse_project(project: Path | str) -> dict:
 
 
 def run_analysis(study: Study) -> Analysis:
-    """The deterministic analysis step (the assignment check included)."""
+    """The deterministic analysis step (the assignment check and the plan-lock status included)."""
+    from report_kit.audit.planlock import plan_deviations
     from report_kit.design.assignment import assignment_check_status
 
-    return analyse(study, assignment_check=assignment_check_status(study))
+    return analyse(study, assignment_check=assignment_check_status(study),
+                   plan=plan_deviations(study.spec.project_dir))
 
 
 def make_run_id(study: Study, now: datetime) -> str:
