@@ -7,9 +7,12 @@ project_dir = ""
 compare_to = ""
 
 # %%
+import html
+
 import pandas as pd
 
 from report_kit.audit.planlock import plan_deviations
+from report_kit.report.headline import headline_cards, points_box, registration_line
 from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
 
 view = RunView.open(run_dir, project_dir)
@@ -19,7 +22,9 @@ d = res["design"]
 
 # %%
 if spec.summary:
-    say(spec.summary.strip())
+    say(html.escape(spec.summary.strip()))
+if registration_line(spec):
+    callout(registration_line(spec), "info")
 deviations = plan_deviations(view.run_dir / "inputs")
 callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(deviations)) + "</ul>", "caution")
 
@@ -33,23 +38,32 @@ seen: set = set()
 tests = {t["outcome"]: t for t in res.get("tests") or []}
 lead_method = spec.analysis.multiplicity
 adjusted = {m["outcome"]: m["p_adjusted"] for m in res.get("multiplicity") or [] if m.get("lead")}
-lines = []
+lead_rows = {}
 for row in res["estimates"]:
-    if estimate_role(row, seen) != "lead" or row["estimand"] not in ("ATE", "ITT") or row["subgroup"]:
+    if estimate_role(row, seen) == "lead" and row["estimand"] in ("ATE", "ITT") and not row["subgroup"]:
+        lead_rows.setdefault(row["outcome"], row)
+cards = headline_cards(res, spec, lead_rows=lead_rows)
+if cards:
+    callout("<b>Primary outcomes</b> (the design-based estimate the design implies; the effect is "
+            f"{html.escape(spec.design.arm_labels[1])} minus {html.escape(spec.design.arm_labels[0])}):" + cards, "info")
+lines = []
+for outcome in spec.outcomes:
+    row = lead_rows.get(outcome.column)
+    if row is None or outcome.family == "primary":
         continue
-    outcome = next((o for o in spec.outcomes if o.column == row["outcome"]), None)
-    if outcome is None:
-        continue
-    test = tests.get(row["outcome"], {})
-    adj = adjusted.get(row["outcome"])
+    test = tests.get(outcome.column, {})
+    adj = adjusted.get(outcome.column)
     adj_text = "" if adj is None or lead_method == "none" else f"; adjusted for multiple outcomes, {p_phrase(adj)}"
     lines.append(
-        f"<li><b>{outcome.label}</b> ({outcome.family}): estimated effect <b>{fmt(row['estimate'])}</b> "
+        f"<li><b>{html.escape(outcome.label)}</b> ({outcome.family}): estimated effect <b>{fmt(row['estimate'])}</b> "
         f"({level}% CI {fmt(row['ci_low'])} to {fmt(row['ci_high'])}); randomization test "
         f"{p_phrase(test.get('p_value'))}{adj_text}.</li>")
 if lines:
-    callout("<b>Pre-specified estimate for each outcome</b> (the design-based estimator the design implies; "
-            "other estimators follow under Average effects as checks):<ul>" + "".join(lines) + "</ul>", "info")
+    callout("<b>Other pre-specified outcomes</b> (other estimators follow under Average effects as checks):"
+            "<ul>" + "".join(lines) + "</ul>", "info")
+box = points_box(res.get("points_to_weigh") or [])
+if box:
+    callout(box, "caution")
 
 # %% [markdown]
 # ## Design
