@@ -131,7 +131,7 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
             id_column=study.spec.data.id,
             seeds={"design": study.spec.design.seed, "analysis": study.spec.analysis.seed},
             argv=tuple(options.argv), started=_iso(started), ended=_iso(datetime.now(timezone.utc)),
-            renderer=options.renderer,
+            renderer=options.renderer, compared_to=compared_record(options.compare_to),
         )
         provenance.write_manifest(tmp, record)
         provenance.write_ro_crate(tmp, record)
@@ -167,6 +167,14 @@ def copy_inputs(study: Study, run_dir: Path) -> None:
         target = dest / f.path
         target.parent.mkdir(parents=True, exist_ok=True)
         shutil.copy2(study.spec.project_dir / f.path, target)
+
+
+def compared_record(run_dir: Path | None) -> dict | None:
+    """What the manifest records of the run compared with: its id and the SHA-256 of its results."""
+    if run_dir is None:
+        return None
+    run_dir = Path(run_dir).resolve()
+    return {"run_id": run_dir.name, "results_sha256": provenance.sha256_file(run_dir / "results.json")}
 
 
 def _check_previous_run(run_dir: Path) -> None:

@@ -12,8 +12,8 @@ import html
 import pandas as pd
 
 from report_kit.audit.planlock import plan_deviations
-from report_kit.report.headline import headline_cards, points_box, registration_line
-from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
+from report_kit.report.headline import decimals_for, fmt_at, headline_cards, points_box, registration_line
+from report_kit.report.view import RunView, callout, cautions, estimate_role, p_phrase, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -46,6 +46,9 @@ cards = headline_cards(res, spec, lead_rows=lead_rows)
 if cards:
     callout("<b>Primary outcomes</b> (the design-based estimate the design implies; the effect is "
             f"{html.escape(spec.design.arm_labels[1])} minus {html.escape(spec.design.arm_labels[0])}):" + cards, "info")
+box = points_box(res.get("points_to_weigh") or [])
+if box:
+    callout(box, "caution")
 lines = []
 for outcome in spec.outcomes:
     row = lead_rows.get(outcome.column)
@@ -54,16 +57,16 @@ for outcome in spec.outcomes:
     test = tests.get(outcome.column, {})
     adj = adjusted.get(outcome.column)
     adj_text = "" if adj is None or lead_method == "none" else f"; adjusted for multiple outcomes, {p_phrase(adj)}"
+    k = decimals_for(row["std_error"])
+    unit = f" {html.escape(outcome.unit)}" if outcome.unit else ""
     lines.append(
-        f"<li><b>{html.escape(outcome.label)}</b> ({outcome.family}): estimated effect <b>{fmt(row['estimate'])}</b> "
-        f"({level}% CI {fmt(row['ci_low'])} to {fmt(row['ci_high'])}); randomization test "
+        f"<li><b>{html.escape(outcome.label)}</b> ({outcome.family}): estimated effect "
+        f"<b>{fmt_at(row['estimate'], k, sign=True)}{unit}</b> "
+        f"({level}% CI {fmt_at(row['ci_low'], k)} to {fmt_at(row['ci_high'], k)}); randomization test "
         f"{p_phrase(test.get('p_value'))}{adj_text}.</li>")
 if lines:
     callout("<b>Other pre-specified outcomes</b> (other estimators follow under Average effects as checks):"
             "<ul>" + "".join(lines) + "</ul>", "info")
-box = points_box(res.get("points_to_weigh") or [])
-if box:
-    callout(box, "caution")
 
 # %% [markdown]
 # ## Design

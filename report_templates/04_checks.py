@@ -10,6 +10,7 @@ compare_to = ""
 import pandas as pd
 
 from report_kit.report.figures_checks import plot_balance
+from report_kit.report.flow import flow_diagram
 from report_kit.report.view import RunView, fmt_p, p_phrase, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
@@ -49,10 +50,18 @@ else:
 
 # %%
 flow = pd.DataFrame(res.get("flow") or [])
+arm_words = dict(zip(("control", "treated"), view.spec.design.arm_labels))
+if len(flow):
+    lead = next((o for o in view.spec.outcomes if o.family == "primary"), view.spec.outcomes[0])
+    show_figure(view, flow_diagram(res["flow"], lead.column, arm_labels=view.spec.design.arm_labels,
+                                   enrolment=res.get("enrolment"),
+                                   show_received=res.get("compliance") is not None),
+                "participant_flow",
+                caption=f"Participant flow (CONSORT-style stages) for {lead.label}: units at each stage by arm.")
 if len(flow):
     show_table(view, pd.DataFrame({
         "Outcome": [view.label(o) for o in flow["outcome"]],
-        "Arm": flow["arm"],
+        "Arm": [arm_words.get(a, a) for a in flow["arm"]],
         "Randomized": flow["randomized"],
         "Received treatment": flow["received_treatment"],
         "Outcome observed": flow["outcome_observed"],

@@ -61,14 +61,44 @@ def execute_all(run_dir: Path, project_dir: Path, *, compare_to: Path | None = N
     return executed
 
 
+def run_id_of(run_dir: Path) -> str:
+    """The run id as the final folder will be named (the build folder is ``.partial-<id>-<random>``)."""
+    name = Path(run_dir).name
+    if name.startswith(".partial-"):
+        name = name[len(".partial-"):].rsplit("-", 1)[0]
+    return name
+
+
+def stabilise(notebook_path: Path, run_dir: Path) -> None:
+    """Make an executed notebook depend on its inputs and run id only.
+
+    The temporary build folder (``.partial-<id>-<random>``) is replaced by the
+    final run folder wherever papermill recorded it, and papermill's
+    per-run ``input_path``/``output_path`` point into the run folder by name.
+    Start/end times and durations stay: they are the run's time.
+    """
+    run_dir = Path(run_dir)
+    final = str(run_dir.parent / run_id_of(run_dir))
+    text = notebook_path.read_text(encoding="utf-8")
+    stable = text.replace(str(run_dir), final)
+    if stable != text:
+        notebook_path.write_text(stable, encoding="utf-8")
+
+
 def execute_one(template: Path, output: Path, params: dict) -> Path:
-    """Convert one jupytext template to a notebook and execute it with papermill."""
+    """Convert one jupytext template to a notebook and execute it with papermill.
+
+    Cells get stable ids (``<template>-<index>``) so the executed notebook is
+    byte-identical across runs of the same inputs apart from run id and times.
+    """
     import jupytext
     import nbformat
     import papermill
 
     nb = jupytext.read(template, fmt="py:percent")
     nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3", "language": "python"}
+    for i, cell in enumerate(nb.cells):
+        cell["id"] = f"{template.stem}-{i}"
     source = output.with_suffix(".source.ipynb")
     nbformat.write(nb, source)
     try:
@@ -80,6 +110,7 @@ def execute_one(template: Path, output: Path, params: dict) -> Path:
                           f"{err.ename}: {err.evalue}") from err
     finally:
         source.unlink(missing_ok=True)
+    stabilise(output, Path(params["run_dir"]))
     return output
 
 
