@@ -30,6 +30,11 @@ def _box(ax, x: float, y: float, text: str, *, fill: str = _FILL, width: float =
     ax.text(x, y, text, ha="center", va="center", fontsize=7.6, color=INK, linespacing=1.25)
 
 
+def _plain(text: str) -> str:
+    """User text as matplotlib shows it literally (a '$' would start mathtext)."""
+    return str(text).replace("$", r"\$")
+
+
 def _arrow(ax, x0: float, y0: float, x1: float, y1: float) -> None:
     ax.annotate("", xy=(x1, y1), xytext=(x0, y0),
                 arrowprops={"arrowstyle": "-|>", "color": INK, "linewidth": 0.8, "shrinkA": 0, "shrinkB": 0})
@@ -50,7 +55,7 @@ def _enrolment_boxes(ax, enrolment: Mapping | None, randomized: int, top: float)
         excluded = enrolment.get("excluded") or []
         if excluded:
             total = sum(e["n"] for e in excluded)
-            reasons = "\n".join(f"{e['reason']}: {e['n']:,}" for e in excluded[:6])
+            reasons = "\n".join(f"{_plain(e['reason'])}: {e['n']:,}" for e in excluded[:6])
             side_h = _H + 0.028 * min(len(excluded), 6)
             _box(ax, 0.835, y - 0.11, f"Excluded, n = {total:,}\n{reasons}", fill=_SIDE, width=0.3, height=side_h)
             ax.plot([0.5, 0.685], [y - 0.11, y - 0.11], color=INK, linewidth=0.8)
@@ -91,7 +96,7 @@ def flow_diagram(flow: Sequence[Mapping], outcome: str, *, arm_labels: Sequence[
     ax.axis("off")
     randomized = rows["treated"]["randomized"] + rows["control"]["randomized"]
     y = _enrolment_boxes(ax, enrolment, randomized, top)
-    control, treated = arm_labels
+    control, treated = (_plain(a) for a in arm_labels)
     for x, arm, name in ((0.27, "treated", treated), (0.73, "control", control)):
         r = rows[arm]
         ax.plot([0.5, x, x], [y - _H / 2, y - _H / 2 - 0.04, y - _H / 2 - 0.04], color=INK, linewidth=0.8)
