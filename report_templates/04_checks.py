@@ -7,6 +7,8 @@ project_dir = ""
 compare_to = ""
 
 # %%
+import html
+
 import pandas as pd
 
 from report_kit.report.figures_checks import plot_balance
@@ -75,7 +77,7 @@ if len(flow):
 # %%
 att = res.get("attrition")
 if att:
-    lost_if = [view.label(c) for c in att.get("attrited_if_missing", [])]
+    lost_if = [html.escape(view.label(c)) for c in att.get("attrited_if_missing", [])]
     rule = (f"its {lost_if[0].lower()} is missing" if len(lost_if) == 1
             else "any of " + ", ".join(x.lower() for x in lost_if) + " is missing")
     say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of treated and "
