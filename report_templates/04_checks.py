@@ -18,14 +18,15 @@ from report_kit.report.view import RunView, fmt_p, p_phrase, say, show_figure, s
 view = RunView.open(run_dir, project_dir)
 res = view.results
 bal = res.get("balance") or {"covariates": [], "omnibus": {}}
+control_word, treated_word = view.spec.design.arm_labels
 
 # %%
 if bal["covariates"]:
     cov = pd.DataFrame(bal["covariates"])
     show_table(view, pd.DataFrame({
         "Covariate": cov["name"],
-        "Mean, treated": cov["mean_treated"],
-        "Mean, control": cov["mean_control"],
+        f"Mean, {treated_word}": cov["mean_treated"],
+        f"Mean, {control_word}": cov["mean_control"],
         "Std. difference": cov["std_diff"],
         "Variance ratio": cov["variance_ratio"],
         "Missing (T / C)": [f"{a} / {b}" for a, b in zip(cov["missing_treated"], cov["missing_control"])],
@@ -52,7 +53,7 @@ else:
 
 # %%
 flow = pd.DataFrame(res.get("flow") or [])
-arm_words = dict(zip(("control", "treated"), view.spec.design.arm_labels))
+arm_words = {"control": control_word, "treated": treated_word}
 if len(flow):
     lead = next((o for o in view.spec.outcomes if o.family == "primary"), view.spec.outcomes[0])
     show_figure(view, flow_diagram(res["flow"], lead.column, arm_labels=view.spec.design.arm_labels,
@@ -80,8 +81,8 @@ if att:
     lost_if = [html.escape(view.label(c)) for c in att.get("attrited_if_missing", [])]
     rule = (f"its {lost_if[0].lower()} is missing" if len(lost_if) == 1
             else "any of " + ", ".join(x.lower() for x in lost_if) + " is missing")
-    say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of treated and "
-        f"{100 * att['rate_control']:.1f}% of control units (a unit counts as lost when {rule}). "
+    say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of the {html.escape(treated_word)} arm and "
+        f"{100 * att['rate_control']:.1f}% of the {html.escape(control_word)} arm (a unit counts as lost when {rule}). "
         f"Randomization test of equal attrition: {p_phrase(att['p_value'])}.")
     bounds = pd.DataFrame(att.get("bounds") or [])
     if len(bounds):

@@ -73,23 +73,26 @@ def stabilise(notebook_path: Path, run_dir: Path) -> None:
     """Make an executed notebook depend on its inputs and run id only.
 
     The temporary build folder (``.partial-<id>-<random>``) is replaced by the
-    final run folder wherever papermill recorded it, and papermill's
-    per-run ``input_path``/``output_path`` point into the run folder by name.
+    final run folder wherever papermill recorded it (parameters, input and
+    output paths), and every cell gets the id ``<notebook>-<index>``.
     Start/end times and durations stay: they are the run's time.
     """
+    import nbformat
+
     run_dir = Path(run_dir)
     final = str(run_dir.parent / run_id_of(run_dir))
-    text = notebook_path.read_text(encoding="utf-8")
-    stable = text.replace(str(run_dir), final)
-    if stable != text:
-        notebook_path.write_text(stable, encoding="utf-8")
+    text = notebook_path.read_text(encoding="utf-8").replace(str(run_dir), final)
+    nb = nbformat.reads(text, as_version=4)
+    for i, cell in enumerate(nb.cells):   # papermill gives its injected cell a random id
+        cell["id"] = f"{notebook_path.stem}-{i}"
+    nbformat.write(nb, notebook_path)
 
 
 def execute_one(template: Path, output: Path, params: dict) -> Path:
     """Convert one jupytext template to a notebook and execute it with papermill.
 
-    Cells get stable ids (``<template>-<index>``) so the executed notebook is
-    byte-identical across runs of the same inputs apart from run id and times.
+    The executed notebook is then made byte-stable (:func:`stabilise`): identical
+    across runs of the same inputs apart from run id and times.
     """
     import jupytext
     import nbformat
@@ -97,8 +100,6 @@ def execute_one(template: Path, output: Path, params: dict) -> Path:
 
     nb = jupytext.read(template, fmt="py:percent")
     nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3", "language": "python"}
-    for i, cell in enumerate(nb.cells):
-        cell["id"] = f"{template.stem}-{i}"
     source = output.with_suffix(".source.ipynb")
     nbformat.write(nb, source)
     try:

@@ -137,7 +137,7 @@ def table_html(frame: pd.DataFrame, *, caption: str = "", note: str = "", numeri
     cap = f'<p class="rk-tcap">{html.escape(caption)}</p>' if caption else ""
     foot = f'<p class="rk-note">{html.escape(note)}</p>' if note else ""
     table = f'<table class="rk-table"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
-    size = "rk-long" if len(frame) > 4 else "rk-short"   # a longer table may break across pages
+    size = "rk-long" if len(frame) > 3 else "rk-short"   # a longer table may break across pages
     return f'<div class="rk-tablebox {size}">{cap}{table}{foot}</div>'
 
 
