@@ -7,13 +7,10 @@ project_dir = ""
 compare_to = ""
 
 # %%
-import html
-
 import pandas as pd
 
 from report_kit.audit.planlock import plan_deviations
-from report_kit.report.headline import decimals_for, fmt_at, headline_cards, points_box, registration_line
-from report_kit.report.view import RunView, callout, cautions, estimate_role, p_phrase, say, show_table
+from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -21,6 +18,10 @@ spec = view.spec
 d = res["design"]
 
 # %%
+import html
+
+from report_kit.report.headline import decimals_for, fmt_at, headline_cards, points_box, registration_line
+
 if spec.summary:
     say(html.escape(spec.summary.strip()))
 if registration_line(spec):
