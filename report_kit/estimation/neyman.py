@@ -33,10 +33,10 @@ from report_kit.estimation.core import (
     _unadjusted_rules,
     _validate,
 )
+from report_kit.estimation.standardized import FUNDER_KEYS, with_arm_summaries
 from report_kit.estimation.adjustment import estimate_adjusted
 from report_kit.errors import DesignError, ReportKitWarning
 from report_kit.estimation.noncompliance import WEAK_FIRST_STAGE_F, Noncompliance, estimate_noncompliance  # noqa: F401
-from report_kit.estimation.standardized import blocks_left_out, standardized_effect
 from report_kit.estimation.subgroups import SubgroupDifference, SubgroupResult, estimate_subgroups
 
 __all__ = [
@@ -60,9 +60,6 @@ ESTIMATE_KEYS = (
     "outcome", "estimand", "estimator", "subgroup", "estimate", "std_error",
     "ci_low", "ci_high", "df", "n_treated", "n_control", "method",
 )
-#: Added to every row (null on CACE rows): the arm means, the effect in SD units and
-#: the blocks the estimate left out (null for designs without blocks).
-FUNDER_KEYS = ("mean_treated", "mean_control", "std_effect", "std_effect_method", "blocks_left_out")
 
 
 # ---------------------------------------------------------------------------
@@ -138,7 +135,9 @@ def study_estimates(study) -> list[dict]:
     ``"ATE"``, and one ``"ITT"`` row on take-up (outcome = the received column,
     all units with observed take-up) follows the outcomes. Then one
     ``"subgroup ATE"`` row per outcome, subgroup variable and level
-    (``subgroup = "col=value"``). Each dict has exactly :data:`ESTIMATE_KEYS`.
+    (``subgroup = "col=value"``). Each dict has exactly :data:`ESTIMATE_KEYS`
+    followed by :data:`FUNDER_KEYS` (arm means, effect in SD units, blocks left
+    out; see :func:`report_kit.estimation.standardized.with_arm_summaries`).
     """
     spec = study.spec
     kw = _study_design(study)
@@ -148,44 +147,27 @@ def study_estimates(study) -> list[dict]:
     covariates = spec.analysis.covariates if spec.analysis.adjust else ()
     X = study.frame[list(covariates)].to_numpy(dtype=float) if covariates else None
     rows: list[dict] = []
-    every = np.ones(z.size, dtype=bool)
     for outcome in spec.outcomes:
         y = study.outcome(outcome.column)
-        arms = _arm_summary(study, y, every)
-        rows += [_row(outcome.column, est, effect, arms=arms) for est in estimate_effects(y, z, **kw)]
+        rows += [_row(outcome.column, est, effect) for est in estimate_effects(y, z, **kw)]
         if X is not None:
             _check_covariates(study, outcome.column, covariates, y, X)
             adjusted = _adjusted_or_note(outcome.column, y, z, X, kw)
             if adjusted is not None:
-                rows.append(_row(outcome.column, adjusted, effect, arms=arms))
+                rows.append(_row(outcome.column, adjusted, effect))
         if compliance is not None:
             d = study.frame[compliance.received].to_numpy(dtype=float)
             cace = estimate_noncompliance(y, z, d, **kw).cace
             rows.append(_row(outcome.column, cace, "CACE"))
     if compliance is not None:
-        d = study.frame[compliance.received].to_numpy(dtype=float)
-        rows.append(_row(compliance.received, _takeup(study, compliance.received, kw), "ITT",
-                         arms=_arm_summary(study, d, every)))
+        rows.append(_row(compliance.received, _takeup(study, compliance.received, kw), "ITT"))
     for column in spec.subgroups:
         g = study.frame[column].to_numpy(dtype=object)
         for outcome in spec.outcomes:
-            y = study.outcome(outcome.column)
-            result = estimate_subgroups(y, z, g, **kw)
-            rows += [_row(outcome.column, est, "subgroup ATE", subgroup=f"{column}={level}",
-                          arms=_arm_summary(study, y, _level_mask(g, level)))
+            result = estimate_subgroups(study.outcome(outcome.column), z, g, **kw)
+            rows += [_row(outcome.column, est, "subgroup ATE", subgroup=f"{column}={level}")
                      for level, est in zip(result.levels, result.estimates)]
-    return rows
-
-
-def _level_mask(g: np.ndarray, level) -> np.ndarray:
-    return np.array([v == level for v in g.tolist()], dtype=bool)
-
-
-def _arm_summary(study, y: np.ndarray, mask: np.ndarray):
-    """``(y, z, blocks left out)`` of the units in ``mask``, for :func:`_row`."""
-    block = study.block if study.spec.design.mechanism in BLOCKED else None
-    left = None if block is None else blocks_left_out(y[mask], study.z[mask], block[mask])
-    return y[mask], study.z[mask], left, study.spec.analysis.std_effect
+    return with_arm_summaries(study, rows)
 
 
 def study_subgroup_differences(study) -> list[dict]:
@@ -251,18 +233,11 @@ def _check_covariates(study, outcome, covariates, y, X) -> None:
                           "baseline covariates")
 
 
-def _row(outcome: str, est: Estimate, estimand: str, *, subgroup: str | None = None,
-         arms: tuple | None = None) -> dict:
+def _row(outcome: str, est: Estimate, estimand: str, *, subgroup: str | None = None) -> dict:
     values = est.to_dict()
     row = {"outcome": outcome, "estimand": estimand, "estimator": est.estimator,
            "subgroup": subgroup}
     row.update({key: values[key] for key in ESTIMATE_KEYS if key not in row})
-    row.update(dict.fromkeys(FUNDER_KEYS))
-    if arms is not None:
-        y, z, left, method = arms
-        std = standardized_effect(values["estimate"], y, z, method=method)
-        row.update(mean_treated=std.mean_treated, mean_control=std.mean_control, std_effect=std.std_effect,
-                   std_effect_method=std.std_effect_method, blocks_left_out=left)
     return row
 
 

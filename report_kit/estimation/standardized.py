@@ -16,10 +16,15 @@ import numpy as np
 from scipy import special
 
 from report_kit.errors import UsageError
+from report_kit.estimation.core import BLOCKED
 from report_kit.validate import finite_or_none
 
-__all__ = ["STD_EFFECT_METHODS", "StandardizedEffect", "hedges_correction", "standardized_effect",
-           "blocks_left_out"]
+__all__ = ["FUNDER_KEYS", "STD_EFFECT_METHODS", "StandardizedEffect", "hedges_correction", "standardized_effect",
+           "blocks_left_out", "with_arm_summaries"]
+
+#: Added to every ``estimates`` row (null on CACE rows): the arm means, the effect in SD
+#: units and the blocks the estimate left out (null for designs without blocks).
+FUNDER_KEYS = ("mean_treated", "mean_control", "std_effect", "std_effect_method", "blocks_left_out")
 
 #: The denominators on offer; ``hedges_g`` is the report's default (common practice in
 #: education funding).
@@ -134,3 +139,36 @@ def blocks_left_out(y, z, block) -> int:
         arm = z[keep & (block == label)]
         left += int(arm.all() or not arm.any())
     return left
+
+
+def _subgroup_mask(frame, subgroup: str | None) -> np.ndarray:
+    """Units of the subgroup ``"col=value"`` (as the estimates list writes it); all units for None."""
+    if subgroup is None:
+        return np.ones(len(frame), dtype=bool)
+    column, _, level = subgroup.partition("=")
+    return np.array([f"{v}" == level for v in frame[column].tolist()], dtype=bool)
+
+
+def with_arm_summaries(study, rows: list[dict]) -> list[dict]:
+    """The ``estimates`` rows with :data:`FUNDER_KEYS` added (a new list; rows are copied).
+
+    For every row except CACE: the arm means of the row's outcome (the take-up
+    column for the take-up row) over the units of its subgroup, the row's
+    estimate in SD units by ``analysis.std_effect`` (:func:`standardized_effect`)
+    and, for designs with blocks, :func:`blocks_left_out` over the same units.
+    """
+    spec = study.spec
+    z = study.z
+    block = study.block if spec.design.mechanism in BLOCKED else None
+    out = []
+    for row in rows:
+        row = {**row, **dict.fromkeys(FUNDER_KEYS)}
+        if row["estimand"] != "CACE":
+            mask = _subgroup_mask(study.frame, row["subgroup"])
+            y = study.frame[row["outcome"]].to_numpy(dtype=float)[mask]
+            std = standardized_effect(row["estimate"], y, z[mask], method=spec.analysis.std_effect)
+            row.update(mean_treated=std.mean_treated, mean_control=std.mean_control, std_effect=std.std_effect,
+                       std_effect_method=std.std_effect_method,
+                       blocks_left_out=None if block is None else blocks_left_out(y, z[mask], block[mask]))
+        out.append(row)
+    return out
