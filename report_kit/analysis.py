@@ -84,12 +84,8 @@ def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]
     return arrays
 
 
-def analyse(study: Study, *, assignment_check: str = "not_checked", plan: dict | None = None) -> Analysis:
-    """Run every analysis step on a validated study and return the results.
-
-    ``plan`` is the plan-lock status (``report_kit.audit.planlock.plan_deviations``)
-    that the points to weigh quote; None leaves the plan out of them.
-    """
+def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
+    """Run every analysis step on a validated study and return the results."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ReportKitWarning)
         results, arrays = _sections(study, assignment_check)
@@ -98,26 +94,7 @@ def analyse(study: Study, *, assignment_check: str = "not_checked", plan: dict |
         log.warning("%s", note)
     results["notes"] = notes
     results["enrolment"] = enrolment_summary(study)
-    results["points_to_weigh"] = study_points(study, results, plan)
     return Analysis(results=results, arrays=arrays)
-
-
-def enrolment_summary(study: Study) -> dict | None:
-    """The ``enrolment`` section: counts before randomization declared in the spec, or None."""
-    e = study.spec.enrolment
-    if e is None:
-        return None
-    return {"assessed": e.assessed, "randomized": e.randomized,
-            "excluded": [{"reason": reason, "n": n} for reason, n in e.excluded]}
-
-
-def study_points(study: Study, results: dict, plan: dict | None) -> list[dict]:
-    """The ``points_to_weigh`` list for a study's finished results."""
-    labels = {o.column: o.label for o in study.spec.outcomes}
-    enrolment = study.spec.enrolment
-    return points_to_weigh(results, alpha=study.spec.analysis.alpha, label=lambda c: labels.get(c, c),
-                           arm_labels=study.spec.design.arm_labels, plan=plan,
-                           enrolled=None if enrolment is None else enrolment.randomized)
 
 
 def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
@@ -150,3 +127,28 @@ def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
         "inputs": [f.to_dict() for f in study.inputs],
     }
     return results, plot_arrays(study, rand)
+
+
+def enrolment_summary(study: Study) -> dict | None:
+    """The ``enrolment`` section: counts before randomization declared in the spec, or None."""
+    e = study.spec.enrolment
+    if e is None:
+        return None
+    return {"assessed": e.assessed, "randomized": e.randomized,
+            "excluded": [{"reason": reason, "n": n} for reason, n in e.excluded]}
+
+
+def add_points_to_weigh(study: Study, results: dict, *, plan: dict | None = None) -> dict:
+    """Add the ``points_to_weigh`` list to finished results (in place) and return them.
+
+    ``plan`` is the plan-lock status of the project folder
+    (``report_kit.audit.planlock.plan_deviations``), which the recipe that
+    knows the folder passes in; None leaves the plan out of the points.
+    """
+    labels = {o.column: o.label for o in study.spec.outcomes}
+    enrolment = study.spec.enrolment
+    results["points_to_weigh"] = points_to_weigh(
+        results, alpha=study.spec.analysis.alpha, label=lambda c: labels.get(c, c),
+        arm_labels=study.spec.design.arm_labels, plan=plan,
+        enrolled=None if enrolment is None else enrolment.randomized)
+    return results

@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from report_kit.audit import provenance
-from report_kit.analysis import Analysis, analyse
+from report_kit.analysis import Analysis, add_points_to_weigh, analyse
 from report_kit.inputs.data import load_study
 from report_kit.errors import SpecError, UsageError
 from report_kit.inputs.model import Study
@@ -81,8 +81,9 @@ def run_analysis(study: Study) -> Analysis:
     from report_kit.audit.planlock import plan_deviations
     from report_kit.design.assignment import assignment_check_status
 
-    return analyse(study, assignment_check=assignment_check_status(study),
-                   plan=plan_deviations(study.spec.project_dir))
+    result = analyse(study, assignment_check=assignment_check_status(study))
+    add_points_to_weigh(study, result.results, plan=plan_deviations(study.spec.project_dir))
+    return result
 
 
 def make_run_id(study: Study, now: datetime) -> str:
