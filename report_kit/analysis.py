@@ -18,7 +18,6 @@ import numpy as np
 
 from report_kit.checks.attrition import study_attrition
 from report_kit.checks.balance import participant_flow, study_balance
-from report_kit.checks.points import points_to_weigh
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inputs.model import Study
@@ -145,6 +144,8 @@ def add_points_to_weigh(study: Study, results: dict, *, plan: dict | None = None
     (``report_kit.audit.planlock.plan_deviations``), which the recipe that
     knows the folder passes in; None leaves the plan out of the points.
     """
+    from report_kit.checks.points import points_to_weigh
+
     labels = {o.column: o.label for o in study.spec.outcomes}
     enrolment = study.spec.enrolment
     results["points_to_weigh"] = points_to_weigh(
