@@ -43,10 +43,12 @@ _PUBLIC = {
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",
     "estimate_subgroups": "estimation.subgroups", "rerandomized_interval": "estimation.rerandomized",
+    "standardized_effect": "estimation.standardized",
     # checks
     "covariate_balance": "checks.balance", "mahalanobis_balance_test": "checks.balance",
     "participant_flow": "checks.flow",
     "lee_bounds": "checks.attrition", "manski_bounds": "checks.attrition", "attrition_test": "checks.attrition",
+    "points_to_weigh": "checks.points",
     # planning
     "mde": "planning.power", "simulated_power": "planning.power", "plan_power": "planning.plan",
     # the recipe and the audit trail

@@ -60,6 +60,7 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
         "n_assignments": None if rand is None else rand.n_assignments,
         "n_assignments_log10": None if mechanism is None else round(mechanism.log10_count(), 6),
         "assignment_check": assignment_check,
+        "arm_labels": dict(zip(("control", "treated"), study.spec.design.arm_labels)),
         "inference_method": None if rand is None else rand.method,
         "draws": None if rand is None else int(rand.draws),
     }
@@ -117,6 +118,7 @@ def analyse(study: Study, *, assignment_check: str = "not_checked", chunk_map: C
     for note in notes:
         log.warning("%s", note)
     results["notes"] = notes
+    results["enrolment"] = enrolment_summary(study)
     return Analysis(results=results, arrays=arrays)
 
 
@@ -159,3 +161,30 @@ def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -
     if study.spec.design.rerandomization is not None:
         results["rerandomization_intervals"] = study_rerandomized_intervals(study)
     return results, plot_arrays(study, rand)
+
+
+def enrolment_summary(study: Study) -> dict | None:
+    """The ``enrolment`` section: counts before randomization declared in the spec, or None."""
+    e = study.spec.enrolment
+    if e is None:
+        return None
+    return {"assessed": e.assessed, "randomized": e.randomized,
+            "excluded": [{"reason": reason, "n": n} for reason, n in e.excluded]}
+
+
+def add_points_to_weigh(study: Study, results: dict, *, plan: dict | None = None) -> dict:
+    """Add the ``points_to_weigh`` list to finished results (in place) and return them.
+
+    ``plan`` is the plan-lock status of the project folder
+    (``report_kit.audit.planlock.plan_deviations``), which the recipe that
+    knows the folder passes in; None leaves the plan out of the points.
+    """
+    from report_kit.checks.points import points_to_weigh
+
+    labels = {o.column: o.label for o in study.spec.outcomes}
+    enrolment = study.spec.enrolment
+    results["points_to_weigh"] = points_to_weigh(
+        results, alpha=study.spec.analysis.alpha, label=lambda c: labels.get(c, c),
+        arm_labels=study.spec.design.arm_labels, plan=plan,
+        enrolled=None if enrolment is None else enrolment.randomized)
+    return results

@@ -196,11 +196,13 @@ def verify(target: Path) -> None:
 @main.command(short_help="Zip a run with its inputs, manifest, RO-Crate and checksums.")
 @click.argument("run_dir", type=click.Path(path_type=Path))
 @click.option("-o", "--output", type=click.Path(path_type=Path), help="Zip file to write (default: beside the run).")
-def archive(run_dir: Path, output: Path | None) -> None:
+@click.option("--with-compared/--without-compared", "with_compared", default=None,
+              help="Include the run this run was compared with (default: when it was compared).")
+def archive(run_dir: Path, output: Path | None, with_compared: bool | None) -> None:
     """One .zip with design.yaml, the inputs, the run folder, manifest, RO-Crate and checksums."""
     from report_kit.audit.archive import archive_run
 
-    click.echo(f"archived: {archive_run(run_dir, output)}")
+    click.echo(f"archived: {archive_run(run_dir, output, with_compared=with_compared)}")
 
 
 @main.command(short_help="Freeze design.yaml as the plan (design.lock).")

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from report_kit.audit import provenance
-from report_kit.analysis import Analysis, analyse
+from report_kit.analysis import Analysis, add_points_to_weigh, analyse
 from report_kit.inputs.data import load_study
 from report_kit.errors import SpecError, UsageError
 from report_kit.inputs.model import Study
@@ -79,12 +79,14 @@ def analyse_project(project: Path | str) -> dict:
 
 
 def run_analysis(study: Study) -> Analysis:
-    """The deterministic analysis step (the assignment check included)."""
+    """The deterministic analysis step (the assignment check and the plan-lock status included)."""
     from report_kit.audit.planlock import plan_deviations
     from report_kit.design.assignment import assignment_check_status
 
     result = analyse(study, assignment_check=assignment_check_status(study))
-    result.results["plan"] = plan_deviations(study.spec.project_dir)
+    plan = plan_deviations(study.spec.project_dir)
+    result.results["plan"] = plan
+    add_points_to_weigh(study, result.results, plan=plan)
     return result
 
 
@@ -171,7 +173,7 @@ def _build_run(study: Study, options: RunOptions, started: datetime, runs: Path,
             id_column=study.spec.data.id,
             seeds={"design": study.spec.design.seed, "analysis": study.spec.analysis.seed},
             argv=tuple(options.argv), started=_iso(started), ended=_iso(datetime.now(timezone.utc)),
-            renderer=options.renderer,
+            renderer=options.renderer, compared_to=compared_record(options.compare_to),
         )
         provenance.write_manifest(tmp, record)
         provenance.write_ro_crate(tmp, record)
@@ -206,6 +208,14 @@ def copy_inputs(study: Study, run_dir: Path) -> None:
         target = dest / f.path
         target.parent.mkdir(parents=True, exist_ok=True)
         shutil.copy2(study.spec.project_dir / f.path, target)
+
+
+def compared_record(run_dir: Path | None) -> dict | None:
+    """What the manifest records of the run compared with: its id and the SHA-256 of its results."""
+    if run_dir is None:
+        return None
+    run_dir = Path(run_dir).resolve()
+    return {"run_id": run_dir.name, "results_sha256": provenance.sha256_file(run_dir / "results.json")}
 
 
 def _check_previous_run(run_dir: Path) -> None:

@@ -8,7 +8,10 @@ project_dir = ""
 # %%
 import pandas as pd
 
-from report_kit.report import RunView, callout, cautions, esc, fmt, fmt_count, p_phrase, say, show_table
+from report_kit.report import (
+    RunView, callout, cautions, decimals_for, esc, fmt, fmt_at, fmt_count, headline_cards, p_phrase, points_box,
+    registration_line, say, show_table,
+)
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -18,6 +21,8 @@ d = res["design"]
 # %%
 if spec.summary:
     say(esc(spec.summary.strip()))
+if registration_line(spec):
+    callout(registration_line(spec), "info")
 callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(view.plan)) + "</ul>", "caution")
 
 # %% [markdown]
@@ -28,19 +33,35 @@ level = view.level
 tests = {t["outcome"]: t for t in res.get("tests") or []}
 lead_method = spec.analysis.multiplicity
 adjusted = {m["outcome"]: m["p_adjusted"] for m in res.get("multiplicity") or [] if m.get("lead")}
+lead_rows = {}
+for row in res["estimates"]:  # the pre-specified estimate of each outcome, as the analysis stored it
+    if row.get("role") == "lead" and row["estimand"] in ("ATE", "ITT") and not row["subgroup"]:
+        lead_rows.setdefault(row["outcome"], row)
+cards = headline_cards(res, spec, lead_rows=lead_rows)
+if cards:
+    callout("<b>Primary outcomes</b> (the design-based estimate the design implies; the effect is "
+            f"{esc(spec.design.arm_labels[1])} minus {esc(spec.design.arm_labels[0])}):" + cards, "info")
+box = points_box(res.get("points_to_weigh") or [])
+if box:
+    callout(box, "caution")
 lines = []
-for _, row in view.lead_estimates().iterrows():
-    outcome = next(o for o in spec.outcomes if o.column == row["outcome"])
-    test = tests.get(row["outcome"], {})
-    adj = adjusted.get(row["outcome"])
+for outcome in spec.outcomes:
+    row = lead_rows.get(outcome.column)
+    if row is None or outcome.family == "primary":
+        continue
+    test = tests.get(outcome.column, {})
+    adj = adjusted.get(outcome.column)
     adj_text = "" if adj is None or lead_method == "none" else f"; adjusted for multiple outcomes, {p_phrase(adj)}"
+    k = decimals_for(row["std_error"])
+    unit = f" {esc(outcome.unit)}" if outcome.unit else ""
     lines.append(
-        f"<li><b>{esc(outcome.label)}</b> ({esc(outcome.family)}): estimated effect <b>{fmt(row['estimate'])}</b> "
-        f"({level}% CI {fmt(row['ci_low'])} to {fmt(row['ci_high'])}); randomization test "
+        f"<li><b>{esc(outcome.label)}</b> ({esc(outcome.family)}): estimated effect "
+        f"<b>{fmt_at(row['estimate'], k, sign=True)}{unit}</b> "
+        f"({level}% CI {fmt_at(row['ci_low'], k)} to {fmt_at(row['ci_high'], k)}); randomization test "
         f"{p_phrase(test.get('p_value'))}{adj_text}.</li>")
 if lines:
-    callout("<b>Pre-specified estimate for each outcome</b> (the design-based estimator the design implies; "
-            "other estimators follow under Average effects as checks):<ul>" + "".join(lines) + "</ul>", "info")
+    callout("<b>Other pre-specified outcomes</b> (other estimators follow under Average effects as checks):"
+            "<ul>" + "".join(lines) + "</ul>", "info")
 
 # %% [markdown]
 # ## Design

@@ -81,8 +81,9 @@ if len(main):
 comp = res.get("compliance")
 if comp:
     say("### Take-up and the effect on compliers\n\n"
-        f"Of the units assigned to treatment, {100 * comp['rate_treated']:.1f}% received it "
-        f"(column <code>{esc(comp['received'])}</code>); of the controls, {100 * comp['rate_control']:.1f}% did. "
+        f"Of the units assigned to the {esc(view.spec.design.arm_labels[1])} arm, "
+        f"{100 * comp['rate_treated']:.1f}% received the treatment (column <code>{esc(comp['received'])}</code>); of the "
+        f"{esc(view.spec.design.arm_labels[0])} arm, {100 * comp['rate_control']:.1f}% did. "
         "The effect of assignment (ITT) is the policy-relevant effect of offering the programme. "
         "The complier average causal effect (CACE) scales it by the difference in take-up: the average effect "
         "of receiving the programme for units that take it when offered and only then. It assumes that "

@@ -9,19 +9,20 @@ project_dir = ""
 
 import pandas as pd
 
-from report_kit.report import RunView, esc, fmt_p, p_phrase, plot_balance, say, show_figure, show_table
+from report_kit.report import RunView, esc, flow_diagram, fmt_p, p_phrase, plot_balance, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
 bal = res.get("balance") or {"covariates": [], "omnibus": {}}
+control_word, treated_word = view.spec.design.arm_labels
 
 # %%
 if bal["covariates"]:
     cov = pd.DataFrame(bal["covariates"])
     show_table(view, pd.DataFrame({
         "Covariate": cov["name"],
-        "Mean, treated": cov["mean_treated"],
-        "Mean, control": cov["mean_control"],
+        f"Mean, {treated_word}": cov["mean_treated"],
+        f"Mean, {control_word}": cov["mean_control"],
         "Std. difference": cov["std_diff"],
         "Variance ratio": cov["variance_ratio"],
         "Missing (T / C)": [f"{a} / {b}" for a, b in zip(cov["missing_treated"], cov["missing_control"])],
@@ -48,10 +49,18 @@ else:
 
 # %%
 flow = pd.DataFrame(res.get("flow") or [])
+arm_words = {"control": control_word, "treated": treated_word}
+if len(flow):
+    lead = next((o for o in view.spec.outcomes if o.family == "primary"), view.spec.outcomes[0])
+    show_figure(view, flow_diagram(res["flow"], lead.column, arm_labels=view.spec.design.arm_labels,
+                                   enrolment=res.get("enrolment"),
+                                   show_received=res.get("compliance") is not None),
+                "participant_flow",
+                caption=f"Participant flow (CONSORT-style stages) for {lead.label}: units at each stage by arm.")
 if len(flow):
     show_table(view, pd.DataFrame({
         "Outcome": [view.label(o) for o in flow["outcome"]],
-        "Arm": flow["arm"],
+        "Arm": [arm_words.get(a, a) for a in flow["arm"]],
         "Randomized": flow["randomized"],
         "Received treatment": flow["received_treatment"],
         "Outcome observed": flow["outcome_observed"],
@@ -68,8 +77,8 @@ if att:
     lost_if = [esc(view.label(c)) for c in att.get("attrited_if_missing", [])]
     rule = (f"its outcome “{lost_if[0]}” is missing" if len(lost_if) == 1  # user labels kept as written
             else "any of " + ", ".join(f"“{x}”" for x in lost_if) + " is missing")
-    say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of treated and "
-        f"{100 * att['rate_control']:.1f}% of control units (a unit counts as lost when {rule}). "
+    say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of the {esc(treated_word)} arm and "
+        f"{100 * att['rate_control']:.1f}% of the {esc(control_word)} arm (a unit counts as lost when {rule}). "
         f"Randomization test of equal attrition: {p_phrase(att['p_value'])}.")
     bounds = pd.DataFrame(att.get("bounds") or [])
     if len(bounds):

@@ -68,7 +68,42 @@ def _source_of(run_dir: Path, project_dir: Path, rel: str, sha: str | None) -> P
         f"and {project_dir / rel} is missing or has changed since the run")
 
 
-def _members(run_dir: Path) -> list[tuple[str, Path]]:
+def compared_run_of(run_dir: Path, manifest: dict) -> Path | None:
+    """The run folder this run was compared with (recorded in its manifest), when it exists beside it."""
+    compared = manifest.get("compared_to")
+    if not isinstance(compared, dict) or not isinstance(compared.get("run_id"), str):
+        return None
+    check_relative_path(compared["run_id"], what="compared run id")
+    candidate = run_dir.parent / compared["run_id"]
+    return candidate if (candidate / RESULTS_NAME).is_file() else None
+
+
+def _run_members(run_dir: Path) -> list[tuple[str, Path]]:
+    return [(f"runs/{run_dir.name}/{path.relative_to(run_dir).as_posix()}", path)
+            for path in sorted(run_dir.rglob("*")) if path.is_file()]
+
+
+def _compared_members(run_dir: Path, manifest: dict, with_compared: bool | None) -> list[tuple[str, Path]]:
+    if with_compared is False:
+        return []
+    recorded = manifest.get("compared_to")
+    compared = compared_run_of(run_dir, manifest)
+    if recorded and compared is None:
+        if with_compared:
+            raise VerificationError(f"cannot archive with the compared run: {run_dir.parent / recorded['run_id']} "
+                                    "is missing (it was compared with this run)")
+        return []
+    if compared is None:
+        if with_compared:
+            raise UsageError(f"{run_dir}: --with-compared, but this run was not compared with another run")
+        return []
+    if sha256_file(compared / RESULTS_NAME) != recorded.get("results_sha256"):
+        raise VerificationError(f"cannot archive with the compared run: {compared / RESULTS_NAME} has changed "
+                                "since it was compared (SHA-256 differs from the one recorded)")
+    return _run_members(compared)
+
+
+def _members(run_dir: Path, with_compared: bool | None = None) -> list[tuple[str, Path]]:
     """(path inside <project>/, source file) for every member except the checksums file."""
     manifest = load_json_file(run_dir / MANIFEST_NAME, what="manifest")
     project_dir = run_dir.parent.parent
@@ -81,10 +116,8 @@ def _members(run_dir: Path) -> list[tuple[str, Path]]:
     lock = next((p for p in (run_dir / INPUTS_DIR / LOCK_NAME, project_dir / LOCK_NAME) if p.is_file()), None)
     if lock is not None:
         members.append((LOCK_NAME, lock))
-    run_id = run_dir.name
-    for path in sorted(run_dir.rglob("*")):
-        if path.is_file():
-            members.append((f"runs/{run_id}/{path.relative_to(run_dir).as_posix()}", path))
+    members += _run_members(run_dir)
+    members += _compared_members(run_dir, manifest, with_compared)
     names = [m[0] for m in members]
     clash = sorted({n for n in names if names.count(n) > 1})
     if clash or CHECKSUMS_NAME in names:
@@ -105,8 +138,14 @@ def _project_name(run_dir: Path) -> str:
     return name if name and name not in (".", "..") else "project"
 
 
-def archive_run(run_dir: Path | str, out: Path | str | None = None) -> Path:
+def archive_run(run_dir: Path | str, out: Path | str | None = None, *, with_compared: bool | None = None) -> Path:
     """Write one zip holding the run, its inputs, manifest, RO-Crate and checksums.
+
+    ``with_compared``: include the run this run was compared with (recorded in
+    the manifest) as a second folder under ``runs/``, so the changes section can
+    be re-derived from the zip alone. None (default) includes it when it was
+    compared and the compared run is still beside it; True requires it; False
+    leaves it out.
 
     ``out`` defaults to ``<project>/<project>-<run-id>.zip`` beside
     ``design.yaml``. Inputs are taken from the run's copies under ``inputs/``
@@ -126,7 +165,9 @@ def archive_run(run_dir: Path | str, out: Path | str | None = None) -> Path:
                          "data/ holds the inputs and report-kit never writes there — choose another folder")
     if not out.parent.is_dir():
         raise UsageError(f"cannot write {out}: folder {out.parent} does not exist")
-    members = _members(run_dir)
+    if with_compared is not None and not isinstance(with_compared, bool):
+        raise UsageError(f"`with_compared` must be True, False or None; got {with_compared!r}")
+    members = _members(run_dir, with_compared)
     project_dir = run_dir.parent.parent
     if any(out.resolve() == (project_dir / name).resolve() for name, _ in members):
         raise UsageError(f"the archive cannot replace an input of the run: {out}; choose another file name")
@@ -205,10 +246,13 @@ def _find_run(root: Path, zip_path: Path) -> Path:
     runs = root / "runs"
     found = sorted(p for p in runs.iterdir() if p.is_dir() and (p / RESULTS_NAME).is_file()
                    and (p / MANIFEST_NAME).is_file()) if runs.is_dir() else []
-    if len(found) != 1:
+    compared = {(load_json_file(p / MANIFEST_NAME, what="manifest").get("compared_to") or {}).get("run_id")
+                for p in found}
+    main = [p for p in found if p.name not in compared]
+    if len(main) != 1:
         raise ArchiveError(f"{zip_path}: not a report-kit archive (expected exactly one run folder "
-                         f"under <project>/runs/; found {len(found)})")
-    return found[0]
+                         f"under <project>/runs/; found {len(main)}, besides any run it was compared with)")
+    return main[0]
 
 
 def _extract_one(zf: zipfile.ZipFile, info: zipfile.ZipInfo, target: Path, budget: int) -> int:

@@ -15,7 +15,7 @@ from pathlib import Path
 import yaml
 
 from report_kit.errors import SpecError, UsageError
-from report_kit.audit.provenance import load_json_file, sha256_bytes, utc_now, write_json
+from report_kit.audit.provenance import load_json_file, sha256_bytes, sha256_file, utc_now, write_json
 from report_kit.inputs.spec import SPEC_FILENAME
 
 __all__ = ["LOCK_NAME", "lock_plan", "plan_deviations", "diff_specs", "format_deviations_text"]
@@ -103,8 +103,26 @@ def lock_plan(project_dir: Path | str, *, force: bool = False) -> Path:
         "runs_before_lock": _runs_so_far(project),
         "design": content,
         "design_text": text,
+        "inputs": data_fingerprints(project, content),
     })
     return lock
+
+
+def data_fingerprints(project: Path, spec: dict) -> dict[str, str]:
+    """SHA-256 of each data table the spec names (``data.units``, ``data.merge``) that exists now."""
+    data = spec.get("data") if isinstance(spec.get("data"), dict) else {}
+    paths = [data.get("units")] + list(data.get("merge") or [])
+    return {rel: sha256_file(project / rel) for rel in paths
+            if isinstance(rel, str) and (project / rel).is_file()}
+
+
+def _data_changed(project: Path, lock: dict, current: dict) -> list[str] | None:
+    """Data tables added, removed or changed since the lock; None for a lock without fingerprints."""
+    before = lock.get("inputs")
+    if not isinstance(before, dict):
+        return None
+    now = data_fingerprints(project, current)
+    return sorted(rel for rel in set(before) | set(now) if before.get(rel) != now.get(rel))
 
 
 def _read_lock(lock: Path) -> dict:
@@ -134,7 +152,7 @@ def plan_deviations(project_dir: Path | str) -> dict:
     if not lock_path.is_file():
         return {"locked": False, "locked_sha256": None, "locked_at": None,
                 "current_sha256": sha256_bytes(data), "text_changed": None, "lock_intact": None,
-                "runs_before_lock": [], "changes": []}
+                "runs_before_lock": [], "changes": [], "data_changed": None}
     lock = _read_lock(lock_path)
     locked_text = lock["design_text"]
     locked = _parse(locked_text, f"{lock_path} (locked design.yaml)")
@@ -147,6 +165,7 @@ def plan_deviations(project_dir: Path | str) -> dict:
         "lock_intact": sha256_bytes(locked_text.encode("utf-8")) == lock["design_sha256"],
         "runs_before_lock": list(lock.get("runs_before_lock") or []),
         "changes": diff_specs(locked, current),
+        "data_changed": _data_changed(project, lock, current),
     }
 
 

@@ -348,6 +348,7 @@ class RunRecord:
     started: str
     ended: str
     renderer: str
+    compared_to: dict | None = None     # {run_id, results_sha256} of the run compared with, if any
 
 
 def _validate_record(run_dir: Path | str, record: RunRecord) -> Path:
@@ -398,6 +399,7 @@ def build_manifest(run_dir: Path | str, record: RunRecord) -> dict:
         "ended": record.ended,
         "command": list(record.argv),
         "renderer": record.renderer,
+        "compared_to": None if record.compared_to is None else dict(record.compared_to),
         "tool": {"name": "report-kit", "version": _version_or_none("report-kit"), **_tool_git()},
         "project": {"name": project_dir.name, "git_commit": git_commit(project_dir)},
         "python": _python(),

@@ -29,7 +29,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from report_kit.validate import tolerance
-from report_kit.audit.archive import safe_extract, verify_checksums
+from report_kit.audit.archive import compared_run_of, safe_extract, verify_checksums
 from report_kit.audit.compare import CHANGES_NAME, compare_runs, diff_results
 from report_kit.errors import ReportKitError, UsageError
 from report_kit.audit.planlock import LOCK_NAME
@@ -119,7 +119,37 @@ def _verify_zip(zip_path: Path, analyse: Analyse, rel_tol: float, abs_tol: float
     with tempfile.TemporaryDirectory(prefix="report-kit-verify-") as tmp:
         run_dir = safe_extract(zip_path, Path(tmp) / "archive")
         problems = tuple({"where": "archive", **p} for p in verify_checksums(run_dir.parent.parent))
+        problems += tuple(compared_run_problems(run_dir))
         return _verify_dir(run_dir, analyse, rel_tol, abs_tol, target=str(zip_path), extra=problems)
+
+
+def compared_run_problems(run_dir: Path) -> list[dict]:
+    """Problems with the run this run was compared with, as an archive must hold it.
+
+    Nothing when the run was not compared. Otherwise the compared run must be
+    beside it with the ``results.json`` recorded at comparison time, and the
+    changes between the two runs must be derivable (``compare_runs``).
+    """
+    manifest = load_json_file(run_dir / MANIFEST_NAME, what="manifest")
+    recorded = manifest.get("compared_to")
+    if not isinstance(recorded, dict):
+        return []
+    where = f"runs/{recorded.get('run_id')}"
+    expected = recorded.get("results_sha256")
+    compared = compared_run_of(run_dir, manifest)
+    if compared is None:
+        return [{"where": "compared run", "path": where, "problem": "missing: the changes since the compared run "
+                 "cannot be re-derived", "expected_sha256": expected, "actual_sha256": None}]
+    actual = sha256_file(compared / RESULTS_NAME)
+    if actual != expected:
+        return [{"where": "compared run", "path": f"{where}/{RESULTS_NAME}", "problem": "differs from the run "
+                 "that was compared", "expected_sha256": expected, "actual_sha256": actual}]
+    try:
+        compare_runs(compared, run_dir)
+    except ReportKitError as err:
+        return [{"where": "compared run", "path": where, "problem": f"changes cannot be re-derived: {err}",
+                 "expected_sha256": None, "actual_sha256": None}]
+    return []
 
 
 def _recorded_inputs(manifest: dict, where: Path) -> list[tuple[str, str | None]]:

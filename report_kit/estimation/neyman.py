@@ -33,6 +33,7 @@ from report_kit.estimation.core import (
     _unadjusted_rules,
     _validate,
 )
+from report_kit.estimation.standardized import FUNDER_KEYS, with_arm_summaries
 from report_kit.estimation.adjustment import estimate_adjusted
 from report_kit.errors import DesignError, ReportKitWarning
 from report_kit.estimation.noncompliance import (  # noqa: F401
@@ -46,6 +47,7 @@ from report_kit.estimation.subgroups import SubgroupDifference, SubgroupResult, 
 
 __all__ = [
     "ESTIMATE_KEYS",
+    "FUNDER_KEYS",
     "Estimate",
     "Noncompliance",
     "SubgroupDifference",
@@ -142,7 +144,9 @@ def study_estimates(study) -> list[dict]:
     ``"ATE"``, and one ``"ITT"`` row on take-up (outcome = the received column,
     all units with observed take-up) follows the outcomes. Then one
     ``"subgroup ATE"`` row per outcome, subgroup variable and level
-    (``subgroup = "col=value"``). Each dict has exactly :data:`ESTIMATE_KEYS`.
+    (``subgroup = "col=value"``). Each dict has exactly :data:`ESTIMATE_KEYS`
+    followed by :data:`FUNDER_KEYS` (arm means, effect in SD units, blocks left
+    out; see :func:`report_kit.estimation.standardized.with_arm_summaries`).
     """
     spec = study.spec
     kw = _study_design(study)
@@ -171,7 +175,7 @@ def study_estimates(study) -> list[dict]:
             result = estimate_subgroups(study.outcome(outcome.column), z, g, **kw)
             rows += [_row(outcome.column, est, "subgroup ATE", subgroup=f"{column}={level}")
                      for level, est in zip(result.levels, result.estimates)]
-    return rows
+    return with_arm_summaries(study, rows)
 
 
 def study_subgroup_differences(study) -> list[dict]:

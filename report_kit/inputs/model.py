@@ -16,6 +16,7 @@ from report_kit.validate import ALTERNATIVES, MECHANISMS, STATISTICS  # noqa: F4
 
 FAMILIES = ("primary", "secondary", "exploratory")
 MULTIPLICITY = ("none", "holm", "bh", "westfall_young")
+DEFAULT_ARM_LABELS = ("control", "treated")   # words for the arms coded 0 and 1
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -42,6 +43,7 @@ class DesignSpec:
     seed: int | None = None
     single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
     rerandomization: RerandomizationSpec | None = None
+    arm_labels: tuple[str, str] = DEFAULT_ARM_LABELS   # (label of 0, label of 1)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -55,6 +57,7 @@ class AnalysisSpec:
     multiplicity: str = "holm"
     missing_covariates: str = "error"    # error | drop_units (a unit lacking a baseline covariate)
     subgroup_missing: str = "error"      # error | own_level | drop (a unit lacking its subgroup value)
+    std_effect: str = "hedges_g"
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -66,11 +69,27 @@ class OutcomeSpec:
     statistic: str = "mean_difference"
     range: tuple[float, float] | None = None
     resolution: float | None = None
+    unit: str = ""
 
 
 @dataclass(frozen=True, kw_only=True)
 class ComplianceSpec:
     received: str
+
+
+@dataclass(frozen=True, kw_only=True)
+class RegistrationSpec:
+    id: str
+    address: str = ""
+
+
+@dataclass(frozen=True, kw_only=True)
+class EnrolmentSpec:
+    """Counts before randomization declared in the spec (CONSORT-style flow)."""
+
+    assessed: int | None = None
+    excluded: tuple[tuple[str, int], ...] = ()
+    randomized: int | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -85,6 +104,8 @@ class Spec:
     outcomes: tuple[OutcomeSpec, ...]
     compliance: ComplianceSpec | None = None
     subgroups: tuple[str, ...] = ()
+    registration: RegistrationSpec | None = None
+    enrolment: EnrolmentSpec | None = None
     raw: dict = field(default_factory=dict, compare=False, repr=False)
 
     @property

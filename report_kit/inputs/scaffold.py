@@ -27,6 +27,7 @@ design:
   # block: site                # blocked, blocked_cluster, matched_pairs (pair id)
   # cluster: household         # cluster, blocked_cluster
   # seed: 1234                 # seed that drew the assignment (checked by `report-kit check`)
+  # arm_labels: {{control: "usual service", treated: "new service"}}   # words for the arms coded 0 and 1
 analysis:
   alpha: 0.05
   covariates: [baseline]       # pre-specified baseline covariates
@@ -35,15 +36,24 @@ analysis:
   max_exact: 200000            # enumerate every assignment when there are at most this many
   seed: 20261201               # seed of the randomization-inference draws
   multiplicity: holm           # none | holm | bh | westfall_young
+  # std_effect: hedges_g       # effect in SD units: hedges_g | cohen_d | glass_delta
 outcomes:
   - column: outcome
     label: "Main outcome"
     family: primary            # primary | secondary | exploratory
     alternative: two-sided     # two-sided | greater | less
     statistic: mean_difference # mean_difference | rank_sum | studentized | ks
+    # unit: points             # printed after the outcome's numbers in the headline
 # compliance:
 #   received: took_up          # 0/1 column: treatment actually received -> CACE
 # subgroups: [sex]             # pre-specified subgroup analyses
+# registration:                # shown on page 1; the address is shown as text, never fetched
+#   id: "REGISTRY-ID"
+#   address: "address of the registry entry"
+# enrolment:                   # counts before randomization, for the participant-flow diagram
+#   assessed: 30
+#   excluded: [{{reason: "not eligible", n: 10}}]
+#   randomized: 20
 """
 
 

@@ -23,12 +23,15 @@ import yaml
 
 from report_kit.errors import SpecError
 from report_kit.inputs.model import (
+    DEFAULT_ARM_LABELS,
     AnalysisSpec,
     ComplianceSpec,
     DataSpec,
     DesignSpec,
+    EnrolmentSpec,
     OutcomeSpec,
     RerandomizationSpec,
+    RegistrationSpec,
     Spec,
 )
 
@@ -295,6 +298,10 @@ def cross_field_problems(doc: dict) -> list[str]:
         problems.append("design.rerandomization: a bernoulli design treats a random number of units; "
                         "rerandomization needs complete, blocked, cluster or matched_pairs")
     problems += _role_problems(doc)
+    problems += _enrolment_problems(doc.get("enrolment"))
+    labels = design.get("arm_labels")
+    if labels and labels["control"] == labels["treated"]:
+        problems.append(f"design.arm_labels: both arms are called {labels['control']!r}; give each arm its own label")
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
         col = outcome["column"]
@@ -305,6 +312,17 @@ def cross_field_problems(doc: dict) -> list[str]:
         if rng is not None and not rng[0] < rng[1]:
             problems.append(f"outcomes[{i}].range: found {rng}; expected [min, max] with min < max")
     return problems
+
+
+def _enrolment_problems(enrolment: dict | None) -> list[str]:
+    """Assessed = excluded + randomized when all three are declared (CONSORT-style arithmetic)."""
+    if not enrolment or "assessed" not in enrolment or "randomized" not in enrolment:
+        return []
+    excluded = sum(int(e["n"]) for e in enrolment.get("excluded", ()))
+    if enrolment["assessed"] != excluded + enrolment["randomized"]:
+        return [f"enrolment.assessed: found {enrolment['assessed']}; expected excluded + randomized = "
+                f"{excluded} + {enrolment['randomized']} = {excluded + enrolment['randomized']}"]
+    return []
 
 
 def _repeats(where: str, items: list) -> list[str]:
@@ -381,6 +399,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             statistic=o.get("statistic", "mean_difference"),
             range=tuple(float(v) for v in o["range"]) if "range" in o else None,
             resolution=float(o["resolution"]) if "resolution" in o else None,
+            unit=o.get("unit", ""),
         )
         for o in doc["outcomes"]
     )
@@ -401,6 +420,8 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             rerandomization=None if "rerandomization" not in design else RerandomizationSpec(
                 covariates=tuple(design["rerandomization"]["covariates"]),
                 max_distance=float(design["rerandomization"]["max_distance"])),
+            arm_labels=(design["arm_labels"]["control"], design["arm_labels"]["treated"])
+            if "arm_labels" in design else DEFAULT_ARM_LABELS,
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
@@ -412,9 +433,23 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             multiplicity=analysis.get("multiplicity", defaults.multiplicity),
             missing_covariates=analysis.get("missing_covariates", defaults.missing_covariates),
             subgroup_missing=analysis.get("subgroup_missing", defaults.subgroup_missing),
+            std_effect=analysis.get("std_effect", defaults.std_effect),
         ),
         outcomes=outcomes,
         compliance=ComplianceSpec(received=doc["compliance"]["received"]) if "compliance" in doc else None,
         subgroups=tuple(doc.get("subgroups", ())),
+        registration=_registration(doc.get("registration")),
+        enrolment=_enrolment(doc.get("enrolment")),
         raw=doc,
     )
+
+
+def _registration(doc: dict | None) -> RegistrationSpec | None:
+    return None if doc is None else RegistrationSpec(id=doc["id"], address=doc.get("address", ""))
+
+
+def _enrolment(doc: dict | None) -> EnrolmentSpec | None:
+    if doc is None:
+        return None
+    return EnrolmentSpec(assessed=doc.get("assessed"), randomized=doc.get("randomized"),
+                         excluded=tuple((e["reason"], int(e["n"])) for e in doc.get("excluded", ())))

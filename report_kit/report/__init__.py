@@ -15,6 +15,8 @@ _PUBLIC = {
     "RunView": "view", "ROLE_ORDER": "view", "callout": "view", "cautions": "view", "esc": "view",
     "fmt": "view", "fmt_count": "view", "fmt_p": "view", "p_phrase": "view", "plan_status": "view", "say": "view",
     "show_figure": "view", "show_table": "view", "table_html": "view",
+    "decimals_for": "headline", "fmt_at": "headline", "headline_cards": "headline", "points_box": "headline",
+    "registration_line": "headline", "flow_diagram": "flow",
     "effect_plot": "figures", "randomization_plot": "figures", "plot_balance": "figures_checks",
 }
 

@@ -14,12 +14,15 @@ from matplotlib.figure import Figure
 from report_kit.checks.balance import SMD_THRESHOLDS
 from report_kit.report.figures import INK
 
-__all__ = ["plot_balance"]
+__all__ = ["FLAG_TONES", "plot_balance"]
 
 # our own palette: slate ink, a sand band, three flag tones
 _INK = INK  # the report's one ink colour (figures.py)
 _BAND = "#efe6d2"
-_TONES = {"small": "#2a7f7a", "moderate": "#c98a1b", "large": "#b2432f"}
+#: Flag tones, checked for colour-blind readers and greyscale print (tests/report/test_palette.py):
+#: pairwise CIE76 distance >= 30 under simulated protan/deutan/tritan vision and luminance
+#: contrast >= 1.5 between tones, >= 3 against white.
+FLAG_TONES = {"small": "#1f6b66", "moderate": "#c0831a", "large": "#6a1f10"}
 
 
 def _rows(balance_dict) -> Sequence[Mapping]:
@@ -72,7 +75,7 @@ def plot_balance(balance_dict) -> Figure:
         if v is None:
             ax.text(0, y, "n/a", ha="center", va="center", color=_INK, fontsize=8, style="italic")
             continue
-        tone = _TONES.get(row.get("flag"), _INK)
+        tone = FLAG_TONES.get(row.get("flag"), _INK)
         ax.hlines(y, 0, v, color=tone, linewidth=1.6, zorder=2)
         ax.plot([v], [y], marker="D", markersize=6, color=tone, zorder=3, linestyle="none")
     ax.set_yticks(range(len(rows)), [r.get("name", "") for r in reversed(rows)], parse_math=False)

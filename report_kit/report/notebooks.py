@@ -106,6 +106,31 @@ def execute_all(run_dir: Path, project_dir: Path, *, progress: Callable[[str], N
         warm.join()
 
 
+def run_id_of(run_dir: Path) -> str:
+    """The run id as the final folder will be named (the build folder is ``.partial-<id>``)."""
+    name = Path(run_dir).name
+    return name[len(".partial-"):] if name.startswith(".partial-") else name
+
+
+def stabilise(notebook_path: Path, run_dir: Path) -> None:
+    """Make an executed notebook depend on its inputs and run id only.
+
+    The temporary build folder (``.partial-<id>``) is replaced by the
+    final run folder wherever papermill recorded it (parameters, input and
+    output paths), and every cell gets the id ``<notebook>-<index>``.
+    Start/end times and durations stay: they are the run's time.
+    """
+    import nbformat
+
+    run_dir = Path(run_dir)
+    final = str(run_dir.parent / run_id_of(run_dir))
+    text = notebook_path.read_text(encoding="utf-8").replace(str(run_dir), final)
+    nb = nbformat.reads(text, as_version=4)
+    for i, cell in enumerate(nb.cells):   # papermill gives its injected cell a random id
+        cell["id"] = f"{notebook_path.stem}-{i}"
+    nbformat.write(nb, notebook_path)
+
+
 def _import_pdf_renderer() -> None:
     """Import weasyprint (about a second) while the kernel runs the notebook.
 
@@ -144,6 +169,7 @@ def execute_notebook(nb, output: Path, *, cwd: Path, kernel: ReportKernel | None
         source.unlink(missing_ok=True)
         if kernel is not None:
             kernel.copy_log_to(cwd / "run.log")
+    stabilise(output, cwd)
     return output
 
 

@@ -14,6 +14,7 @@ from __future__ import annotations
 import html
 import json
 import logging
+import re
 import shutil
 import subprocess
 import warnings
@@ -23,7 +24,7 @@ from urllib.parse import urlsplit
 from urllib.request import url2pathname
 
 from report_kit.errors import UsageError
-from report_kit.report.notebooks import TEMPLATE_DIR, ReportError
+from report_kit.report.notebooks import TEMPLATE_DIR, ReportError, run_id_of
 
 log = logging.getLogger(__name__)
 
@@ -84,7 +85,9 @@ def keep_headings_with_content(notebook):
             continue
         index, body = first
         out = nxt.outputs[index]
-        merged = f'<div class="rk-keep">{mistune.html(heading)}{body}</div>'
+        # a long table may break across pages: keep the heading with its caption only
+        keep = "rk-keep-loose" if "rk-long" in body else "rk-keep"
+        merged = f'<div class="{keep}">{mistune.html(heading)}{body}</div>'
         nxt.outputs[index] = nbformat.v4.new_output("display_data", data={"text/html": merged},
                                                      metadata=out.get("metadata", {}))
         kept.append(nxt)
@@ -111,6 +114,46 @@ def body_html(notebook) -> str:
     return body
 
 
+_H2 = re.compile(r"<h2(?: [^>]*)?>(.*?)</h2>", re.S)
+_TAG = re.compile(r"<[^>]+>")
+
+
+def number_sections(body: str) -> tuple[str, str]:
+    """Number the ``<h2>`` sections of a fragment and build the table of contents.
+
+    Returns ``(body, toc)``: each section heading becomes
+    ``<h2 id="sec-N"><span class="rk-secno">N</span> title</h2>`` and ``toc`` is an
+    ordered list linking to them (the PDF adds page numbers with CSS
+    ``target-counter``). The heading text is already escaped by the Markdown step.
+    """
+    entries: list[tuple[int, str]] = []
+
+    def heading(match: re.Match) -> str:
+        text = _TAG.sub("", match.group(1)).replace("¶", "").strip()
+        entries.append((len(entries) + 1, text))
+        n = len(entries)
+        return f'<h2 id="sec-{n}"><span class="rk-secno">{n}</span> {text}</h2>'
+
+    numbered = _H2.sub(heading, body)
+    items = "".join(f'<li><a href="#sec-{n}"><span class="rk-secno">{n}</span> {text}</a></li>'
+                    for n, text in entries)
+    toc = f'<nav class="rk-toc" aria-label="Contents"><p class="rk-toc-title">Contents</p><ol>{items}</ol></nav>'
+    return numbered, toc if entries else ""
+
+
+def insert_toc(body: str, toc: str, *, after_sections: int = 2) -> str:
+    """Place the contents list before section ``after_sections + 1`` (page 1 keeps the headline)."""
+    marker = f'<h2 id="sec-{after_sections + 1}">'
+    at = body.find(marker)
+    if not toc:
+        return body
+    if at < 0:
+        return toc + body
+    start = body.rfind('<div class="rk-keep', 0, at)
+    cut = start if start >= 0 and body.find("</div>", start, at) < 0 else at
+    return body[:cut] + toc + body[cut:]
+
+
 def page_html(title: str, body: str, *, stamp: str) -> str:
     """Wrap a fragment in the report page (our stylesheet inlined)."""
     css = STYLESHEET.read_text(encoding="utf-8")
@@ -126,17 +169,10 @@ def page_html(title: str, body: str, *, stamp: str) -> str:
     )
 
 
-def run_id_of(run_dir: Path) -> str:
-    """The run id as the final folder will be named (the build folder is ``.partial-<id>-<random>``)."""
-    name = run_dir.name
-    if name.startswith(".partial-"):
-        name = name[len(".partial-"):].rsplit("-", 1)[0]
-    return name
-
-
 def render_builtin(notebooks: list[Path], run_dir: Path, *, title: str, pdf: bool) -> None:
     stamp = f"Run {run_id_of(run_dir)} · {datetime.now(timezone.utc).strftime('%d %B %Y, %H:%M UTC')}"
-    page = page_html(title, body_html(combine(notebooks)), stamp=stamp)
+    body, toc = number_sections(body_html(combine(notebooks)))
+    page = page_html(title, insert_toc(body, toc), stamp=stamp)
     (run_dir / "report.html").write_text(page, encoding="utf-8")
     if pdf:
         write_pdf(run_dir / "report.html", run_dir / "report.pdf")

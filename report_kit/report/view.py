@@ -14,6 +14,7 @@ import math
 from dataclasses import dataclass
 from pathlib import Path
 
+import matplotlib
 import numpy as np
 import pandas as pd
 
@@ -213,7 +214,7 @@ def table_html(frame: pd.DataFrame, *, caption: str = "", note: str = "", numeri
     cap = f'<p class="rk-tcap">{html.escape(caption)}</p>' if caption else ""
     foot = f'<p class="rk-note">{html.escape(note)}</p>' if note else ""
     table = f'<table class="rk-table"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
-    size = "rk-long" if len(frame) > 10 else "rk-short"
+    size = "rk-long" if len(frame) > 3 else "rk-short"   # a longer table may break across pages
     return f'<div class="rk-tablebox {size}">{cap}{table}{foot}</div>'
 
 
@@ -235,8 +236,9 @@ def show_figure(view: RunView, fig, name: str, *, caption: str = "") -> None:
     figures = view.run_dir / "figures"
     figures.mkdir(exist_ok=True)
     png = figures / f"{name}.png"
-    fig.savefig(png, dpi=150, bbox_inches="tight", metadata={"Software": None})
-    fig.savefig(figures / f"{name}.svg", bbox_inches="tight", metadata={"Date": None})
+    with matplotlib.rc_context({"svg.hashsalt": "report-kit", "svg.fonttype": "path"}):
+        fig.savefig(png, dpi=150, bbox_inches="tight", metadata={"Software": None})
+        fig.savefig(figures / f"{name}.svg", bbox_inches="tight", metadata={"Date": None, "Creator": None})
     data = base64.b64encode(png.read_bytes()).decode("ascii")
     alt = html.escape(caption or name.replace("_", " "), quote=True)
     cap = f'<figcaption class="rk-caption">{html.escape(caption)}</figcaption>' if caption else ""

@@ -217,3 +217,53 @@ def test_archive_takes_the_runs_copy_of_the_plan_lock(tmp_path):
     (run / "inputs" / "design.lock").write_text('{"schema": "report-kit/plan-lock/1", "copy": true}\n')
     with zipfile.ZipFile(archive_run(run, tmp_path / "a.zip")) as zf:
         assert b'"copy": true' in zf.read("clinic-reminders/design.lock")
+
+
+SECOND = "20261202T090000Z-6f6f6f6f"
+
+
+def _compared_pair(tmp_path: Path) -> tuple[Path, Path]:
+    """Run A as made by ``_project`` and run B, made later and compared with A."""
+    first = _project(tmp_path)
+    second = first.parent / SECOND
+    second.mkdir()
+    write_results_json(second / "results.json", {"schema": "report-kit/results/1", "estimates": [1]})
+    record = RunRecord(
+        project_dir=first.parent.parent, run_id=SECOND, spec_sha256=_sha(DESIGN.encode()),
+        inputs=(InputFile(path="data/units.csv", sha256=_sha(UNITS.encode()), rows=4),),
+        id_column="unit_id", seeds={"analysis": 5150}, argv=("report-kit", "run", "."),
+        started="2026-12-02T09:00:00Z", ended="2026-12-02T09:00:04Z", renderer="builtin",
+        compared_to={"run_id": RUN_ID, "results_sha256": _sha((first / "results.json").read_bytes())})
+    write_manifest(second, record)
+    return first, second
+
+
+def test_a_compared_run_travels_with_the_run_by_default(tmp_path):
+    from report_kit.audit.verify import compared_run_problems
+
+    first, second = _compared_pair(tmp_path)
+    out = archive_run(second, tmp_path / "b.zip")
+    with zipfile.ZipFile(out) as zf:
+        names = zf.namelist()
+    assert f"clinic-reminders/runs/{RUN_ID}/results.json" in names
+    assert f"clinic-reminders/runs/{SECOND}/results.json" in names
+    extracted = safe_extract(out, tmp_path / "x")
+    assert extracted.name == SECOND          # the main run, not the one it was compared with
+    assert verify_checksums(extracted.parent.parent) == ()
+    assert compared_run_problems(extracted) == []
+    without = archive_run(second, tmp_path / "c.zip", with_compared=False)
+    with zipfile.ZipFile(without) as zf:
+        assert not any(RUN_ID in n for n in zf.namelist())
+    lone = safe_extract(without, tmp_path / "y")
+    assert [p["problem"].split(":")[0] for p in compared_run_problems(lone)] == ["missing"]
+
+
+def test_with_compared_needs_a_compared_run_that_is_unchanged(tmp_path):
+    first, second = _compared_pair(tmp_path)
+    with pytest.raises(UsageError, match="was not compared"):
+        archive_run(first, tmp_path / "a.zip", with_compared=True)
+    write_results_json(first / "results.json", {"schema": "report-kit/results/1", "estimates": [2]})
+    with pytest.raises(VerificationError, match="has changed since it was compared"):
+        archive_run(second, tmp_path / "b.zip")
+    with pytest.raises(UsageError, match="with_compared"):
+        archive_run(second, tmp_path / "b.zip", with_compared="yes")

@@ -192,3 +192,25 @@ def test_plan_is_in_results_and_a_later_lock_does_not_break_verify(project_copy)
     assert analyse_project(example)["plan"]["locked"] is True  # a new analysis sees the lock
     report = verify_run(run.run_dir, analyse=analyse_project)
     assert report.ok, report.result_differences
+
+
+def test_data_changed_since_the_lock(project):
+    data = project / "data"
+    data.mkdir()
+    (data / "units.csv").write_text("pupil_id,assigned\n1,0\n", encoding="utf-8")
+    lock_plan(project)
+    content = json.loads((project / "design.lock").read_text(encoding="utf-8"))
+    # Reference digest: hashlib over the file's bytes.
+    assert content["inputs"] == {"data/units.csv": hashlib.sha256(b"pupil_id,assigned\n1,0\n").hexdigest()}
+    assert plan_deviations(project)["data_changed"] == []
+    (data / "units.csv").write_text("pupil_id,assigned\n1,1\n", encoding="utf-8")
+    assert plan_deviations(project)["data_changed"] == ["data/units.csv"]
+
+
+def test_lock_without_fingerprints_reports_no_data_status(project):
+    lock_plan(project)
+    path = project / "design.lock"
+    content = json.loads(path.read_text(encoding="utf-8"))
+    del content["inputs"]
+    path.write_text(json.dumps(content), encoding="utf-8")
+    assert plan_deviations(project)["data_changed"] is None

@@ -25,6 +25,7 @@ from scipy import stats
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
 from report_kit.estimation.neyman import (
     ESTIMATE_KEYS,
+    FUNDER_KEYS,
     Estimate,
     neyman_difference,
     estimate_adjusted,
@@ -1009,7 +1010,7 @@ def make_study(frame, *, mechanism="complete", block=None, cluster=None, covaria
 
 def check_rows(rows):
     for row in rows:
-        assert tuple(row) == ESTIMATE_KEYS
+        assert tuple(row) == ESTIMATE_KEYS + FUNDER_KEYS
         for key in ("estimate", "std_error", "ci_low", "ci_high", "df"):
             assert row[key] is None or type(row[key]) is float
         assert type(row["n_treated"]) is int and type(row["n_control"]) is int

@@ -228,3 +228,26 @@ def test_spec_not_utf8_names_line(tmp_path):
 def test_byte_order_mark_accepted(tmp_path):
     (tmp_path / "design.yaml").write_bytes(b"\xef\xbb\xbf" + yaml.safe_dump(BASE).encode())
     assert load_spec(str(tmp_path)).title == "t"
+
+
+def test_funder_keys_load(tmp_path):
+    doc = patched(design__arm_labels={"control": "usual classes", "treated": "clubs"},
+                  analysis={"std_effect": "glass_delta"}, outcomes__0__unit="points",
+                  registration={"id": "RK-1", "address": "https://trials.example.org/RK-1"},
+                  enrolment={"assessed": 30, "excluded": [{"reason": "moved", "n": 10}], "randomized": 20})
+    spec = load_spec(write(tmp_path, doc))
+    assert spec.design.arm_labels == ("usual classes", "clubs")
+    assert spec.analysis.std_effect == "glass_delta" and spec.outcomes[0].unit == "points"
+    assert spec.registration.id == "RK-1" and spec.enrolment.excluded == (("moved", 10),)
+
+
+def test_funder_key_problems_are_named(tmp_path):
+    same = message_for(tmp_path, patched(design__arm_labels={"control": "a", "treated": "a"}))
+    assert "design.arm_labels: both arms are called 'a'" in same
+    sums = message_for(tmp_path, patched(enrolment={"assessed": 31, "excluded": [{"reason": "moved", "n": 10}],
+                                                    "randomized": 20}))
+    assert "enrolment.assessed: found 31; expected excluded + randomized = 10 + 20 = 30" in sums
+    typo = message_for(tmp_path, patched(registration={"id": "x", "adress": "y"}))
+    assert "registration: unknown key 'adress' — did you mean 'address'?" in typo
+    method = message_for(tmp_path, patched(analysis={"std_effect": "hedges"}))
+    assert "analysis.std_effect: found 'hedges'" in method and "did you mean 'hedges_g'?" in method
