@@ -88,7 +88,11 @@ def load_study(spec: Spec) -> Study:
     frame = _coerce(spec, frame)
     _check_ranges(spec, frame, origin, locate)
     _check_adjustment_covariates(spec, frame, origin, locate)
-    _check_design(spec, frame, units, locate)
+    if spec.design.arms is None:
+        _check_design(spec, frame, units, locate)
+    else:
+        from report_kit.inputs.arms import check_arms
+        check_arms(spec, frame, origin[spec.design.treatment])
     inputs = tuple(InputFile(path=t.relpath, sha256=t.sha256, rows=len(t.frame)) for t in tables)
     return Study(spec=spec, frame=frame, inputs=inputs)
 
@@ -568,7 +572,8 @@ def _check_columns(spec: Spec, origin: dict[str, Table]) -> None:
                          "writes (data/assignment.csv) under data.merge")
             raise DataError(f"{files}: column '{col}' (named by {key} in design.yaml) not found{hint}")
     id_col = spec.data.id
-    _check_binary(origin[spec.design.treatment], spec.design.treatment, id_col, "design.treatment")
+    if spec.design.arms is None:
+        _check_binary(origin[spec.design.treatment], spec.design.treatment, id_col, "design.treatment")
     if spec.compliance:
         _check_binary(origin[spec.compliance.received], spec.compliance.received, id_col, "compliance.received")
     numeric = {o.column: f"outcomes[{i}].column" for i, o in enumerate(spec.outcomes)}
@@ -628,7 +633,11 @@ def _check_numeric(table: Table, col: str, id_col: str, key: str) -> None:
 
 def _coerce(spec: Spec, frame: pd.DataFrame) -> pd.DataFrame:
     frame = frame.copy()
-    frame[spec.design.treatment] = pd.to_numeric(frame[spec.design.treatment]).astype(int)
+    if spec.design.arms is None:
+        frame[spec.design.treatment] = pd.to_numeric(frame[spec.design.treatment]).astype(int)
+    else:
+        from report_kit.inputs.arms import normalise_arm_column
+        frame = normalise_arm_column(frame, spec.design.treatment)
     if spec.compliance:
         frame[spec.compliance.received] = pd.to_numeric(frame[spec.compliance.received]).astype(int)
     for col in [o.column for o in spec.outcomes] + list(spec.analysis.covariates):

@@ -34,6 +34,19 @@ class DesignSpec:
     cluster: str | None = None
     probability: float | None = None
     seed: int | None = None
+    arms: tuple[str, ...] | None = None          # multi-arm: arm labels, reference first
+    contrasts: str = "reference"                 # reference | pairwise
+    factors: tuple[tuple[str, tuple[str, ...]], ...] | None = None  # factorial: (factor, arms where on)
+    arm_labels: tuple[tuple[str, str], ...] = ()  # display label of each arm (optional)
+
+    @property
+    def multi_arm(self) -> bool:
+        """True when the study needs the multi-arm analysis (more than two arms, or a factorial)."""
+        return self.arms is not None and (len(self.arms) > 2 or self.factors is not None)
+
+    def arm_label(self, arm: str) -> str:
+        """The display label of an arm (the arm itself when none is given)."""
+        return dict(self.arm_labels).get(arm, arm)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -95,8 +108,11 @@ class InputFile:
 class Study:
     """A validated study: the spec plus one merged row per unit, sorted by id.
 
-    ``frame`` has a fresh RangeIndex. The treatment column holds int 0/1;
-    outcome and covariate columns are float (NaN = missing).
+    ``frame`` has a fresh RangeIndex. The treatment column holds int 0/1, or,
+    when ``design.arms`` is given, the arm labels as text; :attr:`z` then holds
+    each unit's arm position in ``design.arms`` (0 = reference), so a two-arm
+    labelled study reads exactly like a 0/1 one. Outcome and covariate columns
+    are float (NaN = missing).
     """
 
     spec: Spec
@@ -105,7 +121,12 @@ class Study:
 
     @property
     def z(self):
-        return self.frame[self.spec.design.treatment].to_numpy(dtype=int)
+        arms = self.spec.design.arms
+        column = self.frame[self.spec.design.treatment]
+        if arms is None:
+            return column.to_numpy(dtype=int)
+        position = {arm: k for k, arm in enumerate(arms)}
+        return column.map(position).to_numpy(dtype=int)
 
     @property
     def block(self):

@@ -22,6 +22,7 @@ import jsonschema
 import yaml
 
 from report_kit.errors import SpecError
+from report_kit.inputs.arms import arm_spec_problems, arm_text
 from report_kit.inputs.model import (
     AnalysisSpec,
     ComplianceSpec,
@@ -197,6 +198,8 @@ def _translate(err: jsonschema.ValidationError) -> list[str]:
         return [f"{where}: found {_describe(inst)}; expected {_TYPE_WORDS.get(value, value)}"]
     if kind in ("minLength", "minItems"):
         return [f"{where}: found an empty value; expected at least {value} {'character' if kind == 'minLength' else 'item'}(s)"]
+    if kind == "minProperties":
+        return [f"{where}: found {len(inst)} key(s); expected at least {value}"]
     if kind == "maxItems":
         return [f"{where}: found {len(inst)} items; expected at most {value}"]
     bounds = {"minimum": ">=", "maximum": "<=", "exclusiveMinimum": ">", "exclusiveMaximum": "<"}
@@ -240,6 +243,7 @@ def cross_field_problems(doc: dict) -> list[str]:
     if "cluster" in design and mech not in _NEEDS_CLUSTER:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
+    problems += arm_spec_problems(design)
     problems += _role_problems(doc)
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
@@ -318,6 +322,19 @@ def _role_problems(doc: dict) -> list[str]:
 # --------------------------------------------------------------------------- building the Spec
 
 
+def _arm_keys(design: dict) -> dict:
+    if "arms" not in design:
+        return {}
+    factors = design.get("factors")
+    return {
+        "arms": tuple(arm_text(a) for a in design["arms"]),
+        "contrasts": design.get("contrasts", "reference"),
+        "factors": None if factors is None else tuple(
+            (str(name), tuple(arm_text(a) for a in on)) for name, on in factors.items()),
+        "arm_labels": tuple((arm_text(k), v) for k, v in design.get("arm_labels", {}).items()),
+    }
+
+
 def _build_spec(path: Path, doc: dict) -> Spec:
     data, design, analysis = doc["data"], doc["design"], doc.get("analysis", {})
     outcomes = tuple(
@@ -341,6 +358,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             block=design.get("block"), cluster=design.get("cluster"),
             probability=design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
+            **_arm_keys(design),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
