@@ -1,0 +1,140 @@
+"""Randomization inference for multi-arm trials: contrast tests, intervals and the omnibus test.
+
+Owns:
+
+* :func:`between_arms` - the omnibus statistic ``sum_k n_k (ybar_k - ybar)^2``;
+* :func:`omnibus_test` - its randomization test under the full multi-arm
+  mechanism (sharp null: no arm changes any unit's outcome), exact by
+  enumerating every multinomial assignment when there are few;
+* :func:`contrast_tests` - per contrast ``a`` vs ``r``, the randomization test
+  and the test-inversion interval that re-randomize only the units of the two
+  arms compared, holding the other units' arms and the two arms' sizes (within
+  blocks): the two-arm mechanism of the same kind on those units, with the
+  public functions of :mod:`report_kit.inference.randomization`.
+
+Definitions and sources in ``docs/methods/arms.md``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from report_kit.design.arms import ArmSource, MultiArmMechanism
+from report_kit.design.mechanism import mechanism_from_arrays
+from report_kit.inference.engine import DEFAULT_RTOL, NullDistribution
+from report_kit.inference.randomization import TestResult, invert_test, randomization_test
+
+__all__ = ["OMNIBUS", "ArmTest", "between_arms", "omnibus_null", "omnibus_test", "contrast_tests"]
+
+OMNIBUS = "between_arms"
+
+
+@dataclass(frozen=True, kw_only=True)
+class ArmTest:
+    """A contrast's test and interval (or the omnibus test: ``arm`` and ``reference`` None)."""
+
+    arm: str | None
+    reference: str | None
+    test: TestResult
+    interval: dict | None = None
+
+    def test_row(self) -> dict:
+        return {"outcome": self.test.outcome, "arm": self.arm, "reference": self.reference, **self.test.to_dict()}
+
+    def interval_row(self) -> dict | None:
+        if self.interval is None:
+            return None
+        return {"outcome": self.interval["outcome"], "arm": self.arm, "reference": self.reference,
+                **self.interval}
+
+
+def between_arms(y, assignments, n_arms: int) -> np.ndarray:
+    """Between-arm sum of squares ``sum_k n_k (ybar_k - ybar)^2`` for each assignment row.
+
+    Units with a missing outcome are left out (``n_k`` counts observed units).
+    Computed as ``sum_k S_k^2 / n_k - S^2 / N`` with ``S_k`` the arm sums. It is
+    the numerator sum of squares of the one-way ANOVA F statistic (Fisher 1925),
+    a monotone function of F when the units and outcomes are fixed.
+
+    Parameters
+    ----------
+    y : array_like, shape (n,)
+    assignments : array_like of int, shape (rows, n) or (n,)
+        Arm codes 0..K-1.
+    n_arms : int
+    """
+    y = np.asarray(y, dtype=float)
+    a = np.atleast_2d(np.asarray(assignments))
+    if a.shape[1] != y.size:
+        raise ValueError(f"`assignments` must have {y.size} columns; got {a.shape[1]}")
+    seen = ~np.isnan(y)
+    yo, a = y[seen], a[:, seen]
+    total = yo.sum()
+    stat = np.full(a.shape[0], -total * total / max(yo.size, 1))
+    for k in range(int(n_arms)):
+        member = a == k
+        size = member.sum(axis=1)
+        sums = member @ yo
+        with np.errstate(invalid="ignore", divide="ignore"):
+            stat += np.where(size > 0, sums * sums / np.maximum(size, 1), 0.0)
+    return stat
+
+
+def omnibus_null(Y, source: ArmSource) -> NullDistribution:
+    """Observed and null ``between_arms`` statistics of the columns of ``Y`` (n x m) on ``source``."""
+    Y = np.asarray(Y, dtype=float)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    mech: MultiArmMechanism = source.mechanism
+    observed = np.array([between_arms(Y[:, j], mech.arm, mech.n_arms)[0] for j in range(Y.shape[1])])
+    parts = [np.column_stack([between_arms(Y[:, j], chunk, mech.n_arms) for j in range(Y.shape[1])])
+             for chunk in source.chunks()]
+    null = np.vstack(parts)
+    return NullDistribution(statistic=OMNIBUS, direction=None, null_effect=0.0, observed=observed, null=null,
+                            centre=np.full(Y.shape[1], np.nan), method=source.method)
+
+
+def omnibus_test(Y, source: ArmSource, *, outcomes, rtol: float = DEFAULT_RTOL) -> list[ArmTest]:
+    """Randomization test of the sharp null that no arm changes any outcome, per column of ``Y``.
+
+    Upper-tailed on :func:`between_arms` under the multi-arm mechanism of
+    ``source``; the p-value rule (exact share, or Phipson & Smyth 2010 for draws)
+    is that of :meth:`report_kit.inference.engine.NullDistribution.p_values`.
+    """
+    dist = omnibus_null(Y, source)
+    p, se, defined = dist.p_values("greater", rtol)
+    out = []
+    for j, name in enumerate(outcomes):
+        result = TestResult(outcome=name, statistic=OMNIBUS, alternative="greater", null_effect=0.0,
+                            observed=float(dist.observed[j]), p_value=float(p[j]), method=dist.method,
+                            draws=int(defined[j]), mc_std_error=None if np.isnan(se[j]) else float(se[j]))
+        out.append(ArmTest(arm=None, reference=None, test=result))
+    return out
+
+
+def contrast_tests(y, arm, pairs, *, kind: str, block=None, cluster=None, statistic: str = "mean_difference",
+                   alternative: str = "two-sided", level: float = 0.95, max_exact: int = 200000,
+                   draws: int = 10000, seed: int = 5150, outcome: str = "y") -> list[ArmTest]:
+    """Randomization test and test-inversion interval of each ``(arm, reference)`` pair.
+
+    Only the units of the two arms compared are re-randomized: the two-arm
+    mechanism of ``kind`` on those units (conditioning on the number in ``arm``
+    per block, or per cluster count), so the other units keep their arms and the
+    two arms their sizes. Sharp null ``Y_i(arm) = Y_i(reference) + tau0``.
+    """
+    labels = np.asarray([str(v) for v in arm], dtype=object)
+    y = np.asarray(y, dtype=float)
+    out = []
+    for a, r in pairs:
+        mask = (labels == a) | (labels == r)
+        z = (labels[mask] == a).astype(int)
+        mech = mechanism_from_arrays(kind, z, block=None if block is None else np.asarray(block)[mask],
+                                     cluster=None if cluster is None else np.asarray(cluster)[mask])
+        source = mech.assignments(max_exact=max_exact, draws=draws, seed=seed)
+        (test,) = randomization_test(y[mask], mech, source=source, statistic=statistic,
+                                     alternative=alternative, outcomes=[outcome])
+        interval = invert_test(y[mask], mech, source=source, level=level, outcome=outcome).to_dict()
+        out.append(ArmTest(arm=a, reference=r, test=test, interval=interval))
+    return out
