@@ -17,16 +17,19 @@ Definitions and sources in ``docs/methods/arms.md``.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
 
 from report_kit.design.arms import ArmSource, MultiArmMechanism
 from report_kit.design.mechanism import mechanism_from_arrays
+from report_kit.errors import ReportKitWarning
 from report_kit.inference.engine import DEFAULT_RTOL, NullDistribution
+from report_kit.inference.multiplicity import benjamini_hochberg, holm
 from report_kit.inference.randomization import TestResult, invert_test, randomization_test
 
-__all__ = ["OMNIBUS", "ArmTest", "between_arms", "omnibus_null", "omnibus_test", "contrast_tests"]
+__all__ = ["OMNIBUS", "ArmTest", "arm_multiplicity", "between_arms", "omnibus_null", "omnibus_test", "contrast_tests"]
 
 OMNIBUS = "between_arms"
 
@@ -138,3 +141,36 @@ def contrast_tests(y, arm, pairs, *, kind: str, block=None, cluster=None, statis
         interval = invert_test(y[mask], mech, source=source, level=level, outcome=outcome).to_dict()
         out.append(ArmTest(arm=a, reference=r, test=test, interval=interval))
     return out
+
+
+def arm_multiplicity(tests, outcomes, *, lead: str | None = None) -> list[dict]:
+    """Holm and Benjamini–Hochberg adjustment of the arm contrasts, family by family.
+
+    A family holds every contrast test (rows of ``tests`` with an ``arm``) of
+    every outcome declared in that family (``outcomes[i].family``): with K arms
+    and ``reference`` contrasts a family of m outcomes has ``m (K - 1)``
+    hypotheses. Omnibus rows are not adjusted. Westfall–Young needs one joint
+    null of all contrasts; the contrasts re-randomize different subsets of
+    units, so with ``lead = 'westfall_young'`` Holm (valid under any
+    dependence, Holm 1979) leads instead, with a warning.
+
+    Returns ``{outcome, arm, reference, family, method, p_value, p_adjusted, lead}`` rows.
+    """
+    if lead == "westfall_young":
+        warnings.warn("analysis.multiplicity 'westfall_young' is not available for multi-arm contrasts; "
+                      "Holm adjustment leads instead", ReportKitWarning, stacklevel=2)
+        lead = "holm"
+    family_of = {o.column: o.family for o in outcomes}
+    rows = []
+    for family in dict.fromkeys(o.family for o in outcomes):
+        members = [t for t in tests if t.get("arm") is not None and family_of.get(t["outcome"]) == family]
+        tested = [t for t in members if t.get("p_value") is not None]
+        p = np.array([t["p_value"] for t in tested], dtype=float)
+        adjusted = {"holm": holm(p).tolist() if p.size else [], "bh": benjamini_hochberg(p).tolist() if p.size else []}
+        for method, values in adjusted.items():
+            by_id = {id(t): v for t, v in zip(tested, values)}
+            for t in members:
+                rows.append({"outcome": t["outcome"], "arm": t["arm"], "reference": t["reference"],
+                             "family": family, "method": method, "p_value": t.get("p_value"),
+                             "p_adjusted": by_id.get(id(t)), "lead": method == lead})
+    return rows

@@ -126,3 +126,32 @@ def test_contrast_test_re_randomizes_only_the_two_arms():
     row = result.interval_row()
     assert row["arm"] == "l" and row["reference"] == "u" and row["hodges_lehmann"] == pytest.approx(t_obs)
     assert result.test_row()["arm"] == "l"
+
+
+def test_arm_multiplicity_families_match_statsmodels():
+    # Reference: statsmodels.stats.multitest.multipletests ('holm', 'fdr_bh') on the
+    # contrasts of all outcomes of one family; omnibus rows are not adjusted.
+    from types import SimpleNamespace
+
+    from statsmodels.stats.multitest import multipletests
+
+    from report_kit.inference.arms import arm_multiplicity
+
+    outcomes = [SimpleNamespace(column="a", family="primary"), SimpleNamespace(column="b", family="primary"),
+                SimpleNamespace(column="c", family="secondary")]
+    tests = [{"outcome": "a", "arm": None, "reference": None, "p_value": 0.001},
+             {"outcome": "a", "arm": "s", "reference": "u", "p_value": 0.01},
+             {"outcome": "a", "arm": "l", "reference": "u", "p_value": 0.04},
+             {"outcome": "b", "arm": "s", "reference": "u", "p_value": 0.03},
+             {"outcome": "b", "arm": "l", "reference": "u", "p_value": 0.20},
+             {"outcome": "c", "arm": "s", "reference": "u", "p_value": 0.02},
+             {"outcome": "c", "arm": "l", "reference": "u", "p_value": None}]
+    rows = arm_multiplicity(tests, outcomes, lead="holm")
+    primary = [0.01, 0.04, 0.03, 0.20]
+    for method, name in (("holm", "holm"), ("bh", "fdr_bh")):
+        got = [r["p_adjusted"] for r in rows if r["family"] == "primary" and r["method"] == method]
+        assert got == pytest.approx(multipletests(primary, method=name)[1].tolist())
+    secondary = [r for r in rows if r["family"] == "secondary" and r["method"] == "holm"]
+    assert [r["p_adjusted"] for r in secondary] == [0.02, None]
+    assert all(r["lead"] == (r["method"] == "holm") for r in rows)
+    assert len(rows) == 2 * 6
