@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from report_kit.analysis_arms import arm_sections
 from report_kit.checks.attrition import study_attrition
 from report_kit.checks.balance import participant_flow, study_balance
 from report_kit.errors import ReportKitWarning
@@ -96,6 +97,8 @@ def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
 
 def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
     spec = study.spec
+    if spec.design.multi_arm:
+        return {"schema": SCHEMA, **arm_sections(study, assignment_check)}, {}
     log.info("estimates")
     estimates = study_estimates(study)
     log.info("randomization tests")

@@ -21,6 +21,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from report_kit.errors import DesignError
+
 __all__ = ["MultiArmMechanism", "ArmSource", "multi_arm_mechanism", "draw_arms"]
 
 ARM_KINDS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster")
@@ -187,40 +189,50 @@ def multi_arm_mechanism(kind: str, arm, *, n_arms: int, block=None, cluster=None
                              group_arm=group_arm.astype(np.int8), strata=strata)
 
 
-def draw_arms(n_arms: int, ids, *, seed: int, block=None, cluster=None) -> np.ndarray:
-    """Draw a multi-arm assignment with equal arm shares from ``design.seed``.
+def draw_arms(kind: str, n_arms: int, ids, *, seed: int, block=None, cluster=None) -> np.ndarray:
+    """Draw a multi-arm assignment from ``design.seed``.
 
     Algorithm (fixed; ``docs/methods/arms.md``): units are sorted by id;
     randomization units are the units, or the clusters sorted by label; strata
     are the blocks sorted by label (one stratum without blocks). With
-    ``rng = numpy.random.default_rng(seed)``, stratum by stratum in label order:
-    the stratum's ``G`` randomization units (in sorted order) receive the
-    labels ``[0, 1, ..., K-1, 0, 1, ...]`` (``G`` labels, so the arm sizes
-    differ by at most one and earlier arms get the extra unit) permuted by
-    ``rng.permutation(G)``. Returns the arm code (0..K-1) of each unit in the
-    caller's order.
+    ``rng = numpy.random.default_rng(seed)``:
+
+    * ``bernoulli``: ``rng.integers(0, K, size=G)`` gives each randomization unit
+      (in sorted order) an arm with probability ``1/K``, independently;
+    * otherwise, stratum by stratum in label order, the stratum's ``G``
+      randomization units (in sorted order) receive the labels
+      ``[0, 1, ..., K-1, 0, 1, ...]`` (``G`` labels, so arm sizes differ by at
+      most one and earlier arms get the extra unit) permuted by
+      ``rng.permutation(G)``.
+
+    Returns the arm code (0..K-1) of each unit in the caller's order. Raises
+    :class:`~report_kit.errors.DesignError` when a stratum has fewer
+    randomization units than arms.
     """
+    if kind not in ARM_KINDS:
+        raise ValueError(f"`kind` must be one of {set(ARM_KINDS)} for a multi-arm design; got {kind!r}")
     ids = np.asarray(ids)
-    order = np.argsort(_codes(ids), kind="stable")
-    rng = np.random.default_rng(seed)
     n = ids.size
-    group = _sorted_codes(cluster, n)
-    strata = _sorted_codes(block, n) if block is not None else np.zeros(n, dtype=np.intp)
-    g = int(group.max()) + 1 if cluster is not None else n
-    if cluster is None:
+    rng = np.random.default_rng(seed)
+    if cluster is not None:
+        group = _codes(cluster)
+    else:
         group = np.empty(n, dtype=np.intp)
-        group[order] = np.arange(n)
+        group[np.argsort(_codes(ids), kind="stable")] = np.arange(n)
+    g = int(group.max()) + 1
     group_stratum = np.zeros(g, dtype=np.intp)
-    group_stratum[group] = strata
+    group_stratum[group] = _codes(block) if block is not None else 0
+    if kind == "bernoulli":
+        return rng.integers(0, n_arms, size=g)[group].astype(int)
     group_arm = np.empty(g, dtype=np.int8)
     for s in range(int(group_stratum.max()) + 1):
         members = np.flatnonzero(group_stratum == s)
+        if members.size < n_arms:
+            what = "cluster(s)" if cluster is not None else "unit(s)"
+            where = "the study" if block is None else f"block number {s + 1} in label order"
+            raise DesignError(f"{where} has {members.size} {what}, fewer than the {n_arms} arms; every arm "
+                              "needs one")
         labels = np.arange(members.size) % n_arms
         group_arm[members] = labels[rng.permutation(members.size)]
     return group_arm[group].astype(int)
 
-
-def _sorted_codes(labels, n: int) -> np.ndarray:
-    if labels is None:
-        return np.zeros(n, dtype=np.intp)
-    return _codes(labels)

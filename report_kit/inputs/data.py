@@ -148,7 +148,7 @@ def _check_drawable(spec: Spec, frame: pd.DataFrame, units: Table) -> None:
             raise DataError(f"{units.path}: clusters must sit inside one block; cluster(s) spanning blocks: "
                             f"{_label_list(crossing)}; cluster {_show(crossing[0])} is in blocks "
                             f"{_label_list(sorted(members[block].unique().tolist(), key=str))}")
-    if mech == "bernoulli":
+    if mech == "bernoulli" or design.multi_arm:
         return
     share = 0.5 if mech == "matched_pairs" or design.probability is None else float(design.probability)
     strata = frame.groupby(block, sort=True) if block else [(None, frame)]

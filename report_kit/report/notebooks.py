@@ -10,6 +10,7 @@ parameters (run folder, project folder, previous run) and executing it into
 from __future__ import annotations
 
 import contextlib
+import json
 import logging
 import os
 import sys
@@ -45,6 +46,27 @@ def template_paths(template_dir: Path = TEMPLATE_DIR) -> list[Path]:
     return paths
 
 
+_KIND_MARK = "# report-kit:"
+
+
+def template_kind(template: Path) -> str | None:
+    """The kind of run a template is for (``two-arm`` or ``multi-arm``), or None for every run.
+
+    Declared by a first-lines comment ``# report-kit: multi-arm``.
+    """
+    with open(template, encoding="utf-8") as fh:
+        for _, line in zip(range(5), fh):
+            if line.startswith(_KIND_MARK):
+                return line[len(_KIND_MARK):].strip()
+    return None
+
+
+def run_kind(run_dir: Path) -> str:
+    """``multi-arm`` when the run's ``results.json`` describes arms, else ``two-arm``."""
+    results = json.loads((Path(run_dir) / "results.json").read_text(encoding="utf-8"))
+    return "multi-arm" if results.get("design", {}).get("arms") else "two-arm"
+
+
 def execute_all(run_dir: Path, project_dir: Path, *, compare_to: Path | None = None,
                 progress: Callable[[str], None] = lambda _: None,
                 template_dir: Path = TEMPLATE_DIR) -> list[Path]:
@@ -53,7 +75,8 @@ def execute_all(run_dir: Path, project_dir: Path, *, compare_to: Path | None = N
     out_dir.mkdir(exist_ok=True)
     params = {"run_dir": str(run_dir), "project_dir": str(project_dir),
               "compare_to": "" if compare_to is None else str(Path(compare_to).resolve())}
-    templates = template_paths(template_dir)
+    kind = run_kind(run_dir)
+    templates = [t for t in template_paths(template_dir) if template_kind(t) in (None, kind)]
     executed = []
     for i, template in enumerate(templates, 1):
         progress(f"  notebook {i}/{len(templates)}: {template.stem}")
