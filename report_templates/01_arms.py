@@ -12,8 +12,9 @@ import html
 
 import pandas as pd
 
-from report_kit.audit.planlock import plan_deviations
-from report_kit.report.view import RunView, callout, cautions, fmt, p_phrase, say, show_table
+from report_kit.report.view import (
+    ASSIGNMENT_CHECK_WORDS, RunView, callout, fmt, p_phrase, show_opening, show_outcomes, show_table,
+)
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -23,10 +24,7 @@ label_of = {a["arm"]: a["label"] for a in d["arms"]}
 level = round(100 * (1 - spec.analysis.alpha))
 
 # %%
-if spec.summary:
-    say(spec.summary.strip())
-deviations = plan_deviations(view.run_dir / "inputs")
-callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(deviations)) + "</ul>", "caution")
+show_opening(view)
 
 # %% [markdown]
 # ## Main results
@@ -79,10 +77,7 @@ if d.get("n_clusters") is not None:
     rows.append(("Clusters", f"{d['n_clusters']:,}"))
 rows.append(("Possible assignments", f"{int(d['n_assignments']):,}" if len(d["n_assignments"]) < 16
              else f"a {len(d['n_assignments'])}-digit number"))
-check_words = {"reproduced": "re-drawn from the recorded seed: identical",
-               "mismatch": "re-drawn from the recorded seed: DIFFERENT (see check output)",
-               "not_checked": "not checked (no assignment seed recorded)"}
-rows.append(("Assignment check", check_words.get(d["assignment_check"], d["assignment_check"])))
+rows.append(("Assignment check", ASSIGNMENT_CHECK_WORDS.get(d["assignment_check"], d["assignment_check"])))
 show_table(view, pd.DataFrame(rows, columns=["Item", "Value"]), "design", caption="The design as randomized")
 
 # %%
@@ -98,8 +93,4 @@ table = pd.DataFrame({
 show_table(view, table, "arms", caption="The arms: sizes and outcome means", csv_frame=arms)
 
 # %%
-outs = pd.DataFrame(
-    [(o.label, o.column, o.family, o.alternative, o.statistic.replace("_", " ")) for o in spec.outcomes],
-    columns=["Outcome", "Column", "Family", "Alternative", "Test statistic"],
-)
-show_table(view, outs, "outcomes", caption="Pre-specified outcomes")
+show_outcomes(view)

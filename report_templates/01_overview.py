@@ -10,8 +10,10 @@ compare_to = ""
 # %%
 import pandas as pd
 
-from report_kit.audit.planlock import plan_deviations
-from report_kit.report.view import RunView, callout, cautions, estimate_role, fmt, p_phrase, say, show_table
+from report_kit.report.view import (
+    ASSIGNMENT_CHECK_WORDS, RunView, callout, estimate_role, fmt, p_phrase, show_opening, show_outcomes,
+    show_table,
+)
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -19,10 +21,7 @@ spec = view.spec
 d = res["design"]
 
 # %%
-if spec.summary:
-    say(spec.summary.strip())
-deviations = plan_deviations(view.run_dir / "inputs")
-callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(deviations)) + "</ul>", "caution")
+show_opening(view)
 
 # %% [markdown]
 # ## Main results
@@ -76,17 +75,8 @@ if d.get("n_clusters") is not None:
     rows.append(("Clusters", f"{d['n_clusters']:,}"))
 if d.get("n_assignments") is not None:
     rows.append(("Possible assignments", f"{int(d['n_assignments']):,}"))
-check_words = {
-    "reproduced": "re-drawn from the recorded seed: identical",
-    "mismatch": "re-drawn from the recorded seed: DIFFERENT (see check output)",
-    "not_checked": "not checked (no assignment seed recorded)",
-}
-rows.append(("Assignment check", check_words.get(d["assignment_check"], d["assignment_check"])))
+rows.append(("Assignment check", ASSIGNMENT_CHECK_WORDS.get(d["assignment_check"], d["assignment_check"])))
 show_table(view, pd.DataFrame(rows, columns=["Item", "Value"]), "design", caption="The design as randomized")
 
 # %%
-outs = pd.DataFrame(
-    [(o.label, o.column, o.family, o.alternative, o.statistic.replace("_", " ")) for o in spec.outcomes],
-    columns=["Outcome", "Column", "Family", "Alternative", "Test statistic"],
-)
-show_table(view, outs, "outcomes", caption="Pre-specified outcomes")
+show_outcomes(view)
