@@ -215,6 +215,20 @@ def arm_power(study: Study, estimates: list[dict], *, power: float = 0.8) -> dic
     return {"alpha": alpha, "target_power": power, "as_run": rows, "planned": []}
 
 
+def arm_compliance(study: Study) -> dict | None:
+    """Take-up by arm: share of each arm's units (with known take-up) that received a programme."""
+    if study.spec.compliance is None:
+        return None
+    column = study.spec.compliance.received
+    d = study.frame[column].to_numpy(dtype=float)
+    labels = arm_labels(study)
+    rates = []
+    for arm in study.spec.design.arms:
+        known = (labels == arm) & ~np.isnan(d)
+        rates.append({"arm": arm, "rate": _num(d[known].mean()) if known.any() else None, "n": int(known.sum())})
+    return {"received": column, "rates": rates}
+
+
 def arm_design(study: Study, source: ArmSource, assignment_check: str) -> dict:
     """The ``design`` section of a multi-arm run."""
     design = study.spec.design
@@ -236,6 +250,9 @@ def arm_design(study: Study, source: ArmSource, assignment_check: str) -> dict:
 def arm_sections(study: Study, assignment_check: str) -> dict:
     """Every section of ``results.json`` for a multi-arm or factorial study (``schema`` added by the caller)."""
     spec = study.spec
+    if spec.subgroups:
+        warnings.warn("subgroup analyses are not computed for multi-arm designs yet; the subgroups listed in "
+                      "design.yaml are left out", ReportKitWarning, stacklevel=2)
     log.info("arm contrasts")
     estimates = arm_estimates(study)
     source = arm_source(study)
@@ -248,7 +265,7 @@ def arm_sections(study: Study, assignment_check: str) -> dict:
         "arms": arm_table(study),
         "estimates": estimates,
         "subgroup_differences": [],
-        "compliance": None,
+        "compliance": arm_compliance(study),
         "tests": tests,
         "intervals": intervals,
         "balance": arm_balance(study, source),

@@ -90,3 +90,64 @@ def test_full_run_shows_arm_sections_with_escaped_labels(tmp_path):
         assert (run_dir / "tables" / f"{name}.csv").is_file()
     assert (run_dir / "figures" / "cell_means_renewed.png").is_file()
     assert np.isfinite(pd.read_csv(run_dir / "tables" / "factorial.csv")["estimate"]).all()
+
+
+def small_project(tmp_path, mechanism: str, *, compliance: bool = False, covariates: bool = True) -> Path:
+    """An invented 3-arm study of 36 units (12 clusters in 2 blocks) for any multi-arm mechanism."""
+    from report_kit.design.arms import draw_arms
+
+    rng = np.random.default_rng(5)
+    n = 36
+    ids = [f"u{i:02d}" for i in range(n)]
+    block = np.repeat(["east", "west"], n // 2)
+    cluster = np.repeat([f"c{i:02d}" for i in range(12)], 3)
+    kw = {"block": block if "blocked" in mechanism else None,
+          "cluster": cluster if "cluster" in mechanism else None}
+    arm = np.array(["a", "b", "c"], dtype=object)[draw_arms(mechanism, 3, ids, seed=11, **kw)]
+    if mechanism == "bernoulli":
+        arm[:3] = ["a", "b", "c"]  # every arm used
+    x = rng.normal(size=n)
+    y = x + (arm == "b") * 0.5 + (arm == "c") * 1.0 + rng.normal(size=n)
+    y[[4, 17]] = np.nan
+    frame = pd.DataFrame({"uid": ids, "arm": arm, "blk": block, "cl": cluster, "x": x, "y": y,
+                          "took": ((arm != "a") & (rng.random(n) < 0.8)).astype(int)})
+    (tmp_path / "data").mkdir()
+    frame.to_csv(tmp_path / "data" / "units.csv", index=False)
+    design = {"mechanism": mechanism, "treatment": "arm", "arms": ["a", "b", "c"], "contrasts": "pairwise"}
+    if "blocked" in mechanism:
+        design["block"] = "blk"
+    if "cluster" in mechanism:
+        design["cluster"] = "cl"
+    doc = {"spec_version": 1, "title": "t", "data": {"units": "data/units.csv", "id": "uid"}, "design": design,
+           "analysis": {"covariates": ["x"] if covariates else [], "randomizations": 200, "max_exact": 1000},
+           "outcomes": [{"column": "y"}]}
+    if compliance:
+        doc["compliance"] = {"received": "took"}
+    (tmp_path / "design.yaml").write_text(yaml.safe_dump(doc), encoding="utf-8")
+    return tmp_path
+
+
+@pytest.mark.parametrize("mechanism", ["complete", "bernoulli", "blocked", "cluster", "blocked_cluster"])
+def test_every_multi_arm_mechanism_runs(tmp_path, mechanism):
+    results = analyse_project(small_project(tmp_path, mechanism, compliance=True))
+    pairs = {(e["arm"], e["reference"]) for e in results["estimates"]}
+    assert pairs == {("b", "a"), ("c", "a"), ("c", "b")}
+    estimands = {e["estimand"] for e in results["estimates"]}
+    assert estimands == {"ITT", "CACE"}
+    assert len([t for t in results["tests"] if t["statistic"] == "between_arms"]) == 1
+    assert len(results["intervals"]) == 3
+    assert all(t["p_value"] is not None and 0 < t["p_value"] <= 1 for t in results["tests"])
+    unadjusted = [e for e in results["estimates"] if e["estimator"] == "unadjusted" and e["estimand"] == "ITT"]
+    assert all(e["std_error"] is not None and e["std_error"] > 0 for e in unadjusted)
+
+
+def test_take_up_per_arm_and_subgroup_note(tmp_path):
+    project = small_project(tmp_path, "complete", compliance=True)
+    doc = yaml.safe_load((project / "design.yaml").read_text())
+    doc["subgroups"] = ["blk"]
+    (project / "design.yaml").write_text(yaml.safe_dump(doc), encoding="utf-8")
+    results = analyse_project(project)
+    data = pd.read_csv(project / "data" / "units.csv")
+    rates = {r["arm"]: r["rate"] for r in results["compliance"]["rates"]}
+    assert rates == pytest.approx(data.groupby("arm")["took"].mean().to_dict())
+    assert any("subgroup analyses are not computed" in n for n in results["notes"])
