@@ -151,3 +151,17 @@ def test_take_up_per_arm_and_subgroup_note(tmp_path):
     rates = {r["arm"]: r["rate"] for r in results["compliance"]["rates"]}
     assert rates == pytest.approx(data.groupby("arm")["took"].mean().to_dict())
     assert any("subgroup analyses are not computed" in n for n in results["notes"])
+
+
+def test_diff_names_the_contrast_that_changed(tmp_path):
+    from report_kit.audit.compare import diff_results
+
+    project = small_project(tmp_path, "complete", covariates=False)
+    before = analyse_project(project)
+    data = pd.read_csv(project / "data" / "units.csv")
+    data.loc[data["arm"] == "c", "y"] += 1.0
+    data.to_csv(project / "data" / "units.csv", index=False)
+    after = analyse_project(project)
+    changed = {c.label for c in diff_results(before, after).changed if c.section == "estimates"}
+    assert any("arm=c" in label and "reference=a" in label for label in changed)
+    assert not any("arm=b" in label and "reference=a" in label for label in changed)
