@@ -13,7 +13,7 @@ from report_kit.inputs.spec import load_spec
 
 
 def project(tmp_path, design: dict, arms_column, *, extra_cols=None):
-    (tmp_path / "data").mkdir(exist_ok=True)
+    (tmp_path / "data").mkdir(parents=True, exist_ok=True)
     n = len(arms_column)
     frame = pd.DataFrame({"uid": [f"u{i}" for i in range(n)], "arm": arms_column,
                           "y": np.arange(n, dtype=float)})
@@ -138,3 +138,18 @@ def test_full_factorial_loads(tmp_path):
 ])
 def test_spec_messages(tmp_path, design, expected):
     assert expected in spec_error(project(tmp_path, design, ["a", "b", "c"]))
+
+
+def test_check_command_reports_arm_problems_without_traceback(tmp_path):
+    from click.testing import CliRunner
+
+    from report_kit.cli import main
+
+    path = project(tmp_path, {"arms": THREE}, ["usual", "short", "long", "medium"])
+    result = CliRunner().invoke(main, ["check", path])
+    assert result.exit_code == 1
+    assert "not listed in design.arms" in result.output and "Traceback" not in result.output
+    bad = project(tmp_path / "f", {"arms": ["none", "a", "b"], "factors": {"fa": ["a"], "fb": ["c"]}},
+                  ["none", "a", "b"])
+    result = CliRunner().invoke(main, ["check", bad])
+    assert result.exit_code == 1 and "design.factors.fb[0]: 'c' is not one of design.arms" in result.output
