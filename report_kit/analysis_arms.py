@@ -26,7 +26,7 @@ from report_kit.estimation.arms import (
 )
 from report_kit.estimation.core import BLOCKED, CLUSTERED
 from report_kit.estimation.factorial import FACTORIAL_MECHANISMS, estimate_factorial
-from report_kit.inference.arms import arm_multiplicity, contrast_tests, omnibus_test
+from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
 from report_kit.inference.randomization import count_digits
 from report_kit.inputs.model import Study
 from report_kit.planning.power import mde
@@ -150,6 +150,27 @@ def arm_tests(study: Study, source: ArmSource) -> tuple[list[dict], list[dict]]:
     return tests, intervals
 
 
+def shared_contrast_nulls(study: Study, source: ArmSource) -> dict:
+    """Per family whose outcomes all use ``mean_difference``: the contrasts on the shared multi-arm draws."""
+    spec = study.spec
+    design = spec.design
+    position = {arm: k for k, arm in enumerate(design.arms)}
+    pairs = contrast_pairs(design.arms, design.contrasts)
+    block = study.block if design.mechanism in BLOCKED else None
+    out = {}
+    for family in dict.fromkeys(o.family for o in spec.outcomes):
+        members = [o for o in spec.outcomes if o.family == family]
+        if any(o.statistic != "mean_difference" for o in members):
+            continue
+        Y = np.column_stack([study.outcome(o.column) for o in members])
+        columns = [(j, position[a], position[r]) for j in range(len(members)) for a, r in pairs]
+        alternatives = [members[j].alternative for j, _, _ in columns]
+        observed, null = contrast_joint_null(Y, columns, source, alternatives=alternatives, block=block)
+        keys = [(members[j].column, a, r) for j in range(len(members)) for a, r in pairs]
+        out[family] = (keys, observed, null, source.method)
+    return out
+
+
 def arm_flow(study: Study, source: ArmSource) -> dict:
     """Participant flow and attrition per arm, with the omnibus test of differential attrition.
 
@@ -271,7 +292,8 @@ def arm_sections(study: Study, assignment_check: str) -> dict:
         "balance": arm_balance(study, source),
         "flow": flow["flow"],
         "attrition": flow["attrition"],
-        "multiplicity": arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity),
+        "multiplicity": arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity,
+                                         joint=shared_contrast_nulls(study, source)),
         "power": arm_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }

@@ -165,3 +165,19 @@ def test_diff_names_the_contrast_that_changed(tmp_path):
     changed = {c.label for c in diff_results(before, after).changed if c.section == "estimates"}
     assert any("arm=c" in label and "reference=a" in label for label in changed)
     assert not any("arm=b" in label and "reference=a" in label for label in changed)
+
+
+@pytest.mark.parametrize("statistic, lead", [("mean_difference", "westfall_young"), ("rank_sum", "holm")])
+def test_westfall_young_leads_when_shared_draws_exist(tmp_path, statistic, lead):
+    project = small_project(tmp_path, "blocked", covariates=False)
+    doc = yaml.safe_load((project / "design.yaml").read_text())
+    doc["analysis"]["multiplicity"] = "westfall_young"
+    doc["outcomes"][0]["statistic"] = statistic
+    (project / "design.yaml").write_text(yaml.safe_dump(doc), encoding="utf-8")
+    results = analyse_project(project)
+    leads = {m["method"] for m in results["multiplicity"] if m["lead"]}
+    assert leads == {lead}
+    wy = [m for m in results["multiplicity"] if m["method"] == "westfall_young"]
+    assert len(wy) == (3 if lead == "westfall_young" else 0)
+    assert all(m["p_adjusted"] >= m["p_value"] for m in wy)
+    assert any("Holm leads instead" in n for n in results["notes"]) == (lead == "holm")

@@ -26,10 +26,11 @@ from report_kit.design.arms import ArmSource, MultiArmMechanism
 from report_kit.design.mechanism import mechanism_from_arrays
 from report_kit.errors import ReportKitWarning
 from report_kit.inference.engine import DEFAULT_RTOL, NullDistribution
-from report_kit.inference.multiplicity import benjamini_hochberg, holm
+from report_kit.inference.multiplicity import benjamini_hochberg, holm, westfall_young
 from report_kit.inference.randomization import TestResult, invert_test, randomization_test
 
-__all__ = ["OMNIBUS", "ArmTest", "arm_multiplicity", "between_arms", "omnibus_null", "omnibus_test", "contrast_tests"]
+__all__ = ["OMNIBUS", "ArmTest", "arm_multiplicity", "between_arms", "contrast_joint_null", "contrast_tests",
+           "omnibus_null", "omnibus_test"]
 
 OMNIBUS = "between_arms"
 
@@ -143,34 +144,106 @@ def contrast_tests(y, arm, pairs, *, kind: str, block=None, cluster=None, statis
     return out
 
 
-def arm_multiplicity(tests, outcomes, *, lead: str | None = None) -> list[dict]:
-    """Holm and Benjamini–Hochberg adjustment of the arm contrasts, family by family.
+def arm_multiplicity(tests, outcomes, *, lead: str | None = None, joint=None) -> list[dict]:
+    """Holm, Benjamini–Hochberg and (with shared draws) Westfall–Young adjustment of the contrasts.
 
     A family holds every contrast test (rows of ``tests`` with an ``arm``) of
     every outcome declared in that family (``outcomes[i].family``): with K arms
     and ``reference`` contrasts a family of m outcomes has ``m (K - 1)``
-    hypotheses. Omnibus rows are not adjusted. Westfall–Young needs one joint
-    null of all contrasts; the contrasts re-randomize different subsets of
-    units, so with ``lead = 'westfall_young'`` Holm (valid under any
-    dependence, Holm 1979) leads instead, with a warning.
+    hypotheses. Omnibus rows are not adjusted.
+
+    ``joint`` maps a family to ``(keys, observed, null, method)`` from
+    :func:`contrast_joint_null` (``keys`` = ``(outcome, arm, reference)`` in
+    column order): the contrasts on the shared multi-arm draws under the sharp
+    null that no arm matters. Westfall–Young min-p step-down adjusted p-values
+    come from them, raised to at least the contrast's own randomization p-value.
+    A family without shared draws and ``lead = 'westfall_young'`` is led by Holm
+    (valid under any dependence, Holm 1979), with a warning.
 
     Returns ``{outcome, arm, reference, family, method, p_value, p_adjusted, lead}`` rows.
     """
-    if lead == "westfall_young":
-        warnings.warn("analysis.multiplicity 'westfall_young' is not available for multi-arm contrasts; "
-                      "Holm adjustment leads instead", ReportKitWarning, stacklevel=2)
-        lead = "holm"
+    joint = joint or {}
     family_of = {o.column: o.family for o in outcomes}
     rows = []
     for family in dict.fromkeys(o.family for o in outcomes):
         members = [t for t in tests if t.get("arm") is not None and family_of.get(t["outcome"]) == family]
         tested = [t for t in members if t.get("p_value") is not None]
         p = np.array([t["p_value"] for t in tested], dtype=float)
-        adjusted = {"holm": holm(p).tolist() if p.size else [], "bh": benjamini_hochberg(p).tolist() if p.size else []}
-        for method, values in adjusted.items():
-            by_id = {id(t): v for t, v in zip(tested, values)}
+        adjusted = {"holm": dict(zip(map(id, tested), holm(p).tolist() if p.size else [])),
+                    "bh": dict(zip(map(id, tested), benjamini_hochberg(p).tolist() if p.size else []))}
+        if family in joint and tested:
+            adjusted["westfall_young"] = _westfall_young(tested, *joint[family])
+        family_lead = lead
+        if lead == "westfall_young" and "westfall_young" not in adjusted and members:
+            warnings.warn(f"analysis.multiplicity 'westfall_young': no shared draws for the {family} contrasts "
+                          "(Westfall–Young needs every outcome of the family tested by mean_difference); Holm "
+                          "leads instead", ReportKitWarning, stacklevel=2)
+            family_lead = "holm"
+        for method, by_id in adjusted.items():
             for t in members:
                 rows.append({"outcome": t["outcome"], "arm": t["arm"], "reference": t["reference"],
                              "family": family, "method": method, "p_value": t.get("p_value"),
-                             "p_adjusted": by_id.get(id(t)), "lead": method == lead})
+                             "p_adjusted": by_id.get(id(t)), "lead": method == family_lead})
     return rows
+
+
+def _westfall_young(tested, keys, observed, null, method) -> dict[int, float]:
+    column = {key: j for j, key in enumerate(keys)}
+    cols = [column[(t["outcome"], t["arm"], t["reference"])] for t in tested]
+    null = np.asarray(null, dtype=float)[:, cols]
+    keep = np.isfinite(null).all(axis=1)
+    if not keep.any():
+        return {}
+    adjusted = westfall_young(np.asarray(observed, dtype=float)[cols], null[keep], method=method)
+    return {id(t): max(float(v), float(t["p_value"])) for t, v in zip(tested, adjusted)}
+
+def _contrast_statistics(y: np.ndarray, assignments: np.ndarray, a: int, r: int, block: np.ndarray | None,
+                         weight: np.ndarray | None) -> np.ndarray:
+    """Difference in means of arm ``a`` minus arm ``r`` for each assignment row (block-weighted with blocks)."""
+    seen = ~np.isnan(y)
+    y0 = np.where(seen, y, 0.0)
+    strata = [np.ones(y.size, dtype=bool)] if block is None else [block == b for b in range(int(block.max()) + 1)]
+    total = np.zeros(assignments.shape[0])
+    for s, members in enumerate(strata):
+        parts = []
+        for k in (a, r):
+            member = (assignments == k) & (seen & members)[None, :]
+            with np.errstate(invalid="ignore", divide="ignore"):
+                parts.append((member @ y0) / member.sum(axis=1))
+        share = 1.0 if weight is None else weight[s]
+        total = total + share * (parts[0] - parts[1])
+    return total
+
+
+def contrast_joint_null(Y, pairs, source: ArmSource, *, alternatives, block=None) -> tuple[np.ndarray, np.ndarray]:
+    """Observed ``(m,)`` and null ``(B, m)`` contrast statistics on the shared multi-arm draws, oriented.
+
+    Column ``j`` is the difference in means (block-weighted, with weights the
+    blocks' shares of the two arms' units) of contrast ``pairs[j] = (column,
+    arm code, reference code)`` of ``Y``, under every assignment of ``source``
+    (the sharp null that no arm changes any outcome). Oriented so that larger
+    is more extreme: ``greater`` keeps it, ``less`` negates it, ``two-sided``
+    takes the distance from the null mean (with the observed row included for
+    Monte Carlo draws, as the engine does). Input of Westfall–Young.
+    """
+    Y = np.asarray(Y, dtype=float)
+    mech = source.mechanism
+    codes = None if block is None else np.unique(np.asarray(block), return_inverse=True)[1].ravel()
+    chunks = list(source.chunks())
+    observed, null = [], []
+    for (col, a, r), alt in zip(pairs, alternatives):
+        weight = None
+        if codes is not None:
+            counts = np.bincount(codes[np.isin(mech.arm, (a, r))], minlength=int(codes.max()) + 1)
+            weight = counts / counts.sum()
+        t = _contrast_statistics(Y[:, col], mech.arm[None, :], a, r, codes, weight)[0]
+        draws = np.concatenate([_contrast_statistics(Y[:, col], c, a, r, codes, weight) for c in chunks])
+        if alt == "less":
+            t, draws = -t, -draws
+        elif alt == "two-sided":
+            valid = draws[np.isfinite(draws)]
+            centre = valid.mean() if source.method == "exact" else (valid.sum() + t) / (valid.size + 1)
+            t, draws = abs(t - centre), np.abs(draws - centre)
+        observed.append(t)
+        null.append(draws)
+    return np.asarray(observed), np.column_stack(null)

@@ -155,3 +155,38 @@ def test_arm_multiplicity_families_match_statsmodels():
     assert [r["p_adjusted"] for r in secondary] == [0.02, None]
     assert all(r["lead"] == (r["method"] == "holm") for r in rows)
     assert len(rows) == 2 * 6
+
+
+def test_westfall_young_of_contrasts_equals_brute_force():
+    # Reference: exact enumeration of all 8!/(3!2!3!) = 560 assignments with plain numpy means,
+    # and the step-down min-p rule of Westfall & Young (1993) written out for two hypotheses.
+    from report_kit.inference.arms import contrast_joint_null
+    from report_kit.inference.multiplicity import westfall_young
+
+    y, arm = data(seed=12)
+    mech = multi_arm_mechanism("complete", arm, n_arms=3)
+    source = ArmSource.choose(mech, max_exact=10_000, draws=10, seed=1)
+    observed, null = contrast_joint_null(y[:, None], [(0, 1, 0), (0, 2, 0)], source,
+                                         alternatives=["two-sided", "two-sided"])
+    adjusted = westfall_young(observed, null, method="exact")
+
+    def stats_of(a):
+        return np.array([y[a == 1].mean() - y[a == 0].mean(), y[a == 2].mean() - y[a == 0].mean()])
+
+    rows = []
+    for first in itertools.combinations(range(8), 3):
+        rest = [i for i in range(8) if i not in first]
+        for second in itertools.combinations(rest, 2):
+            a = np.full(8, 2)
+            a[list(first)], a[list(second)] = 0, 1
+            rows.append(stats_of(a))
+    rows = np.array(rows)
+    dist = np.abs(rows - rows.mean(axis=0))
+    obs = np.abs(stats_of(arm) - rows.mean(axis=0))
+    pb = np.array([[np.mean(dist[:, j] >= dist[b, j] * (1 - 1e-12)) for j in range(2)] for b in range(len(rows))])
+    raw = np.array([np.mean(dist[:, j] >= obs[j] * (1 - 1e-12)) for j in range(2)])
+    first, second = np.argsort(raw, kind="stable")
+    p_first = np.mean(pb.min(axis=1) <= raw[first] * (1 + 1e-12))
+    p_second = max(p_first, np.mean(pb[:, second] <= raw[second] * (1 + 1e-12)))
+    assert np.sort(observed) == pytest.approx(np.sort(obs))
+    assert adjusted[first] == pytest.approx(p_first) and adjusted[second] == pytest.approx(p_second)
