@@ -27,7 +27,6 @@ from report_kit.estimation.arms import (
 from report_kit.estimation.core import BLOCKED, CLUSTERED
 from report_kit.estimation.factorial import FACTORIAL_MECHANISMS, estimate_factorial
 from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
-from report_kit.inference.randomization import count_digits
 from report_kit.inputs.model import Study
 from report_kit.planning.power import mde
 
@@ -259,7 +258,8 @@ def arm_design(study: Study, source: ArmSource, assignment_check: str) -> dict:
         "mechanism": design.mechanism, "n_units": int(labels.size), "n_treated": None, "n_control": None,
         "n_blocks": None if block is None else len(set(block.tolist())),
         "n_clusters": None if cluster is None else len(set(cluster.tolist())),
-        "n_assignments": count_digits(source.mechanism.count()), "assignment_check": assignment_check,
+        "n_assignments": source.mechanism.count_text(),
+        "n_assignments_log10": round(source.mechanism.log10_count(), 6), "assignment_check": assignment_check,
         "inference_method": source.method, "draws": int(source.draws),
         "arms": [{"arm": a, "label": design.arm_label(a), "n_units": int((labels == a).sum()),
                   "reference": k == 0} for k, a in enumerate(design.arms)],

@@ -75,8 +75,8 @@ if d.get("n_blocks") is not None:
     rows.append(("Blocks", f"{d['n_blocks']:,}"))
 if d.get("n_clusters") is not None:
     rows.append(("Clusters", f"{d['n_clusters']:,}"))
-rows.append(("Possible assignments", f"{int(d['n_assignments']):,}" if len(d["n_assignments"]) < 16
-             else f"a {len(d['n_assignments'])}-digit number"))
+rows.append(("Possible assignments", f"{int(d['n_assignments']):,}" if d["n_assignments"] is not None
+             else f"about 10^{d['n_assignments_log10']:.0f}"))
 rows.append(("Assignment check", ASSIGNMENT_CHECK_WORDS.get(d["assignment_check"], d["assignment_check"])))
 show_table(view, pd.DataFrame(rows, columns=["Item", "Value"]), "design", caption="The design as randomized")
 

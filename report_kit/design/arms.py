@@ -27,6 +27,7 @@ __all__ = ["MultiArmMechanism", "ArmSource", "multi_arm_mechanism", "draw_arms"]
 
 ARM_KINDS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster")
 _CHUNK_CELLS = 1 << 22
+MAX_COUNT_DIGITS = 20  # longer counts are reported by their base-10 logarithm only
 
 
 def _codes(labels) -> np.ndarray:
@@ -74,6 +75,21 @@ class MultiArmMechanism:
             counts = np.bincount(self.group_arm[members], minlength=self.n_arms)
             total *= math.factorial(members.size) // math.prod(math.factorial(int(c)) for c in counts)
         return total
+
+    def log10_count(self) -> float:
+        """Base-10 logarithm of :meth:`count`, from ``lgamma`` (cheap for huge designs)."""
+        total = 0.0
+        for members in self.strata:
+            counts = np.bincount(self.group_arm[members], minlength=self.n_arms)
+            total += math.lgamma(members.size + 1) - sum(math.lgamma(int(c) + 1) for c in counts)
+        return total / math.log(10.0)
+
+    def count_text(self, max_digits: int = MAX_COUNT_DIGITS) -> str | None:
+        """:meth:`count` as decimal digits when it has at most ``max_digits`` digits, else ``None``."""
+        if self.log10_count() >= max_digits + 1:
+            return None
+        text = str(self.count())
+        return text if len(text) <= max_digits else None
 
     def enumerate_chunks(self) -> Iterator[np.ndarray]:
         """Every assignment once (strata in order, last stratum fastest), in chunks."""
@@ -129,9 +145,8 @@ class ArmSource:
     @classmethod
     def choose(cls, mechanism: MultiArmMechanism, *, max_exact: int, draws: int, seed: int) -> ArmSource:
         """Every assignment when there are at most ``max_exact``; otherwise ``draws`` seeded ones."""
-        count = mechanism.count()
-        if count <= max_exact:
-            return cls(mechanism=mechanism, method="exact", draws=count, seed=None)
+        if mechanism.log10_count() <= math.log10(max(max_exact, 1)) + 1 and mechanism.count() <= max_exact:
+            return cls(mechanism=mechanism, method="exact", draws=mechanism.count(), seed=None)
         return cls(mechanism=mechanism, method="monte_carlo", draws=int(draws), seed=int(seed))
 
 

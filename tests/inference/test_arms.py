@@ -190,3 +190,15 @@ def test_westfall_young_of_contrasts_equals_brute_force():
     p_second = max(p_first, np.mean(pb[:, second] <= raw[second] * (1 + 1e-12)))
     assert np.sort(observed) == pytest.approx(np.sort(obs))
     assert adjusted[first] == pytest.approx(p_first) and adjusted[second] == pytest.approx(p_second)
+
+
+def test_log10_count_and_count_text():
+    # Exact identity: log10 of the multinomial coefficient 8!/(3!2!3!) = 560; a large design
+    # (90 units, 3 arms of 30: about 10^41) is reported by its logarithm only.
+    _, arm = data()
+    mech = multi_arm_mechanism("complete", arm, n_arms=3)
+    assert mech.log10_count() == pytest.approx(math.log10(560)) and mech.count_text() == "560"
+    big = multi_arm_mechanism("complete", np.repeat([0, 1, 2], 30), n_arms=3)
+    exact = math.factorial(90) // math.factorial(30) ** 3
+    assert big.log10_count() == pytest.approx(math.log10(exact)) and big.count_text() is None
+    assert ArmSource.choose(big, max_exact=10**6, draws=50, seed=1).method == "monte_carlo"
