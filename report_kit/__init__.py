@@ -33,14 +33,15 @@ _PUBLIC = {
     "randomization_test": "inference.randomization", "null_distribution": "inference.randomization",
     "invert_test": "inference.inversion",
     "holm": "inference.multiplicity", "benjamini_hochberg": "inference.multiplicity",
-    "westfall_young": "inference.multiplicity",
+    "westfall_young": "inference.multiplicity", "inference_scope": "inference.scope",
+    "ChunkMap": "inference.engine", "serial_chunk_map": "inference.engine",
     # estimation
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",
     "estimate_subgroups": "estimation.subgroups",
     # checks
     "covariate_balance": "checks.balance", "mahalanobis_balance_test": "checks.balance",
-    "participant_flow": "checks.balance",
+    "participant_flow": "checks.flow",
     "lee_bounds": "checks.attrition", "manski_bounds": "checks.attrition", "attrition_test": "checks.attrition",
     # planning
     "mde": "planning.power", "simulated_power": "planning.power", "plan_power": "planning.plan",

@@ -17,12 +17,17 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from report_kit.analysis_arms import arm_sections
-from report_kit.checks.attrition import study_attrition
-from report_kit.checks.balance import participant_flow, study_balance
+from report_kit.checks.attrition import study_attrition_check
+from report_kit.checks.balance import study_balance_check
+from report_kit.checks.flow import participant_flow
+from report_kit.design.mechanism import Mechanism
+from report_kit.inference.scope import inference_scope
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
+from report_kit.inference.engine import ChunkMap
 from report_kit.inputs.model import Study
-from report_kit.inference.multiplicity import SharedNull, study_multiplicity
+from report_kit.estimation.roles import estimate_roles
+from report_kit.inference.multiplicity import SharedNull, multiplicity_table, study_multiplicity
 from report_kit.planning.power import study_power
 from report_kit.inference.randomization import StudyRandomization, study_assignments, study_randomization
 
@@ -40,7 +45,7 @@ class Analysis:
 
 
 def design_summary(study: Study, rand: StudyRandomization | None = None, *,
-                   assignment_check: str = "not_checked") -> dict:
+                   assignment_check: str = "not_checked", mechanism: Mechanism | None = None) -> dict:
     """The ``design`` section: counts of units, arms, blocks, clusters and assignments."""
     z = study.z
     block, cluster = study.block, study.cluster
@@ -52,6 +57,7 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
         "n_blocks": None if block is None else int(len(set(block.tolist()))),
         "n_clusters": None if cluster is None else int(len(set(cluster.tolist()))),
         "n_assignments": None if rand is None else rand.n_assignments,
+        "n_assignments_log10": None if mechanism is None else round(mechanism.log10_count(), 6),
         "assignment_check": assignment_check,
         "inference_method": None if rand is None else rand.method,
         "draws": None if rand is None else int(rand.draws),
@@ -67,7 +73,7 @@ def shared_nulls(study: Study, rand: StudyRandomization) -> dict[str, SharedNull
     for family, columns in families.items():
         joint = rand.joint_null(columns)
         out[family] = SharedNull(outcomes=joint.outcomes, observed=joint.observed, null=joint.null,
-                                 method=joint.method, weights=joint.weights)
+                                 method=joint.method, weights=joint.weights, tolerance=joint.tolerance)
     return out
 
 
@@ -83,11 +89,23 @@ def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]
     return arrays
 
 
-def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
-    """Run every analysis step on a validated study and return the results."""
+def with_roles(estimates: list[dict], compliance: dict | None) -> None:
+    """Give each estimate row its ``role`` (which estimate leads; see :mod:`report_kit.estimation.roles`)."""
+    received = (compliance or {}).get("received")
+    for row, role in zip(estimates, estimate_roles(estimates, take_up_column=received)):
+        row["role"] = role
+
+
+def analyse(study: Study, *, assignment_check: str = "not_checked", chunk_map: ChunkMap | None = None) -> Analysis:
+    """Run every analysis step on a validated study and return the results.
+
+    ``chunk_map`` runs the chunks of the one pass over the assignment draws
+    (default: one after another in this process; see
+    :func:`report_kit.inference.engine.run_pass`); results do not depend on it.
+    """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ReportKitWarning)
-        results, arrays = _sections(study, assignment_check)
+        results, arrays = _sections(study, assignment_check, chunk_map)
     notes = sorted({str(w.message) for w in caught if issubclass(w.category, ReportKitWarning)})
     for note in notes:
         log.warning("%s", note)
@@ -95,35 +113,42 @@ def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
     return Analysis(results=results, arrays=arrays)
 
 
-def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
+def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -> tuple[dict, dict]:
     spec = study.spec
     if spec.design.multi_arm:
-        return {"schema": SCHEMA, **arm_sections(study, assignment_check)}, {}
+        return {"schema": SCHEMA, **arm_sections(study, assignment_check, chunk_map=chunk_map)}, {}
     log.info("estimates")
     estimates = study_estimates(study)
-    log.info("randomization tests")
-    mechanism, source = study_assignments(study)
-    rand = study_randomization(study, (mechanism, source))
-    weights = mechanism.weights if source.method == "exact" else None
-    log.info("balance, flow, attrition")
-    balance = study_balance(study, source.chunks, source.method, weights=weights)
-    attrition = study_attrition(study, source.chunks, source.method, weights=weights)
+    log.info("randomization tests, balance and attrition: one pass over the draws")
+    balance_check, attrition_check = study_balance_check(study), study_attrition_check(study)
+    extra = [attrition_check.statistic] + ([balance_check.statistic] if balance_check.statistic else [])
+    assignments = study_assignments(study)
+    mechanism = assignments[0]
+    rand = study_randomization(study, assignments, extra=extra, chunk_map=chunk_map)
+    attrition = attrition_check.section(rand.extra[0])
+    balance = balance_check.section(rand.extra[1] if len(rand.extra) > 1 else None, rand.method)
     log.info("multiplicity and power")
     multiplicity = study_multiplicity(rand.tests, spec.outcomes, shared_nulls(study, rand),
                                       lead=spec.analysis.multiplicity)
+    compliance = study_compliance(study)
+    with_roles(estimates, compliance)
     results = {
         "schema": SCHEMA,
-        "design": design_summary(study, rand, assignment_check=assignment_check),
+        "design": design_summary(study, rand, assignment_check=assignment_check, mechanism=mechanism),
         "estimates": estimates,
         "subgroup_differences": study_subgroup_differences(study),
-        "compliance": study_compliance(study),
+        "compliance": compliance,
         "tests": rand.tests,
         "intervals": rand.intervals,
         "balance": balance,
         "flow": participant_flow(study, estimates),
         "attrition": attrition,
         "multiplicity": multiplicity,
+        "inference_scope": inference_scope(study),
+        "multiplicity_table": multiplicity_table(multiplicity),
         "power": study_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
     }
+    if study.handling:  # only when design.yaml declares a data-handling option
+        results["data_handling"] = list(study.handling)
     return results, plot_arrays(study, rand)

@@ -26,7 +26,9 @@ from report_kit.estimation.arms import (
 )
 from report_kit.estimation.core import BLOCKED, CLUSTERED
 from report_kit.estimation.factorial import FACTORIAL_MECHANISMS, estimate_factorial
+from report_kit.estimation.roles import estimate_roles
 from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
+from report_kit.inference.engine import ChunkMap
 from report_kit.inputs.model import Study
 from report_kit.planning.power import mde
 
@@ -127,7 +129,7 @@ def _adjusted(column: str, y, labels, X, kw: dict):
         return []
 
 
-def arm_tests(study: Study, source: ArmSource) -> tuple[list[dict], list[dict]]:
+def arm_tests(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> tuple[list[dict], list[dict]]:
     """``tests`` (each contrast, then one omnibus row per outcome) and ``intervals`` rows."""
     spec = study.spec
     design, analysis = spec.design, spec.analysis
@@ -145,11 +147,11 @@ def arm_tests(study: Study, source: ArmSource) -> tuple[list[dict], list[dict]]:
         intervals += [r.interval_row() for r in results]
     names = [o.column for o in spec.outcomes]
     Y = np.column_stack([study.outcome(c) for c in names])
-    tests += [r.test_row() for r in omnibus_test(Y, source, outcomes=names)]
+    tests += [r.test_row() for r in omnibus_test(Y, source, outcomes=names, chunk_map=chunk_map)]
     return tests, intervals
 
 
-def shared_contrast_nulls(study: Study, source: ArmSource) -> dict:
+def shared_contrast_nulls(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
     """Per family whose outcomes all use ``mean_difference``: the contrasts on the shared multi-arm draws."""
     spec = study.spec
     design = spec.design
@@ -164,13 +166,14 @@ def shared_contrast_nulls(study: Study, source: ArmSource) -> dict:
         Y = np.column_stack([study.outcome(o.column) for o in members])
         columns = [(j, position[a], position[r]) for j in range(len(members)) for a, r in pairs]
         alternatives = [members[j].alternative for j, _, _ in columns]
-        observed, null = contrast_joint_null(Y, columns, source, alternatives=alternatives, block=block)
+        observed, null = contrast_joint_null(Y, columns, source, alternatives=alternatives, block=block,
+                                             chunk_map=chunk_map)
         keys = [(members[j].column, a, r) for j in range(len(members)) for a, r in pairs]
         out[family] = (keys, observed, null, source.method)
     return out
 
 
-def arm_flow(study: Study, source: ArmSource) -> dict:
+def arm_flow(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
     """Participant flow and attrition per arm, with the omnibus test of differential attrition.
 
     The attrition test applies the ``between_arms`` randomization test to the
@@ -192,20 +195,20 @@ def arm_flow(study: Study, source: ArmSource) -> dict:
     rates = [{"arm": arm, "rate": _num(lost[labels == arm].mean())} for arm in spec.design.arms]
     test = None
     if lost.any() and not lost.all():
-        (result,) = omnibus_test(lost, source, outcomes=["any outcome missing"])
+        (result,) = omnibus_test(lost, source, outcomes=["any outcome missing"], chunk_map=chunk_map)
         test = {k: result.test.to_dict()[k] for k in ("statistic", "observed", "p_value", "method", "draws",
                                                        "mc_std_error")}
     return {"flow": flow, "attrition": {"rates": rates, "test": test}}
 
 
-def arm_balance(study: Study, source: ArmSource) -> dict:
+def arm_balance(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
     """Covariate means per arm and the omnibus randomization test of each covariate."""
     labels = arm_labels(study)
     covariates = list(study.spec.analysis.covariates)
     rows = []
     if covariates:
         X = study.frame[covariates].to_numpy(dtype=float)
-        tests = omnibus_test(X, source, outcomes=covariates)
+        tests = omnibus_test(X, source, outcomes=covariates, chunk_map=chunk_map)
         for j, name in enumerate(covariates):
             means = {}
             for arm in study.spec.design.arms:
@@ -268,19 +271,26 @@ def arm_design(study: Study, source: ArmSource, assignment_check: str) -> dict:
     }
 
 
-def arm_sections(study: Study, assignment_check: str) -> dict:
-    """Every section of ``results.json`` for a multi-arm or factorial study (``schema`` added by the caller)."""
+def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | None = None) -> dict:
+    """Every section of ``results.json`` for a multi-arm or factorial study (``schema`` added by the caller).
+
+    ``chunk_map`` runs the chunks of the engine's passes over the multi-arm draws
+    (see :func:`report_kit.inference.engine.run_pass`); results do not depend on it.
+    """
     spec = study.spec
     if spec.subgroups:
         warnings.warn("subgroup analyses are not computed for multi-arm designs yet; the subgroups listed in "
                       "design.yaml are left out", ReportKitWarning, stacklevel=2)
     log.info("arm contrasts")
     estimates = arm_estimates(study)
+    received = None if spec.compliance is None else spec.compliance.received
+    for row, role in zip(estimates, estimate_roles(estimates, take_up_column=received)):
+        row["role"] = role
     source = arm_source(study)
     log.info("randomization tests (%s, %d assignments)", source.method, source.draws)
-    tests, intervals = arm_tests(study, source)
+    tests, intervals = arm_tests(study, source, chunk_map)
     log.info("balance, flow, attrition")
-    flow = arm_flow(study, source)
+    flow = arm_flow(study, source, chunk_map)
     return {
         "design": arm_design(study, source, assignment_check),
         "arms": arm_table(study),
@@ -289,11 +299,12 @@ def arm_sections(study: Study, assignment_check: str) -> dict:
         "compliance": arm_compliance(study),
         "tests": tests,
         "intervals": intervals,
-        "balance": arm_balance(study, source),
+        "balance": arm_balance(study, source, chunk_map),
         "flow": flow["flow"],
         "attrition": flow["attrition"],
         "multiplicity": arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity,
-                                         joint=shared_contrast_nulls(study, source)),
+                                         joint=shared_contrast_nulls(study, source, chunk_map)),
         "power": arm_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
+        **({"data_handling": list(study.handling)} if study.handling else {}),
     }

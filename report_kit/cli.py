@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -51,8 +52,10 @@ class Group(click.Group):
             _fail(err, err.exit_code)
         except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException, SystemExit):
             raise
-        except KeyboardInterrupt:
-            _fail(Exception("interrupted; no run folder was left behind"), 130)
+        except KeyboardInterrupt as err:  # Ctrl-C, or SIGTERM/SIGHUP during a run (runfolder.Stopped)
+            signum = getattr(err, "signum", 2)
+            _fail(Exception(f"stopped ({signal.Signals(signum).name}); no run folder was left behind and "
+                            "earlier runs are untouched"), 128 + signum)
         except BrokenPipeError:
             # The reader went away (e.g. `report-kit diff A B | head`): stop quietly.
             devnull = os.open(os.devnull, os.O_WRONLY)
@@ -141,15 +144,19 @@ def assign(path: Path, output: Path | None, force: bool) -> None:
 @click.option("--no-pdf", is_flag=True, help="Skip the PDF (HTML only).")
 def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool) -> None:
     """Analyse, execute the report notebooks and render to runs/<run-id>/."""
-    from report_kit.pipeline import RunOptions, run_project
+    from report_kit.report.notebooks import ReportKernel
 
-    options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
-                         argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
-    def announce(run_dir: str) -> None:
-        click.echo(f"report: {run_dir}/report.html")
-        _progress(_plan_line(Path(run_dir).parent.parent))
+    with ReportKernel() as kernel:  # starts now: its start-up overlaps the imports and the analysis
+        from report_kit.pipeline import RunOptions, run_project
 
-    outcome = run_project(path, options, progress=_progress, on_run_id=announce)
+        options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
+                             argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
+
+        def announce(run_dir: str) -> None:
+            click.echo(f"report: {run_dir}/report.html")
+            _progress(_plan_line(Path(run_dir).parent.parent))
+
+        outcome = run_project(path, options, progress=_progress, on_run_id=announce, kernel=kernel)
     click.echo(f"done: {outcome.report_html}")
     if outcome.report_pdf:
         click.echo(f"      {outcome.report_pdf}")
@@ -159,7 +166,7 @@ def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool)
 @click.argument("run_a", type=click.Path(path_type=Path))
 @click.argument("run_b", type=click.Path(path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print the differences as JSON.")
-@click.option("--max-items", default=20, show_default=True, help="Changed cells and results listed before summarising.")
+@click.option("--max-items", default=20, show_default=True, type=click.IntRange(min=1), help="Changed cells and results listed before summarising.")
 def diff(run_a: Path, run_b: Path, as_json: bool, max_items: int) -> None:
     """What changed between two runs: inputs (row level, by id) and results."""
     from report_kit.audit.compare import compare_runs, format_diff_text
@@ -229,10 +236,15 @@ def lock(path: Path, force: bool) -> None:
                    "(every assignment instead when there are at most max(--draws, 10000) "
                    "and at most analysis.max_exact).")
 @click.option("--seed", type=int, help="Seed of the simulation (default: analysis.seed).")
+@click.option("--attrition", type=float, default=0.0, show_default=True,
+              help="Expected share of units whose outcome will be missing.")
+@click.option("--takeup-treated", type=float, help="Expected share taking the treatment when offered.")
+@click.option("--takeup-control", type=float, help="Expected share taking the treatment when not offered.")
 @click.option("--json", "as_json", is_flag=True, help="Print the plan as JSON.")
 def power(path: Path, sd: float | None, effect: float | None, target_power: float, icc: float | None,
           cluster_size: float | None, n_treated: int | None, n_control: int | None, n_clusters: int | None,
-          outcome: str | None, simulate: int, draws: int, seed: int | None, as_json: bool) -> None:
+          outcome: str | None, simulate: int, draws: int, seed: int | None, attrition: float,
+          takeup_treated: float | None, takeup_control: float | None, as_json: bool) -> None:
     """Power and minimum detectable effect for the design as planned."""
     from report_kit.pipeline import project_dir_of
     from report_kit.planning.power import format_plan_text, plan_power
@@ -252,12 +264,13 @@ def power(path: Path, sd: float | None, effect: float | None, target_power: floa
     try:
         plan = plan_power(project, sd=sd, effect=effect, power=target_power, icc=icc, cluster_size=cluster_size,
                           n_treated=n_treated, n_control=n_control, n_clusters=n_clusters, outcome=outcome,
-                          simulate=simulate, draws=draws, seed=seed, progress=report)
-    except UsageError as err:  # name the options as typed: `n_treated` -> --n-treated
+                          simulate=simulate, draws=draws, seed=seed, progress=report, attrition=attrition,
+                          takeup_treated=takeup_treated, takeup_control=takeup_control)
+    except (TypeError, ValueError, UsageError) as err:  # the options were wrong; name them as typed: `n_treated` -> --n-treated
         import re
 
         names = {"sd", "effect", "power", "icc", "cluster_size", "n_treated", "n_control", "n_clusters",
-                 "outcome", "simulate", "draws", "seed"}
+                 "outcome", "simulate", "draws", "seed", "attrition", "takeup_treated", "takeup_control"}
         text = re.sub(r"`(\w+)`", lambda m: "--" + m[1].replace("_", "-") if m[1] in names else m[0], str(err))
         raise UsageError(text) from err
     click.echo(json.dumps(plan.to_dict(), indent=2) if as_json else format_plan_text(plan))

@@ -9,9 +9,15 @@ class                      exit code  raised when
 ``SpecError``              1          ``design.yaml`` is missing, unreadable or invalid
 ``DataError``              1          an input table is missing, unreadable or invalid
 ``DesignError``            1          data and design disagree (e.g. a cluster split across arms)
+``ArchiveError``           1          an archive is unsafe, too large once unpacked, or not a report-kit archive
+``OutputError``            1          a run folder or file cannot be written (path named)
 ``UsageError``             2          a command was called the wrong way (bad path, bad option)
 ``VerificationError``      3          ``verify`` found a difference
 =========================  =========  ==========================================
+
+Library misuse from Python (an argument of the wrong type or out of range)
+raises plain ``TypeError`` or ``ValueError``, not ``UsageError``; the command
+line validates its own options and maps the errors they cause to exit code 2.
 
 Degenerate-but-computable situations warn with :class:`ReportKitWarning`
 instead of failing.
@@ -36,6 +42,14 @@ class DataError(ReportKitError):
 
 class DesignError(ReportKitError):
     """Data and design disagree, or a design cannot support the requested analysis."""
+
+
+class ArchiveError(ReportKitError):
+    """An archive was refused: unsafe members, too large unpacked, or not a report-kit archive."""
+
+
+class OutputError(ReportKitError):
+    """The tool cannot write its output; the message names the path and what to do."""
 
 
 class UsageError(ReportKitError):

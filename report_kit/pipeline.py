@@ -11,7 +11,6 @@ from __future__ import annotations
 import hashlib
 import logging
 import shutil
-import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -26,6 +25,9 @@ from report_kit.errors import SpecError, UsageError
 from report_kit.inputs.model import Study
 from report_kit.audit.planlock import LOCK_NAME
 from report_kit.inputs.spec import SPEC_FILENAME, load_spec
+from report_kit.runfolder import (
+    finish_run, output_error, remove_stale_partials, reserve_run, stop_on_signals,
+)
 
 log = logging.getLogger(__name__)
 
@@ -78,9 +80,27 @@ def analyse_project(project: Path | str) -> dict:
 
 def run_analysis(study: Study) -> Analysis:
     """The deterministic analysis step (the assignment check included)."""
+    from report_kit.audit.planlock import plan_deviations
     from report_kit.design.assignment import assignment_check_status
 
-    return analyse(study, assignment_check=assignment_check_status(study))
+    result = analyse(study, assignment_check=assignment_check_status(study))
+    result.results["plan"] = plan_deviations(study.spec.project_dir)
+    return result
+
+
+def write_changes(run_dir: Path, compare_to: Path, run_id: str) -> dict:
+    """``changes.json``: what changed since the compared run (beside results.json).
+
+    It depends on a second run folder, so it is not part of ``results.json``;
+    ``report-kit verify`` re-derives it when the compared run is still next to
+    this one (see docs/results.md).
+    """
+    from report_kit.audit.compare import CHANGES_NAME, compare_runs
+
+    changes = compare_runs(Path(compare_to), run_dir).to_dict()
+    changes["run_b"] = run_id
+    provenance.write_json(run_dir / CHANGES_NAME, changes)
+    return changes
 
 
 def make_run_id(study: Study, now: datetime) -> str:
@@ -92,32 +112,54 @@ def make_run_id(study: Study, now: datetime) -> str:
 
 
 def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
-                progress: Progress = _quiet, on_run_id: Progress = _quiet) -> RunOutcome:
-    """Analyse a project, execute the report notebooks, render, record provenance."""
-    from report_kit.report import notebooks
-    from report_kit.report import render
+                progress: Progress = _quiet, on_run_id: Progress = _quiet, kernel=None) -> RunOutcome:
+    """Analyse a project, execute the report notebook, render, record provenance.
 
+    ``kernel``: an entered :class:`report_kit.report.notebooks.ReportKernel`
+    started before this call (the command line does), or None to start one
+    when the notebook runs. SIGTERM and SIGHUP stop the run like Ctrl-C; an
+    ``OSError`` while writing becomes :class:`report_kit.errors.OutputError`
+    (see :mod:`report_kit.runfolder`).
+    """
     started = datetime.now(timezone.utc)
     study = load_project(project)
     if options.compare_to is not None:
         _check_previous_run(options.compare_to)
-    run_id = make_run_id(study, started)
     runs = study.spec.project_dir / "runs"
+    with stop_on_signals():
+        try:
+            run_dir, result = _build_run(study, options, started, runs, progress, on_run_id, kernel)
+        except OSError as err:
+            raise output_error(err, runs) from err
+    pdf = run_dir / "report.pdf"
+    return RunOutcome(run_dir=run_dir, report_html=run_dir / "report.html",
+                      report_pdf=pdf if pdf.exists() else None, results=result.results)
+
+
+def _build_run(study: Study, options: RunOptions, started: datetime, runs: Path, progress: Progress,
+               on_run_id: Progress, kernel=None) -> tuple[Path, Analysis]:
+    """Reserve a run id, build the run in its partial folder, rename it into place."""
+    from report_kit.report import notebooks
+    from report_kit.report import render
+
+    for stale in remove_stale_partials(runs):
+        progress(f"removed {stale.name} left by a stopped run")
+    run_id, tmp = reserve_run(runs, make_run_id(study, started))
     final = runs / run_id
-    on_run_id(str(final))
-    progress(f"design spec and data valid: {len(study.frame)} units, {len(study.inputs)} input file(s)")
-    runs.mkdir(exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".partial-{run_id}-", dir=runs))
-    handler = _log_to(tmp / "run.log")
+    handler = None
     try:
+        on_run_id(str(final))
+        progress(f"design spec and data valid: {len(study.frame)} units, {len(study.inputs)} input file(s)")
+        handler = _log_to(tmp / "run.log")
         log.info("report-kit run of %s (run id %s)", study.spec.project_dir, run_id)
         progress("analysing (estimates, randomization tests, checks)")
         result = run_analysis(study)
         write_analysis(tmp, result)
         copy_inputs(study, tmp)
-        progress("executing report notebooks")
-        executed = notebooks.execute_all(tmp, study.spec.project_dir, compare_to=options.compare_to,
-                                         progress=progress)
+        if options.compare_to is not None:
+            write_changes(tmp, options.compare_to, run_id)
+        progress("executing the report notebook")
+        executed = notebooks.execute_all(tmp, study.spec.project_dir, progress=progress, kernel=kernel)
         progress(f"rendering HTML{' and PDF' if options.pdf else ''} ({options.renderer} renderer)")
         render.render_report(executed, tmp, title=study.spec.title, renderer=options.renderer,
                              pdf=options.pdf)
@@ -133,14 +175,13 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
         )
         provenance.write_manifest(tmp, record)
         provenance.write_ro_crate(tmp, record)
-        tmp.rename(final)
+        finish_run(tmp, final)
     except BaseException:
-        _close_log(handler)
+        if handler is not None:
+            _close_log(handler)
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    pdf = final / "report.pdf"
-    return RunOutcome(run_dir=final, report_html=final / "report.html",
-                      report_pdf=pdf if pdf.exists() else None, results=result.results)
+    return final, result
 
 
 def write_analysis(run_dir: Path, result: Analysis) -> None:

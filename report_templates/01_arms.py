@@ -5,15 +5,12 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
-import html
-
 import pandas as pd
 
-from report_kit.report.view import (
-    ASSIGNMENT_CHECK_WORDS, RunView, callout, fmt, p_phrase, show_opening, show_outcomes, show_table,
+from report_kit.report import (
+    ASSIGNMENT_CHECK_WORDS, RunView, callout, esc, fmt, fmt_count, p_phrase, show_opening, show_outcomes, show_table,
 )
 
 view = RunView.open(run_dir, project_dir)
@@ -21,7 +18,7 @@ res = view.results
 spec = view.spec
 d = res["design"]
 label_of = {a["arm"]: a["label"] for a in d["arms"]}
-level = round(100 * (1 - spec.analysis.alpha))
+level = view.level
 
 # %%
 show_opening(view)
@@ -45,10 +42,10 @@ for outcome in spec.outcomes:
         seen.add(key)
         adj = adjusted.get(key)
         adj_text = "" if adj is None else f", adjusted {p_phrase(adj)}"
-        parts.append(f"<li>{html.escape(label_of[row['arm']])} vs {html.escape(label_of[row['reference']])}: "
+        parts.append(f"<li>{esc(label_of[row['arm']])} vs {esc(label_of[row['reference']])}: "
                      f"<b>{fmt(row['estimate'])}</b> ({level}% CI {fmt(row['ci_low'])} to {fmt(row['ci_high'])}; "
                      f"{p_phrase(tests.get(key, {}).get('p_value'))}{adj_text})</li>")
-    lines.append(f"<li><b>{html.escape(outcome.label)}</b> ({outcome.family}): any difference between the arms, "
+    lines.append(f"<li><b>{esc(outcome.label)}</b> ({esc(outcome.family)}): any difference between the arms, "
                  f"{p_phrase(omnibus.get('p_value'))}<ul>{''.join(parts)}</ul></li>")
 callout("<b>Pre-specified contrasts for each outcome</b> (difference in means by design; randomization "
         "p-values; adjusted within each outcome family):<ul>" + "".join(lines) + "</ul>", "info")
@@ -75,8 +72,7 @@ if d.get("n_blocks") is not None:
     rows.append(("Blocks", f"{d['n_blocks']:,}"))
 if d.get("n_clusters") is not None:
     rows.append(("Clusters", f"{d['n_clusters']:,}"))
-rows.append(("Possible assignments", f"{int(d['n_assignments']):,}" if d["n_assignments"] is not None
-             else f"about 10^{d['n_assignments_log10']:.0f}"))
+rows.append(("Possible assignments", fmt_count(d["n_assignments"], d.get("n_assignments_log10"))))
 rows.append(("Assignment check", ASSIGNMENT_CHECK_WORDS.get(d["assignment_check"], d["assignment_check"])))
 show_table(view, pd.DataFrame(rows, columns=["Item", "Value"]), "design", caption="The design as randomized")
 

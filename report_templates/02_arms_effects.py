@@ -5,19 +5,17 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
 import pandas as pd
 
-from report_kit.report.figures_arms import cell_means_plot, contrast_plot
-from report_kit.report.view import RunView, say, show_figure, show_table
+from report_kit.report import RunView, cell_means_plot, contrast_plot, esc, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
 d = res["design"]
 label_of = {a["arm"]: a["label"] for a in d["arms"]}
-level = round(100 * (1 - view.spec.analysis.alpha))
+level = view.level
 est = pd.DataFrame(res["estimates"])
 tests = pd.DataFrame(res["tests"])
 intervals = pd.DataFrame(res["intervals"])
@@ -115,4 +113,4 @@ show_table(view, pd.DataFrame({
 # %%
 notes = res.get("notes") or []
 if notes:
-    say("### Notes from the analysis\n\n" + "\n".join(f"- {n}" for n in notes))
+    say("### Notes from the analysis\n\n" + "\n".join(f"- {esc(n)}" for n in notes))

@@ -5,19 +5,17 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
+
 import pandas as pd
 
-from report_kit.report.figures import effect_plot
-from report_kit.report.view import RunView, estimate_role, say, show_figure, show_table
+from report_kit.report import RunView, effect_plot, esc, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
-alpha = view.spec.analysis.alpha
-est = pd.DataFrame(res["estimates"])
-level = round(100 * (1 - alpha))
+est = view.estimates()
+level = view.level
 
 # %%
 clustered = view.results["design"].get("n_clusters") is not None
@@ -33,6 +31,10 @@ say(
 )
 
 # %%
+for handled in res.get("data_handling", []):  # declared in design.yaml; the sentence comes from results.json
+    say(esc(handled["statement"]))
+
+# %%
 METHOD_WORDS = {
     "neyman": "Difference in means",
     "blocked_neyman": "Block-weighted",
@@ -45,15 +47,14 @@ METHOD_WORDS = {
 }
 
 
-ROLE_WORDS = {"lead": "pre-specified", "adjusted": "covariate-adjusted", "check": "robustness check", "": ""}
-seen: set = set()
-roles = {i: estimate_role(r, seen) for i, r in est.iterrows()}
+ROLE_WORDS = {"lead": "pre-specified", "adjusted": "covariate-adjusted", "check": "robustness check",
+              "take_up": "first stage", "": ""}
 
 
 def family_table(rows: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame({
         "Outcome": [view.label(o) for o in rows["outcome"]],
-        "Role": [ROLE_WORDS[roles[i]] for i in rows.index],
+        "Role": [ROLE_WORDS.get(r, r) for r in rows["role"]],
         "Estimand": rows["estimand"],
         "Method": [METHOD_WORDS.get(m, m) for m in rows.get("method", rows["estimator"])],
         "Estimate": rows["estimate"],
@@ -65,11 +66,7 @@ def family_table(rows: pd.DataFrame) -> pd.DataFrame:
     })
 
 
-main = est[est["estimand"].isin(["ATE", "ITT"]) & est["subgroup"].isna()]
-main = main[main["outcome"].isin([o.column for o in view.spec.outcomes])]
-ROLE_ORDER = {"lead": 0, "adjusted": 1, "check": 2, "": 3}
-order = {o.column: k for k, o in enumerate(view.spec.outcomes)}
-main = main.loc[sorted(main.index, key=lambda i: (order[main.at[i, "outcome"]], ROLE_ORDER[roles[i]], i))]
+main = view.main_estimates()
 for family in ("primary", "secondary", "exploratory"):
     rows = main[[view.family(o) == family for o in main["outcome"]]]
     if len(rows):
@@ -82,19 +79,25 @@ if len(main):
                 caption=f"Estimates with {level}% confidence intervals; the dashed line marks no effect.")
 
 # %%
-takeup = est[(est["estimand"] == "ITT") & ~est["outcome"].isin([o.column for o in view.spec.outcomes])]
-cace = est[est["estimand"] == "CACE"]
 comp = res.get("compliance")
 if comp:
     say("### Take-up and the effect on compliers\n\n"
         f"Of the units assigned to treatment, {100 * comp['rate_treated']:.1f}% received it "
-        f"(column `{comp['received']}`); of the controls, {100 * comp['rate_control']:.1f}% did. "
+        f"(column <code>{esc(comp['received'])}</code>); of the controls, {100 * comp['rate_control']:.1f}% did. "
         "The effect of assignment (ITT) is the policy-relevant effect of offering the programme. "
         "The complier average causal effect (CACE) scales it by the difference in take-up: the average effect "
         "of receiving the programme for units that take it when offered and only then. It assumes that "
         "assignment affects outcomes only through take-up and that no unit takes it up only when not offered "
         "(Angrist, Imbens & Rubin 1996).")
-    rows = pd.concat([takeup, cace])
+    for item in comp.get("cace") or []:
+        if item.get("ar_shape") == "bounded":
+            say(f"Anderson–Rubin {100 - 100 * view.spec.analysis.alpha:g}% interval for the complier effect on "
+                f"{esc(view.label(item['outcome']))}, valid however weak the take-up difference: "
+                f"[{item['ar_ci_low']:.3g}, {item['ar_ci_high']:.3g}].")
+        elif item.get("ar_shape"):
+            say(f"The Anderson–Rubin interval for the complier effect on {esc(view.label(item['outcome']))} is "
+                "unbounded: the take-up difference is too weak to pin the effect down.")
+    rows = view.take_up()
     table = family_table(rows)
     table["Outcome"] = [f"Take-up ({o})" if o == comp["received"] else view.label(o) for o in rows["outcome"]]
     show_table(view, table, "estimates_compliance", caption="Take-up and complier effects", csv_frame=rows)
@@ -121,4 +124,4 @@ if len(diffs):
 # %%
 notes = res.get("notes") or []
 if notes:
-    say("### Notes from the analysis\n\n" + "\n".join(f"- {n}" for n in notes))
+    say("### Notes from the analysis\n\n" + "\n".join(f"- {esc(n)}" for n in notes))

@@ -5,26 +5,25 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
 import pandas as pd
 
-from report_kit.report.figures import randomization_plot
-from report_kit.report.view import RunView, fmt_p, p_phrase, say, show_figure, show_table
+from report_kit.report import RunView, fmt_count, fmt_p, p_phrase, randomization_plot, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
 d = res["design"]
 tests = pd.DataFrame(res.get("tests") or [])
-level = round(100 * (1 - view.spec.analysis.alpha))
+level = view.level
 
 # %%
 if d.get("inference_method") == "exact":
-    how = (f"all {int(d['n_assignments']):,} assignments the design allows were enumerated, so the p-values "
+    how = (f"all {fmt_count(d['n_assignments'], d.get('n_assignments_log10'))} assignments the design allows "
+           "were enumerated, so the p-values "
            "are exact")
 else:
-    how = (f"the design allows {len(d['n_assignments'] or '')}-digit many assignments, so "
+    how = (f"the design allows {fmt_count(d['n_assignments'], d.get('n_assignments_log10'))} assignments, so "
            f"{d['draws']:,} were drawn at random (seed {view.spec.analysis.seed}) and each p-value carries a "
            "Monte Carlo standard error; p = (1 + #{at least as extreme}) / (1 + draws)")
 say("Each test asks how surprising the observed statistic would be if the programme had no effect on any "

@@ -5,14 +5,11 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
-import html
-
 import pandas as pd
 
-from report_kit.report.view import RunView, fmt_p, say, show_table
+from report_kit.report import RunView, esc, fmt_p, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -37,7 +34,7 @@ show_table(view, pd.DataFrame({
     "Randomized": flow["randomized"], "Outcome observed": flow["outcome_observed"], "Lost": flow["lost"],
 }), "flow", caption="Participant flow by arm", csv_frame=flow)
 att = res["attrition"]
-rates = ", ".join(f"{html.escape(label_of[r['arm']])} {100 * r['rate']:.1f}%" for r in att["rates"])
+rates = ", ".join(f"{esc(label_of[r['arm']])} {100 * r['rate']:.1f}%" for r in att["rates"])
 test = att.get("test")
 say(f"Share of units missing any outcome: {rates}."
     + ("" if test is None else f" Test of equal attrition across arms: p {fmt_p(test['p_value'])}."))

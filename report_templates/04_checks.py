@@ -5,13 +5,12 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
+
 import pandas as pd
 
-from report_kit.report.figures_checks import plot_balance
-from report_kit.report.view import RunView, fmt_p, p_phrase, say, show_figure, show_table
+from report_kit.report import RunView, esc, fmt_p, p_phrase, plot_balance, say, show_figure, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
@@ -67,9 +66,9 @@ if len(flow):
 # %%
 att = res.get("attrition")
 if att:
-    lost_if = [view.label(c) for c in att.get("attrited_if_missing", [])]
-    rule = (f"its {lost_if[0].lower()} is missing" if len(lost_if) == 1
-            else "any of " + ", ".join(x.lower() for x in lost_if) + " is missing")
+    lost_if = [esc(view.label(c)) for c in att.get("attrited_if_missing", [])]
+    rule = (f"its outcome “{lost_if[0]}” is missing" if len(lost_if) == 1  # user labels kept as written
+            else "any of " + ", ".join(f"“{x}”" for x in lost_if) + " is missing")
     say(f"Outcomes are missing for {100 * att['rate_treated']:.1f}% of treated and "
         f"{100 * att['rate_control']:.1f}% of control units (a unit counts as lost when {rule}). "
         f"Randomization test of equal attrition: {p_phrase(att['p_value'])}.")
@@ -82,27 +81,27 @@ if att:
             "Lower": bounds["lower"], "Upper": bounds["upper"],
         }), "attrition_bounds", caption="Bounds on the average effect allowing for attrition", csv_frame=bounds,
             note="These are identification bounds: the range of effects consistent with the data if the missing "
-                 "outcomes were as favourable or unfavourable as possible, computed on all units pooled (blocks "
-                 "and clusters ignored) and without sampling error. Lee bounds assume attrition is monotone in "
-                 "treatment; Manski bounds assume only the outcome's declared range.")
+                 "outcomes were as favourable or unfavourable as possible, without sampling error. In blocked "
+                 "designs Lee bounds are computed within blocks and combined with the weights of the main "
+                 "estimate; they assume attrition is monotone in treatment. Manski bounds pool all units and "
+                 "assume only the outcome's declared range.")
+    for sentence in att.get("bounds_notes") or []:
+        say(esc(sentence))
 
 # %% [markdown]
 # ## Several outcomes
 
 # %%
 mult = pd.DataFrame(res.get("multiplicity") or [])
-if len(mult):
-    lead = view.spec.analysis.multiplicity
+wide = view.multiplicity_table()
+if len(wide):
     names = {"holm": "Holm", "bh": "Benjamini–Hochberg", "westfall_young": "Westfall–Young"}
-    wide = mult.pivot_table(index=["outcome", "family"], columns="method", values="p_adjusted",
-                            aggfunc="first", sort=False).reset_index()
-    raw = mult.drop_duplicates("outcome").set_index("outcome")["p_value"]
     table = pd.DataFrame({"Outcome": [view.label(o) for o in wide["outcome"]], "Family": wide["family"],
-                          "p (unadjusted)": [fmt_p(raw[o]) for o in wide["outcome"]]})
-    for method in ("holm", "bh", "westfall_young"):
-        if method in wide.columns:
-            title = names[method] + (" (pre-specified)" if method == lead else "")
-            table[title] = [fmt_p(v) for v in wide[method]]
+                          "p (unadjusted)": [fmt_p(p) for p in wide["p_value"]]})
+    for method, title in names.items():
+        if any(method in adjusted for adjusted in wide["adjusted"]):
+            lead = (wide["lead_method"] == method).any()
+            table[title + (" (pre-specified)" if lead else "")] = [fmt_p(a.get(method)) for a in wide["adjusted"]]
     show_table(view, table, "multiplicity", caption="Adjusted p-values within each family", csv_frame=mult,
                note="Adjustments are made within each family of outcomes (primary, secondary, exploratory). "
                     "Holm and Westfall–Young control the family-wise error rate; Benjamini–Hochberg the false "

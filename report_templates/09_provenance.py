@@ -4,20 +4,18 @@
 # %% tags=["parameters"]
 run_dir = ""
 project_dir = ""
-compare_to = ""
 
 # %%
 import pandas as pd
 
-import report_kit
-from report_kit.report.view import RunView, say, show_table
+from report_kit.report import RunView, say, show_table
 
 view = RunView.open(run_dir, project_dir)
 res = view.results
 
 # %%
 say(
-    f"Produced by report-kit {report_kit.__version__} from the design spec and the input files below. "
+    f"Produced by report-kit {view.tool_version} from the design spec and the input files below. "
     "The run folder holds `manifest.json` (SHA-256 of every input and output, seeds, software "
     "versions, command line, times) and `ro-crate-metadata.json` (an RO-Crate 1.1 description). "
     "`report-kit verify` re-runs the analysis from the recorded inputs and compares every number."

@@ -6,6 +6,7 @@ import json
 import shutil
 from pathlib import Path
 
+import nbformat
 import numpy as np
 import pandas as pd
 import pytest
@@ -15,6 +16,7 @@ from click.testing import CliRunner
 from report_kit.audit.provenance import canonical_json_bytes
 from report_kit.cli import main
 from report_kit.pipeline import analyse_project
+from report_kit.report.notebooks import REPORT_NOTEBOOK, SECTION_KEY
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -81,8 +83,10 @@ def test_full_run_shows_arm_sections_with_escaped_labels(tmp_path):
     result = CliRunner().invoke(main, ["run", str(project)])
     assert result.exit_code == 0, result.output
     (run_dir,) = (project / "runs").iterdir()
-    notebooks = sorted(p.stem for p in (run_dir / "notebooks").glob("*.ipynb"))
-    assert notebooks == ["01_arms", "02_arms_effects", "04_arms_checks", "05_changes", "09_provenance"]
+    # One kernel: the multi-arm sections (and the unmarked ones) assembled into notebooks/report.ipynb.
+    notebook = nbformat.read(run_dir / REPORT_NOTEBOOK, as_version=4)
+    sections = list(dict.fromkeys(c.metadata[SECTION_KEY] for c in notebook.cells[1:]))
+    assert sections == ["01_arms", "02_arms_effects", "04_arms_checks", "05_changes", "09_provenance"]
     html = (run_dir / "report.html").read_text(encoding="utf-8")
     assert "Factorial effects" in html and "Test across all arms" in html
     assert "Text &amp; &lt;i&gt;message&lt;/i&gt;" in html and "<i>message</i>" not in html

@@ -26,7 +26,8 @@ import tempfile
 import zipfile
 from pathlib import Path, PurePosixPath
 
-from report_kit.errors import UsageError, VerificationError
+from report_kit.errors import ArchiveError, UsageError, VerificationError
+from report_kit.files import share_like_umask
 from report_kit.audit.planlock import LOCK_NAME
 from report_kit.audit.provenance import (
     INPUTS_DIR, MANIFEST_NAME, RESULTS_NAME, SPEC_NAME, check_relative_path, load_json_file,
@@ -39,7 +40,11 @@ CHECKSUMS_NAME = "checksums.sha256"
 #: Time stamp of every member (the earliest a zip can hold), for byte-identical archives.
 ZIP_TIME = (1980, 1, 1, 0, 0, 0)
 #: Refuse to extract archives that would unpack to more than this many bytes.
-MAX_EXTRACT_BYTES = 50 * 2**30
+MAX_EXTRACT_BYTES = 4 * 2**30
+#: Refuse a member over ``_RATIO_FLOOR`` bytes that unpacks to more than this many times its
+#: compressed size (a zip bomb; tables and reports compress far less — common practice).
+MAX_RATIO = 200
+_RATIO_FLOOR = 16 * 2**20
 _CHUNK = 1 << 20
 _LINE = re.compile(r"([0-9a-f]{64}) [ *](.+)")
 
@@ -115,13 +120,21 @@ def archive_run(run_dir: Path | str, out: Path | str | None = None) -> Path:
         raise UsageError(f"the archive name must end in .zip; got {out.name!r}")
     if out.resolve().is_relative_to(run_dir):
         raise UsageError(f"the archive cannot be written inside the run folder itself: {out}")
+    data_dir = (run_dir.parent.parent / "data").resolve()
+    if out.resolve().is_relative_to(data_dir):
+        raise UsageError(f"the archive cannot be written inside the project's data folder ({data_dir}): {out}; "
+                         "data/ holds the inputs and report-kit never writes there — choose another folder")
     if not out.parent.is_dir():
         raise UsageError(f"cannot write {out}: folder {out.parent} does not exist")
     members = _members(run_dir)
+    project_dir = run_dir.parent.parent
+    if any(out.resolve() == (project_dir / name).resolve() for name, _ in members):
+        raise UsageError(f"the archive cannot replace an input of the run: {out}; choose another file name")
     fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent)
     os.close(fd)
     try:
         _write_zip(Path(tmp), project, members)
+        share_like_umask(tmp)
         os.replace(tmp, out)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
@@ -171,15 +184,20 @@ def _check_members(infos: list[zipfile.ZipInfo], zip_path: Path, max_bytes: int)
         if problem is None and normal in seen:
             problem = "appears twice"
         if problem:
-            raise UsageError(f"refusing to extract {zip_path}: member {info.filename!r} {problem}")
+            raise ArchiveError(f"refusing to extract {zip_path}: member {info.filename!r} {problem}")
         seen.add(normal)
+    for info in infos:
+        if info.file_size > _RATIO_FLOOR and info.file_size > MAX_RATIO * max(info.compress_size, 1):
+            raise ArchiveError(f"refusing to extract {zip_path}: member {info.filename!r} unpacks to "
+                               f"{info.file_size} bytes from {info.compress_size} (more than {MAX_RATIO} times "
+                               "its packed size: a zip bomb?)")
     total = sum(i.file_size for i in infos)
     if total > max_bytes:
-        raise UsageError(f"refusing to extract {zip_path}: it would unpack to {total} bytes "
-                         f"(limit {max_bytes})")
+        raise ArchiveError(f"refusing to extract {zip_path}: it would unpack to {total} bytes "
+                           f"(limit {max_bytes})")
     tops = {PurePosixPath(i.filename).parts[0] for i in infos}
     if len(tops) != 1:
-        raise UsageError(f"{zip_path}: not a report-kit archive (expected one top folder; "
+        raise ArchiveError(f"{zip_path}: not a report-kit archive (expected one top folder; "
                          f"found {sorted(tops) or 'none'})")
 
 
@@ -188,18 +206,32 @@ def _find_run(root: Path, zip_path: Path) -> Path:
     found = sorted(p for p in runs.iterdir() if p.is_dir() and (p / RESULTS_NAME).is_file()
                    and (p / MANIFEST_NAME).is_file()) if runs.is_dir() else []
     if len(found) != 1:
-        raise UsageError(f"{zip_path}: not a report-kit archive (expected exactly one run folder "
+        raise ArchiveError(f"{zip_path}: not a report-kit archive (expected exactly one run folder "
                          f"under <project>/runs/; found {len(found)})")
     return found[0]
 
 
-def _extract_one(zf: zipfile.ZipFile, info: zipfile.ZipInfo, target: Path) -> None:
+def _extract_one(zf: zipfile.ZipFile, info: zipfile.ZipInfo, target: Path, budget: int) -> int:
+    """Write one member, counting the bytes actually unpacked; return the bytes left in ``budget``.
+
+    The sizes a zip declares can lie, so the limit is checked on the stream
+    itself: extraction stops as soon as the running total passes it.
+    """
     if info.is_dir():
         target.mkdir(parents=True, exist_ok=True)
-        return
+        return budget
     target.parent.mkdir(parents=True, exist_ok=True)
     with zf.open(info) as src, open(target, "xb") as dst:
-        shutil.copyfileobj(src, dst, _CHUNK)
+        while chunk := src.read(_CHUNK):
+            budget -= len(chunk)
+            if budget < 0:
+                raise _TooLarge(info.filename)
+            dst.write(chunk)
+    return budget
+
+
+class _TooLarge(Exception):
+    """Raised inside extraction when the unpacked bytes pass the limit."""
 
 
 def safe_extract(zip_path: Path | str, dest: Path | str, *, max_bytes: int = MAX_EXTRACT_BYTES) -> Path:
@@ -208,12 +240,13 @@ def safe_extract(zip_path: Path | str, dest: Path | str, *, max_bytes: int = MAX
     Every member is checked before anything is written: absolute paths,
     ``..``, backslashes, drive letters, symbolic links, special files,
     encrypted or repeated members and archives larger than ``max_bytes``
-    unpacked are refused with :class:`UsageError`. Files are created with
+    unpacked (declared sizes, then the bytes actually unpacked, counted while
+    streaming) are refused with :class:`ArchiveError` (exit code 1). Files are created with
     exclusive mode, never following links already on disk.
     """
     zip_path, dest = Path(zip_path), Path(dest)
     if not zip_path.is_file() or not zipfile.is_zipfile(zip_path):
-        raise UsageError(f"{zip_path}: not a zip file")
+        raise ArchiveError(f"{zip_path}: not a zip file")
     if dest.exists() and (not dest.is_dir() or any(dest.iterdir())):
         raise UsageError(f"cannot extract into {dest}: it must be a new or empty folder")
     dest.mkdir(parents=True, exist_ok=True)
@@ -221,14 +254,21 @@ def safe_extract(zip_path: Path | str, dest: Path | str, *, max_bytes: int = MAX
     with zipfile.ZipFile(zip_path) as zf:
         infos = zf.infolist()
         _check_members(infos, zip_path, max_bytes)
+        budget = max_bytes
         for info in infos:
             target = root.joinpath(*PurePosixPath(info.filename).parts)
             if not target.resolve().is_relative_to(root):
-                raise UsageError(f"refusing to extract {zip_path}: member {info.filename!r} leaves the folder")
+                raise ArchiveError(f"refusing to extract {zip_path}: member {info.filename!r} leaves the folder")
             try:
-                _extract_one(zf, info, target)
-            except OSError as err:
-                raise UsageError(f"cannot extract member {info.filename!r} of {zip_path}: {err}") from err
+                budget = _extract_one(zf, info, target, budget)
+            except _TooLarge as err:
+                for child in list(root.iterdir()):
+                    shutil.rmtree(child, ignore_errors=True) if child.is_dir() else child.unlink()
+                raise ArchiveError(f"refusing to extract {zip_path}: member {err} unpacks to more than its "
+                                   f"declared size and the archive passes the limit of {max_bytes} bytes; "
+                                   "the partly extracted files were removed") from None
+            except (OSError, zipfile.BadZipFile, EOFError) as err:
+                raise ArchiveError(f"cannot extract member {info.filename!r} of {zip_path}: {err}") from err
     return _find_run(root / PurePosixPath(infos[0].filename).parts[0], zip_path)
 
 

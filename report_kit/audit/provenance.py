@@ -33,19 +33,22 @@ from urllib.parse import quote
 import numpy as np
 
 from report_kit.errors import UsageError
+from report_kit.files import share_like_umask
 from report_kit.inputs.model import InputFile
 from report_kit.inputs.spec import SPEC_FILENAME
 
 log = logging.getLogger(__name__)
 
 __all__ = [
-    "MANIFEST_NAME", "RO_CRATE_NAME", "RESULTS_NAME", "INPUTS_DIR",
+    "MANIFEST_NAME", "RO_CRATE_NAME", "RESULTS_NAME", "INPUTS_DIR", "PARTIAL_OWNER_NAME",
     "sha256_file", "sha256_bytes", "to_json_value", "canonical_json_bytes",
     "write_results_json", "write_json", "load_json_file", "RunRecord", "write_manifest", "write_ro_crate",
     "software_versions", "git_commit", "utc_now", "check_relative_path",
 ]
 
 MANIFEST_NAME = "manifest.json"
+#: Owner record (pid, host) of a run still being built; never part of a finished run.
+PARTIAL_OWNER_NAME = ".partial-owner.json"
 RO_CRATE_NAME = "ro-crate-metadata.json"
 RESULTS_NAME = "results.json"
 #: Folder of a run that holds copies of design.yaml and of every input table.
@@ -189,6 +192,7 @@ def _atomic_write(path: Path, data: bytes) -> None:
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
+        share_like_umask(tmp)
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
@@ -367,7 +371,7 @@ def _validate_record(run_dir: Path | str, record: RunRecord) -> Path:
 
 def _run_files(run_dir: Path) -> list[str]:
     """Every file under the run folder except the two provenance files, sorted."""
-    skip = {MANIFEST_NAME, RO_CRATE_NAME}
+    skip = {MANIFEST_NAME, RO_CRATE_NAME, PARTIAL_OWNER_NAME}
     out = []
     for path in run_dir.rglob("*"):
         rel = path.relative_to(run_dir).as_posix()

@@ -10,7 +10,10 @@ and :func:`format_verify_text`. A verification
 3. rebuilds the project in a temporary folder from the run's input copies
    (or the project's files where no matching copy exists), calls ``analyse``
    on it and compares the result with ``results.json``: exactly, or within
-   ``rel_tol`` relative (``abs_tol`` absolute) for numbers.
+   ``rel_tol`` relative (``abs_tol`` absolute) for numbers;
+4. for a run made with ``--compare-to``, re-derives ``changes.json`` from the
+   compared run when that run folder is still next to this one (else says so
+   in ``changes_check``).
 
 Differences are returned in a :class:`VerifyReport`; nothing is raised for
 them (the command line maps ``ok=False`` to exit code 3).
@@ -27,7 +30,7 @@ from pathlib import Path
 
 from report_kit.validate import tolerance
 from report_kit.audit.archive import safe_extract, verify_checksums
-from report_kit.audit.compare import diff_results
+from report_kit.audit.compare import CHANGES_NAME, compare_runs, diff_results
 from report_kit.errors import ReportKitError, UsageError
 from report_kit.audit.planlock import LOCK_NAME
 from report_kit.audit.provenance import (
@@ -55,6 +58,9 @@ class VerifyReport:
     ``integrity_problems``: run-folder files (or archive members) that differ
     from ``manifest.json`` (or ``checksums.sha256``). ``rerun_inputs``:
     ``{path, source}`` telling which file each input of the re-run came from.
+    ``changes_check``: None without ``changes.json``; else ``"re-derived"``,
+    ``"differs"`` (then also listed in ``result_differences``) or a sentence
+    saying why it could not be re-derived.
     """
 
     ok: bool
@@ -65,6 +71,7 @@ class VerifyReport:
     integrity_problems: tuple[dict, ...] = ()
     rerun_inputs: tuple[dict, ...] = ()
     rerun_error: str | None = None
+    changes_check: str | None = None
     rel_tol: float = REL_TOL
     abs_tol: float = ABS_TOL
 
@@ -75,7 +82,7 @@ class VerifyReport:
             "result_differences": [dict(d) for d in self.result_differences],
             "integrity_problems": [dict(p) for p in self.integrity_problems],
             "rerun_inputs": [dict(s) for s in self.rerun_inputs],
-            "rerun_error": self.rerun_error, "rel_tol": self.rel_tol, "abs_tol": self.abs_tol,
+            "rerun_error": self.rerun_error, "changes_check": self.changes_check, "rel_tol": self.rel_tol, "abs_tol": self.abs_tol,
         }
 
 
@@ -95,7 +102,7 @@ def verify_run(target: Path | str, *, analyse: Analyse, rel_tol: float = REL_TOL
     reported in the returned :class:`VerifyReport` instead.
     """
     if not callable(analyse):
-        raise UsageError(f"`analyse` must be callable; got {type(analyse).__name__}")
+        raise TypeError(f"`analyse` must be callable; got {type(analyse).__name__}")
     rel_tol, abs_tol = tolerance("rel_tol", rel_tol), tolerance("abs_tol", abs_tol)
     path = Path(target)
     if path.is_file():
@@ -171,8 +178,16 @@ def _pick_source(run_dir: Path, project: Path, rel: str, sha: str | None) -> tup
 
 
 def _copy_lock(run_dir: Path, project: Path, rebuilt: Path) -> dict | None:
-    """Give the re-run the plan lock too (not a hashed input; used for the deviations section)."""
-    for source, kind in ((run_dir / INPUTS_DIR / LOCK_NAME, "run copy"), (project / LOCK_NAME, "project folder")):
+    """Give the re-run the plan lock the run had (not a hashed input; it makes the ``plan`` section).
+
+    A run folder with input copies kept the lock when there was one, so only its
+    copy counts: a lock made after the run must not change the re-run. Only a
+    run without copies falls back to the project's lock.
+    """
+    kept_copies = (run_dir / INPUTS_DIR).is_dir()
+    sources = (((run_dir / INPUTS_DIR / LOCK_NAME, "run copy"),) if kept_copies
+               else ((project / LOCK_NAME, "project folder"),))
+    for source, kind in sources:
         if source.is_file():
             rebuilt.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(source, rebuilt / LOCK_NAME)
@@ -223,6 +238,25 @@ def _differences(recorded: dict, rerun: dict, rel_tol: float, abs_tol: float) ->
     return out
 
 
+def _check_changes(run_dir: Path) -> tuple[str | None, list[dict]]:
+    """Re-derive ``changes.json`` from the compared run, when it is next to this run."""
+    path = run_dir / CHANGES_NAME
+    if not path.is_file():
+        return None, []
+    recorded = load_json_file(path, what="changes file")
+    compared = run_dir.parent / str(recorded.get("run_a"))
+    if not isinstance(recorded.get("run_a"), str) or not (compared / RESULTS_NAME).is_file():
+        return (f"not re-derived: the compared run {recorded.get('run_a')!r} is not next to this run "
+                "(verify it beside its runs/ folder to re-derive the changes section)"), []
+    rederived = compare_runs(compared, run_dir).to_dict()
+    rederived["run_b"] = recorded.get("run_b")
+    if to_json_value(rederived) == recorded:
+        return "re-derived", []
+    return "differs", [{"label": CHANGES_NAME, "section": "changes", "key": {"run_a": recorded["run_a"]},
+                        "field": None, "problem": "does not re-derive from the compared run",
+                        "recorded": None, "rerun": None, "relative_difference": None}]
+
+
 def _verify_dir(run_dir: Path, analyse: Analyse, rel_tol: float, abs_tol: float, *,
                 target: str, extra: tuple[dict, ...]) -> VerifyReport:
     manifest = load_json_file(run_dir / MANIFEST_NAME, what="manifest")
@@ -233,11 +267,14 @@ def _verify_dir(run_dir: Path, analyse: Analyse, rel_tol: float, abs_tol: float,
     mismatches = _input_mismatches(project, recorded_inputs)
     sources, rerun, error = _rerun(run_dir, project, recorded_inputs, analyse)
     differences = [] if rerun is None else _differences(recorded_results, rerun, rel_tol, abs_tol)
+    changes_check, changes_differences = _check_changes(run_dir)
+    differences += changes_differences
     ok = not (integrity or mismatches or differences or error)
     return VerifyReport(
         ok=ok, target=target, run_id=str(manifest.get("run_id") or run_dir.name),
         input_mismatches=tuple(mismatches), result_differences=tuple(differences),
         integrity_problems=tuple(integrity), rerun_inputs=tuple(sources), rerun_error=error,
+        changes_check=changes_check,
         rel_tol=rel_tol, abs_tol=abs_tol,
     )
 
@@ -275,7 +312,7 @@ def _verdict(report: VerifyReport) -> str:
 def format_verify_text(report: VerifyReport, *, max_items: int = 50) -> str:
     """The verification outcome as readable plain text, verdict on the last line."""
     if not isinstance(report, VerifyReport):
-        raise UsageError(f"`report` must be a VerifyReport; got {type(report).__name__}")
+        raise TypeError(f"`report` must be a VerifyReport; got {type(report).__name__}")
     lines = [f"Verifying {report.target} (run {report.run_id})", ""]
     if report.input_mismatches:
         lines.append(f"Inputs that differ from the recorded ones ({len(report.input_mismatches)}):")
@@ -299,5 +336,7 @@ def format_verify_text(report: VerifyReport, *, max_items: int = 50) -> str:
             lines.append(f"  ... and {len(report.result_differences) - max_items} more")
     else:
         lines.append(f"Results: the re-run reproduces results.json (numbers within {report.rel_tol:g} relative).")
+    if report.changes_check is not None:
+        lines.append(f"Changes since the compared run ({CHANGES_NAME}): {report.changes_check}")
     lines += ["", _verdict(report)]
     return "\n".join(lines) + "\n"

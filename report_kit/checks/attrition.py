@@ -1,7 +1,8 @@
 """Attrition: missing outcomes, whether they differ by arm, and bounds on the effect.
 
-Owns: attrition rates by arm, the randomization test of differential
-attrition (same assignment-chunk interface as :mod:`report_kit.checks.balance`),
+Owns: attrition rates by arm, WHAT the randomization test of differential
+attrition computes per assignment (:func:`attrition_statistic`; draws,
+counting and p-values are the engine's, :mod:`report_kit.inference.engine`),
 Lee (2009) trimming bounds and Manski (1990) worst-case bounds. A unit whose
 outcome is missing counts as attrited for that outcome.
 """
@@ -14,24 +15,22 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from report_kit.checks.balance import (
-    ChunkSource,
-    WeightFn,
-    _check_assignment,
-    _check_method,
-    _num,
-    _p_values,
-    _tally,
-)
+from report_kit.checks.balance import ChunkSource, WeightFn, _check_assignment, _num
 from report_kit.errors import DataError, ReportKitWarning, UsageError
+from report_kit.inference.engine import StoredDraws, drawn_statistics
+from report_kit.inference.pvalues import DrawnStatistics
+from report_kit.validate import METHODS, check_choice
 
 __all__ = [
+    "AttritionCheck",
     "AttritionTest",
     "EffectBounds",
+    "attrition_statistic",
     "attrition_test",
     "lee_bounds",
     "manski_bounds",
     "study_attrition",
+    "study_attrition_check",
 ]
 
 
@@ -88,6 +87,9 @@ class EffectBounds:
     trim_share: float | None = None
     low: float | None = None
     high: float | None = None
+    std_error_lower: float | None = None
+    std_error_upper: float | None = None
+    n_blocks: int | None = None
 
     def to_dict(self) -> dict:
         out = {
@@ -98,7 +100,9 @@ class EffectBounds:
             "observed_share_control": self.observed_share_control,
         }
         if self.method == "lee":
-            out.update(trimmed_arm=self.trimmed_arm, trim_share=self.trim_share)
+            out.update(trimmed_arm=self.trimmed_arm, trim_share=self.trim_share,
+                       std_error_lower=self.std_error_lower,
+                       std_error_upper=self.std_error_upper, n_blocks=self.n_blocks)
         else:
             out.update(low=self.low, high=self.high)
         return out
@@ -124,15 +128,61 @@ def _trimmed_means(values: np.ndarray, keep_num: int, keep_den: int) -> tuple[fl
     return tail_mean(v), tail_mean(v[::-1])
 
 
-def _lee(arms: _ArmOutcomes) -> EffectBounds:
+def _trimmed_moments(values: np.ndarray, keep_num: int, keep_den: int, top: bool
+                     ) -> tuple[float, float, float]:
+    """Mean, variance and cut point of the kept share (lowest, or highest if ``top``)."""
+    v = np.sort(values)[::-1] if top else np.sort(values)
+    whole, rest = divmod(v.size * keep_num, keep_den)
+    frac = rest / keep_den
+    wts = np.zeros(v.size)
+    wts[:whole] = 1.0
+    if frac > 0:
+        wts[whole] = frac
+    mass = wts.sum()
+    mean = float(np.dot(wts, v) / mass)
+    var = float(np.dot(wts, (v - mean) ** 2) / mass)
+    cut = float(v[min(whole, v.size - 1)] if frac > 0 else v[whole - 1])
+    return mean, var, cut
+
+
+def _lee_std_errors(arms: _ArmOutcomes, trimmed: str | None) -> tuple[float, float]:
+    """Standard errors of the two Lee bounds (Lee 2009, Proposition 3).
+
+    For the trimmed arm (``k`` observed of ``n``, observed share ``s``, trimming
+    share ``p``, kept mean ``mu``, variance ``sigma^2`` and cut point ``q``):
+    ``sigma^2 / (k (1 - p)) + (q - mu)^2 p / (k (1 - p))`` (the trimmed mean with
+    a known share) ``+ ((mu - q) / (1 - p))^2 Var(p_hat)`` (the estimated share,
+    ``p = 1 - s_other / s_trimmed``, delta method with ``Var(s_a) = s_a (1 - s_a)
+    / n_a``); plus ``Var(Y) / k`` of the untrimmed arm's mean.
+    """
+    y_hi, y_lo = (arms.y1, arms.y0) if trimmed != "control" else (arms.y0, arms.y1)
+    n_hi, n_lo = (arms.n1, arms.n0) if trimmed != "control" else (arms.n0, arms.n1)
+    k_hi, k_lo = y_hi.size, y_lo.size
+    s_hi, s_lo = k_hi / n_hi, k_lo / n_lo
+    p = 1.0 - (k_lo * n_hi) / (k_hi * n_lo)
+    var_p = (s_lo / s_hi) ** 2 * ((1 - s_lo) / (s_lo * n_lo) + (1 - s_hi) / (s_hi * n_hi))
+    other = float(np.var(y_lo)) / k_lo
+    out = []
+    for top in (False, True):
+        mu, var, cut = _trimmed_moments(y_hi, k_lo * n_hi, k_hi * n_lo, top)
+        v = ((var + (cut - mu) ** 2 * p) / (k_hi * (1 - p))
+             + ((mu - cut) / (1 - p)) ** 2 * var_p + other)
+        out.append(float(np.sqrt(v)))
+    # lower bound: low tail of treated (or high tail of control); upper: the other
+    return (out[0], out[1]) if trimmed != "control" else (out[1], out[0])
+
+
+def _lee(arms: _ArmOutcomes, *, quiet: bool = False) -> EffectBounds:
     k1, k0 = arms.y1.size, arms.y0.size
     share1, share0 = k1 / arms.n1, k0 / arms.n0
     if k1 == 0 or k0 == 0:
-        warnings.warn("an arm has no observed outcome; Lee bounds are undefined",
-                      ReportKitWarning, stacklevel=3)
+        if not quiet:
+            warnings.warn("an arm has no observed outcome; Lee bounds are undefined",
+                          ReportKitWarning, stacklevel=3)
         return EffectBounds(method="lee", lower=None, upper=None,
                             observed_share_treated=share1, observed_share_control=share0)
     # keep share p_low / p_high of the better-observed arm, as an exact fraction
+    # (the shares k_a / n_a are compared, never the counts k_a)
     if k1 * arms.n0 >= k0 * arms.n1:
         trimmed = "treated" if k1 * arms.n0 > k0 * arms.n1 else None
         low_mean, high_mean = _trimmed_means(arms.y1, k0 * arms.n1, k1 * arms.n0)
@@ -145,12 +195,57 @@ def _lee(arms: _ArmOutcomes) -> EffectBounds:
         m1 = float(arms.y1.mean())
         lower, upper = m1 - high_mean, m1 - low_mean
         q = 1 - (k1 * arms.n0) / (k0 * arms.n1)
+    se_lower = se_upper = None
+    if min(k1, k0) >= 2:
+        se_lower, se_upper = _lee_std_errors(arms, trimmed)
     return EffectBounds(method="lee", lower=_num(lower), upper=_num(upper),
                         observed_share_treated=share1, observed_share_control=share0,
-                        trimmed_arm=trimmed, trim_share=float(q))
+                        trimmed_arm=trimmed, trim_share=float(q),
+                        std_error_lower=_num(se_lower), std_error_upper=_num(se_upper))
 
 
-def lee_bounds(y, z, observed=None) -> dict:
+def _lee_blocked(y, zb: np.ndarray, obs: np.ndarray, block) -> EffectBounds:
+    """Lee bounds within each block, combined with the headline's block weights.
+
+    Block ``b`` enters with ``w_b = k_b / k`` (``k_b`` units with an observed
+    outcome in the block, over the blocks where both arms have one), the weights
+    of the block-weighted difference in means. Each block's bounds contain its
+    observed difference, so the combined bounds contain the headline estimate;
+    standard errors combine as ``sqrt(sum_b w_b^2 SE_b^2)`` (blocks independent).
+    """
+    labels = np.asarray(block, dtype=object)
+    if labels.shape != zb.shape:
+        raise UsageError(f"`block` must have one label per unit ({zb.size}); got shape {labels.shape}")
+    codes = np.unique(labels.astype(str), return_inverse=True)[1]
+    parts, weights = [], []
+    for b in range(int(codes.max()) + 1):
+        m = codes == b
+        arms = _ArmOutcomes(y1=y[m & zb & obs], y0=y[m & ~zb & obs],
+                            n1=int((m & zb).sum()), n0=int((m & ~zb).sum()))
+        if arms.y1.size and arms.y0.size:
+            parts.append(_lee(arms, quiet=True))
+            weights.append(arms.y1.size + arms.y0.size)
+    share1, share0 = float(obs[zb].mean()), float(obs[~zb].mean())
+    if not parts:
+        warnings.warn("no block has an observed outcome in both arms; Lee bounds are undefined",
+                      ReportKitWarning, stacklevel=3)
+        return EffectBounds(method="lee", lower=None, upper=None, observed_share_treated=share1,
+                            observed_share_control=share0, n_blocks=0)
+    w = np.asarray(weights, dtype=float) / sum(weights)
+    arms_trimmed = {p.trimmed_arm for p in parts if p.trimmed_arm is not None}
+    se = [[p.std_error_lower for p in parts], [p.std_error_upper for p in parts]]
+    std_errors = [None if any(v is None for v in col) else float(np.sqrt(np.dot(w ** 2, np.square(col))))
+                  for col in se]
+    return EffectBounds(
+        method="lee", lower=_num(float(np.dot(w, [p.lower for p in parts]))),
+        upper=_num(float(np.dot(w, [p.upper for p in parts]))),
+        observed_share_treated=share1, observed_share_control=share0,
+        trimmed_arm=arms_trimmed.pop() if len(arms_trimmed) == 1 else ("by block" if arms_trimmed else None),
+        trim_share=float(np.dot(w, [p.trim_share for p in parts])),
+        std_error_lower=_num(std_errors[0]), std_error_upper=_num(std_errors[1]), n_blocks=len(parts))
+
+
+def lee_bounds(y, z, observed=None, *, block=None) -> dict:
     r"""Lee (2009) trimming bounds on the effect among always-observed units.
 
     Parameters
@@ -161,13 +256,18 @@ def lee_bounds(y, z, observed=None) -> dict:
         Assignment (0/1).
     observed : array_like of bool, shape (n,), optional
         Whether the outcome was observed; default ``~isnan(y)``.
+    block : array_like, shape (n,), optional
+        Block labels: bounds are computed within each block and combined with
+        the weights of the block-weighted difference in means (share of
+        observed units), so they contain that estimate.
 
     Returns
     -------
     dict
         ``method="lee", lower, upper, observed_share_treated,
-        observed_share_control, trimmed_arm ("treated"|"control"|None),
-        trim_share``.
+        observed_share_control, trimmed_arm ("treated"|"control"|None, or
+        "by block" when blocks differ), trim_share (weighted mean over blocks),
+        std_error_lower, std_error_upper, n_blocks`` (None without ``block``).
 
     Notes
     -----
@@ -184,8 +284,16 @@ def lee_bounds(y, z, observed=None) -> dict:
     observed. Here the empirical distribution is trimmed by exactly the share
     :math:`q`, the boundary value entering with a fractional weight. When
     :math:`p_1 = p_0` both bounds equal the difference in observed means.
+    Standard errors: Lee (2009, Proposition 3); see :func:`_lee_std_errors`
+    (None when an arm has fewer than two observed outcomes).
     """
-    return _lee(_check_outcome(y, z, observed)).to_dict()
+    arms = _check_outcome(y, z, observed)
+    if block is None:
+        return _lee(arms).to_dict()
+    zb = _check_assignment(z)
+    yv = np.asarray(y, dtype=float)
+    obs = ~np.isnan(yv) if observed is None else np.asarray(observed).astype(bool)
+    return _lee_blocked(yv, zb, obs, block).to_dict()
 
 
 def _manski(arms: _ArmOutcomes, low: float, high: float) -> EffectBounds:
@@ -290,12 +398,22 @@ class AttritionTest:
         return {"per_outcome": self.rows()}
 
 
-def _rate_gap(R: np.ndarray, n: int) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
+def attrition_statistic(R: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    """Per-assignment statistic for the engine: ``|r1 - r0|`` for each indicator column of ``R`` (n, q).
+
+    Maps a float block of assignments ``(rows, n)`` to ``(rows, q)``; NaN for
+    an assignment with an empty arm (undefined; the engine sets it aside).
+    """
+    R = np.asarray(R, dtype=float)
+    n = R.shape[0]
     total = R.sum(axis=0)
 
-    def statistic(Z: np.ndarray, n1: np.ndarray) -> np.ndarray:
-        c1 = Z @ R
-        return np.abs(c1 / n1[:, None] - (total - c1) / (n - n1)[:, None])
+    def statistic(block: np.ndarray) -> np.ndarray:
+        c1 = block @ R
+        n1 = block.sum(axis=1)[:, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            gap = np.abs(c1 / n1 - (total - c1) / (n - n1))
+        return np.where((n1 > 0) & (n1 < n), gap, np.nan)
     return statistic
 
 
@@ -332,7 +450,13 @@ def attrition_test(missing, z, chunks: ChunkSource, method: str,
     two-sided hypergeometric test ordered by distance from the mean.
     """
     zb = _check_assignment(z)
-    _check_method(method)
+    check_choice("method", method, METHODS)
+    R, labels = _check_indicators(missing, zb, labels)
+    draws = StoredDraws.from_arrays(chunks, zb.size, method, weights)
+    return _test_from_draws(R, zb, labels, drawn_statistics(draws, [attrition_statistic(R)], zb)[0])
+
+
+def _check_indicators(missing, zb: np.ndarray, labels) -> tuple[np.ndarray, tuple[str, ...]]:
     R = np.asarray(missing, dtype=float)
     if R.ndim == 1:
         R = R[:, None]
@@ -343,11 +467,11 @@ def attrition_test(missing, z, chunks: ChunkSource, method: str,
     labels = tuple(labels) if labels is not None else tuple(f"indicator {j + 1}" for j in range(R.shape[1]))
     if len(labels) != R.shape[1]:
         raise UsageError(f"`labels` must have {R.shape[1]} entries; got {len(labels)}")
-    n = zb.size
-    statistic = _rate_gap(R, n)
-    observed = statistic(zb[None, :].astype(float), np.array([zb.sum()], dtype=float))[0]
-    tally = _tally(chunks, n, statistic, observed, method, weights=weights)
-    p, se = _p_values(tally, method)
+    return R, labels
+
+
+def _test_from_draws(R: np.ndarray, zb: np.ndarray, labels, drawn: DrawnStatistics) -> AttritionTest:
+    p, se, defined = drawn.p_values()
     m1, m0 = R[zb].sum(axis=0), R[~zb].sum(axis=0)
     return AttritionTest(
         labels=labels,
@@ -355,10 +479,10 @@ def attrition_test(missing, z, chunks: ChunkSource, method: str,
         missing_control=tuple(int(v) for v in m0),
         rate_treated=tuple(float(v) for v in m1 / zb.sum()),
         rate_control=tuple(float(v) for v in m0 / (~zb).sum()),
-        p_value=tuple(float(v) for v in p),
-        mc_std_error=None if se is None else tuple(float(v) for v in se),
-        method=method,
-        draws=tally.draws,
+        p_value=tuple(_num(v) for v in p),
+        mc_std_error=None if drawn.method == "exact" else tuple(_num(v) for v in se),
+        method=drawn.method,
+        draws=int(defined[0]),
     )
 
 
@@ -372,12 +496,26 @@ def _overall_columns(outcomes) -> tuple[str, ...]:
     return primary or tuple(o.column for o in outcomes)
 
 
-def _outcome_bounds(study, spec, zb: np.ndarray) -> list[dict]:
+def _outcome_bounds(study, spec, zb: np.ndarray, notes: list[str]) -> list[dict]:
     y = study.outcome(spec.column)
     arms = _check_outcome(y, zb.astype(int), None)
     entries = []
-    lee = _lee(arms)
-    entries.append({"outcome": spec.column, "method": "lee", "lower": lee.lower, "upper": lee.upper})
+    observed = ~np.isnan(y)
+    if observed.all():
+        notes.append(f"No Lee bounds for {spec.column!r}: no outcome is missing, so there is "
+                     "nothing to trim and the bounds would equal the estimate.")
+    else:
+        block = study.block if study.spec.design.block is not None else None
+        lee = _lee(arms) if block is None else _lee_blocked(y, zb, observed, block)
+        se_lower, se_upper = lee.std_error_lower, lee.std_error_upper
+        if study.spec.design.cluster is not None:
+            se_lower = se_upper = None
+            notes.append(f"Lee bounds for {spec.column!r} have no standard errors: the formula of "
+                         "Lee (2009) treats units as independent, which a cluster design is not.")
+        entries.append({"outcome": spec.column, "method": "lee", "lower": lee.lower,
+                        "upper": lee.upper, "std_error_lower": se_lower,
+                        "std_error_upper": se_upper, "trimmed_arm": lee.trimmed_arm,
+                        "n_blocks": lee.n_blocks})
     if spec.range is not None:
         lo, hi = _check_range(*spec.range)
         obs = y[~np.isnan(y)]
@@ -392,6 +530,58 @@ def _outcome_bounds(study, spec, zb: np.ndarray) -> list[dict]:
     return entries
 
 
+@dataclass(frozen=True, kw_only=True, eq=False)
+class AttritionCheck:
+    """A study's attrition section waiting for the engine's draws of its statistic.
+
+    ``statistic`` is handed to the engine's shared pass; :meth:`section`
+    builds the ``results.json`` entry from what the pass drew.
+    """
+
+    indicators: np.ndarray
+    labels: tuple[str, ...]
+    assignment: np.ndarray
+    overall_columns: tuple[str, ...]
+    bounds: list
+    bounds_notes: list
+
+    @property
+    def statistic(self) -> Callable[[np.ndarray], np.ndarray]:
+        return attrition_statistic(self.indicators)
+
+    def section(self, drawn: DrawnStatistics) -> dict:
+        """The attrition section of ``results.json`` (see :func:`study_attrition`)."""
+        rows = _test_from_draws(self.indicators, self.assignment, self.labels, drawn).rows()
+        head = rows[0]
+        return {
+            "rate_treated": head["rate_treated"],
+            "rate_control": head["rate_control"],
+            "p_value": head["p_value"],
+            "method": drawn.method,
+            "draws": head["draws"],
+            "mc_std_error": head["mc_std_error"],
+            "attrited_if_missing": list(self.overall_columns),
+            "bounds": self.bounds,
+            "bounds_notes": self.bounds_notes,
+            "per_outcome": rows[1:],
+        }
+
+
+def study_attrition_check(study) -> AttritionCheck:
+    """The study's missingness indicators (overall first, then one per outcome) and its bounds."""
+    zb = _check_assignment(study.z)
+    outcomes = study.spec.outcomes
+    missing = np.column_stack([np.isnan(study.outcome(o.column)) for o in outcomes]).astype(float)
+    overall_cols = _overall_columns(outcomes)
+    idx = [i for i, o in enumerate(outcomes) if o.column in overall_cols]
+    overall = missing[:, idx].max(axis=1)
+    notes: list[str] = []
+    bounds = [entry for o in outcomes for entry in _outcome_bounds(study, o, zb, notes)]
+    return AttritionCheck(indicators=np.column_stack([overall, missing]),
+                          labels=("overall",) + tuple(o.column for o in outcomes),
+                          assignment=zb, overall_columns=overall_cols, bounds=bounds, bounds_notes=notes)
+
+
 def study_attrition(study, chunks_factory: Callable[[], Iterable[np.ndarray]], method: str,
                     *, weights: WeightFn | None = None) -> dict:
     """Attrition section of ``results.json``.
@@ -403,35 +593,19 @@ def study_attrition(study, chunks_factory: Callable[[], Iterable[np.ndarray]], m
         for the overall indicator (a unit is attrited when any primary outcome
         is missing; any outcome when the spec has no primary outcome; the
         columns used are listed in ``attrited_if_missing``), ``bounds`` (Lee
-        bounds for every outcome, Manski bounds for outcomes with a declared
-        ``range``) and ``per_outcome`` (rates and test per outcome; see
+        bounds, with standard errors and computed within blocks in blocked
+        designs, for every outcome with a missing value; Manski bounds for
+        outcomes with a declared ``range``), ``bounds_notes`` (a sentence for
+        each outcome whose Lee bounds are omitted because nothing is missing,
+        or have no standard errors because the design is clustered) and ``per_outcome`` (rates and test per outcome; see
         :meth:`AttritionTest.rows`).
 
     ``chunks_factory()`` returns a fresh iterator of assignment chunks drawn
     under the study's mechanism; all indicators share one pass over the draws.
-    ``weights`` as in :func:`attrition_test`.
+    ``weights`` as in :func:`attrition_test`. (The analysis itself uses
+    :func:`study_attrition_check` on the engine's shared pass.)
     """
-    _check_method(method)
-    zb = _check_assignment(study.z)
-    outcomes = study.spec.outcomes
-    missing = np.column_stack([np.isnan(study.outcome(o.column)) for o in outcomes]).astype(float)
-    overall_cols = _overall_columns(outcomes)
-    idx = [i for i, o in enumerate(outcomes) if o.column in overall_cols]
-    overall = missing[:, idx].max(axis=1)
-    R = np.column_stack([overall, missing])
-    result = attrition_test(R, zb.astype(int), chunks_factory, method,
-                            labels=("overall",) + tuple(o.column for o in outcomes), weights=weights)
-    rows = result.rows()
-    head = rows[0]
-    bounds = [entry for o in outcomes for entry in _outcome_bounds(study, o, zb)]
-    return {
-        "rate_treated": head["rate_treated"],
-        "rate_control": head["rate_control"],
-        "p_value": head["p_value"],
-        "method": method,
-        "draws": head["draws"],
-        "mc_std_error": head["mc_std_error"],
-        "attrited_if_missing": list(overall_cols),
-        "bounds": bounds,
-        "per_outcome": rows[1:],
-    }
+    check_choice("method", method, METHODS)
+    check = study_attrition_check(study)
+    draws = StoredDraws.from_arrays(chunks_factory, check.assignment.size, method, weights)
+    return check.section(drawn_statistics(draws, [check.statistic], check.assignment)[0])

@@ -1,10 +1,12 @@
 """Covariate balance between the arms and the CONSORT-style participant flow.
 
 Owns: the per-covariate balance table (means by arm, standardized mean
-difference, variance ratio, missing counts), the omnibus Mahalanobis balance
-test under the real assignment mechanism, and the participant-flow counts.
-Also holds the small randomization-distribution helpers (chunk validation,
-counting, the p-value rule) that :mod:`report_kit.checks.attrition` shares.
+difference, variance ratio, missing counts) and WHAT the omnibus Mahalanobis
+balance test computes for each assignment (:func:`mahalanobis_statistic`).
+HOW the draws are produced, counted and turned into p-values is the
+randomization engine's (:mod:`report_kit.inference.engine`,
+:mod:`report_kit.inference.pvalues`). The participant-flow counts live in
+:mod:`report_kit.checks.flow`.
 
 Assignment draws come from outside, as *chunks*: an iterable (or a callable
 returning one) of ``(k, n)`` 0/1 arrays, one row per drawn assignment and one
@@ -30,33 +32,34 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from report_kit.validate import finite_or_none as _num
+from report_kit.validate import finite_or_none as _num, mean_impute_with_indicators
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.inference.engine import StoredDraws, drawn_statistics
+from report_kit.inference.pvalues import DrawnStatistics
+from report_kit.validate import METHODS, check_choice
 
 logger = logging.getLogger(__name__)
 
-METHODS = ("exact", "monte_carlo")
 
 #: Thresholds on ``|std_diff|`` used to flag covariates (common practice, not a
 #: test): at most 0.1 is "small", above 0.25 is "large", in between "moderate".
 SMD_THRESHOLDS = (0.1, 0.25)
 
-#: Relative tolerance when a drawn statistic is compared with the observed one,
-#: so that floating-point noise does not break ties: a draw counts as at least
-#: as extreme when ``t_draw >= t_obs - TIE_RTOL * max(1, |t_obs|)``.
-TIE_RTOL = 1e-9
-
 __all__ = [
-    "METHODS",
-    "SMD_THRESHOLDS",
+    "BalanceCheck",
     "CovariateBalance",
+    "METHODS",
     "OmnibusBalance",
+    "SMD_THRESHOLDS",
     "balance_rows",
+    "balance_statistic",
     "covariate_balance",
     "mahalanobis_balance_test",
+    "mahalanobis_statistic",
     "omnibus_balance",
-    "participant_flow",
+    "omnibus_from_draws",
     "study_balance",
+    "study_balance_check",
 ]
 
 ChunkSource = Iterable[np.ndarray] | Callable[[], Iterable[np.ndarray]]
@@ -64,15 +67,8 @@ WeightFn = Callable[[np.ndarray], "np.ndarray | None"]
 
 
 # ---------------------------------------------------------------------------
-# helpers shared with attrition.py
+# assignment check shared with attrition.py
 # ---------------------------------------------------------------------------
-
-
-
-def _check_method(method: str) -> str:
-    if method not in METHODS:
-        raise UsageError(f"`method` must be one of {{'exact', 'monte_carlo'}}; got {method!r}")
-    return method
 
 
 def _check_assignment(z, n: int | None = None) -> np.ndarray:
@@ -96,130 +92,6 @@ def _check_assignment(z, n: int | None = None) -> np.ndarray:
     return zb
 
 
-def _iter_chunks(chunks: ChunkSource, n: int) -> Iterator[np.ndarray]:
-    """Yield validated assignment chunks as given (2-D, 0/1 values)."""
-    source = chunks() if callable(chunks) else chunks
-    try:
-        iterator = iter(source)
-    except TypeError as err:
-        raise UsageError(
-            f"`chunks` must be an iterable of (k, n) 0/1 arrays or a callable returning one; "
-            f"got {type(source).__name__}"
-        ) from err
-    for i, chunk in enumerate(iterator):
-        arr = np.asarray(chunk)
-        if arr.ndim == 1:
-            arr = arr[None, :]
-        if arr.ndim != 2 or arr.shape[1] != n:
-            raise UsageError(
-                f"assignment chunk {i} must have shape (k, {n}); got {np.shape(chunk)}"
-            )
-        if arr.dtype.kind in "iu":
-            bad = arr.size > 0 and (arr.min() < 0 or arr.max() > 1)
-        else:
-            bad = arr.dtype.kind != "b" and not np.isin(arr, (0, 1)).all()
-        if bad:
-            raise UsageError(f"assignment chunk {i} must contain only 0 and 1")
-        yield arr
-
-
-def _chunk_weights(weights: WeightFn | None, chunk: np.ndarray, method: str, i: int) -> np.ndarray | None:
-    if weights is None:
-        return None
-    w = weights(chunk)
-    if w is None:
-        return None
-    if method != "exact":
-        raise UsageError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
-    w = np.asarray(w, dtype=float)
-    if w.shape != (chunk.shape[0],) or not np.isfinite(w).all() or (w < 0).any():
-        raise UsageError(f"`weights` of chunk {i} must be {chunk.shape[0]} finite non-negative numbers")
-    return w
-
-
-@dataclass(frozen=True, kw_only=True)
-class _Tally:
-    """What one pass over the draws produced for ``q`` statistics."""
-
-    counts: np.ndarray      # (q,) weight of draws at least as extreme as the observed value
-    total: float            # total weight of the draws used
-    draws: int              # draws used (both arms non-empty)
-    skipped: int            # draws with an empty arm (excluded)
-    null: np.ndarray | None  # (draws, q) drawn statistics when kept
-    null_weights: np.ndarray | None  # (draws,) their weights when kept and unequal
-
-
-def _tally(
-    chunks: ChunkSource,
-    n: int,
-    statistic: Callable[[np.ndarray, np.ndarray], np.ndarray],
-    observed: np.ndarray,
-    method: str,
-    *,
-    weights: WeightFn | None = None,
-    keep_null: bool = False,
-) -> _Tally:
-    """Run ``statistic`` over every drawn assignment and count extreme draws.
-
-    ``statistic(Z, n1)`` receives a float ``(k, n)`` chunk with ``n1 = Z.sum(1)``
-    already restricted to draws with both arms non-empty, and returns ``(k, q)``.
-    Counts are weighted when ``weights`` gives unequal weights.
-    """
-    observed = np.asarray(observed, dtype=float)
-    threshold = observed - TIE_RTOL * np.maximum(1.0, np.abs(observed))
-    counts = np.zeros(observed.shape)
-    total = 0.0
-    draws = skipped = 0
-    kept: list[np.ndarray] = []
-    kept_w: list[np.ndarray] = []
-    for i, chunk in enumerate(_iter_chunks(chunks, n)):
-        w = _chunk_weights(weights, chunk, method, i)
-        Z = chunk.astype(np.float64)
-        n1 = Z.sum(axis=1)
-        ok = (n1 > 0) & (n1 < n)
-        skipped += int((~ok).sum())
-        if not ok.any():
-            continue
-        Z, n1 = Z[ok], n1[ok]
-        w = np.ones(Z.shape[0]) if w is None else w[ok]
-        values = statistic(Z, n1)
-        counts += w @ (values >= threshold)
-        total += float(w.sum())
-        draws += Z.shape[0]
-        if keep_null:
-            kept.append(values)
-            kept_w.append(w)
-    if draws == 0 or total <= 0:
-        raise UsageError("`chunks` yielded no assignment with both arms non-empty")
-    if skipped:
-        logger.debug("left out %d drawn assignments with an empty arm; %d used", skipped, draws)
-    null = np.concatenate(kept, axis=0) if keep_null else None
-    null_w = np.concatenate(kept_w) if keep_null and weights is not None else None
-    return _Tally(counts=counts, total=total, draws=draws, skipped=skipped, null=null, null_weights=null_w)
-
-
-def _p_values(tally: _Tally, method: str) -> tuple[np.ndarray, np.ndarray | None]:
-    """The randomization p-values and, for Monte Carlo, their standard errors.
-
-    Exact: ``p = #{draws with T >= t_obs} / D`` over the full enumeration
-    (with weights: the probability mass of those draws over the total mass).
-    Monte Carlo: ``p = (1 + #{T >= t_obs}) / (1 + D)`` (the +1 rule; the
-    observed assignment counts as one draw), which keeps the test valid
-    (Phipson & Smyth 2010). The Monte Carlo standard error is
-    ``sqrt(p_hat (1 - p_hat) / D)`` with ``p_hat = #{T >= t_obs} / D``.
-    """
-    counts, d = tally.counts, tally.draws
-    if method == "exact":
-        if (counts <= 0).any():
-            raise DesignError(
-                "the exact enumeration does not contain the observed assignment "
-                "(no draw is as extreme as the observed statistic)"
-            )
-        return np.minimum(1.0, counts / tally.total), None
-    p_hat = counts / d
-    return (counts + 1) / (d + 1), np.sqrt(p_hat * (1 - p_hat) / d)
-
-
 # ---------------------------------------------------------------------------
 # balance table
 # ---------------------------------------------------------------------------
@@ -239,6 +111,7 @@ class CovariateBalance:
     missing_treated: int
     missing_control: int
     flag: str | None
+    weighting: str = "none"
 
     def to_dict(self) -> dict:
         return {
@@ -252,6 +125,7 @@ class CovariateBalance:
             "missing_treated": self.missing_treated,
             "missing_control": self.missing_control,
             "flag": self.flag,
+            "weighting": self.weighting,
         }
 
 
@@ -297,9 +171,31 @@ def _arm_summary(x: np.ndarray) -> tuple[float | None, float | None, int]:
     return mean, sd, int(x.size - obs.size)
 
 
-def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray) -> CovariateBalance:
+def _block_weighted_means(x: np.ndarray, zb: np.ndarray, block: np.ndarray
+                          ) -> tuple[float | None, float | None]:
+    """``sum_b w_b xbar_ab`` per arm, ``w_b = n_b / n`` over blocks observed in both arms."""
+    obs = ~np.isnan(x)
+    sums = np.zeros((2, int(block.max()) + 1))
+    counts = np.zeros_like(sums)
+    for a, arm in enumerate((zb, ~zb)):
+        keep = arm & obs
+        sums[a] = np.bincount(block[keep], weights=x[keep], minlength=sums.shape[1])
+        counts[a] = np.bincount(block[keep], minlength=sums.shape[1])
+    both = (counts > 0).all(axis=0)
+    if not both.any():
+        return None, None
+    size = np.bincount(block, minlength=sums.shape[1]).astype(float) * both
+    w = size / size.sum()
+    means = np.divide(sums, counts, out=np.zeros_like(sums), where=counts > 0)
+    return float(w @ means[0]), float(w @ means[1])
+
+
+def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray,
+                   block: np.ndarray | None = None) -> CovariateBalance:
     m1, s1, miss1 = _arm_summary(x[zb])
     m0, s0, miss0 = _arm_summary(x[~zb])
+    if block is not None:
+        m1, m0 = _block_weighted_means(x, zb, block)
     std_diff = variance_ratio = None
     if None not in (m1, m0, s1, s0):
         pooled = np.sqrt((s1 ** 2 + s0 ** 2) / 2)
@@ -317,16 +213,23 @@ def _one_covariate(name: str, x: np.ndarray, zb: np.ndarray) -> CovariateBalance
         sd_treated=_num(s1), sd_control=_num(s0),
         std_diff=_num(std_diff), variance_ratio=_num(variance_ratio),
         missing_treated=miss1, missing_control=miss0, flag=_flag(_num(std_diff)),
+        weighting="none" if block is None else "blocks",
     )
 
 
-def covariate_balance(X, z, names: Sequence[str]) -> tuple[CovariateBalance, ...]:
+def covariate_balance(X, z, names: Sequence[str], *, block=None) -> tuple[CovariateBalance, ...]:
     """Per-covariate balance as result objects (see :func:`balance_rows`)."""
     arr, zb, names = _check_covariates(X, z, names)
-    return tuple(_one_covariate(name, arr[:, j], zb) for j, name in enumerate(names))
+    codes = None
+    if block is not None:
+        labels = np.asarray(block, dtype=object)
+        if labels.shape != zb.shape:
+            raise UsageError(f"`block` must have one label per unit ({zb.size}); got shape {labels.shape}")
+        codes = np.unique(labels.astype(str), return_inverse=True)[1].ravel()
+    return tuple(_one_covariate(name, arr[:, j], zb, codes) for j, name in enumerate(names))
 
 
-def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
+def balance_rows(X, z, names: Sequence[str], *, block=None) -> list[dict]:
     r"""Means by arm, standardized mean difference and variance ratio per covariate.
 
     Parameters
@@ -338,13 +241,17 @@ def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
         Assignment, 1 treated and 0 control.
     names : sequence of str
         One name per column of ``X``.
+    block : array_like, shape (n,), optional
+        Block labels of a blocked design: the arm means become
+        ``sum_b w_b xbar_ab`` with ``w_b = n_b / n`` (blocks observed in both
+        arms), the weights of the block-weighted effect estimate.
 
     Returns
     -------
     list of dict
         One dict per covariate with ``name, mean_treated, mean_control,
         sd_treated, sd_control, std_diff, variance_ratio, missing_treated,
-        missing_control, flag``.
+        missing_control, flag, weighting`` (``"blocks"`` or ``"none"``).
 
     Notes
     -----
@@ -354,14 +261,18 @@ def balance_rows(X, z, names: Sequence[str]) -> list[dict]:
 
     .. math:: d = \frac{\bar x_1 - \bar x_0}{\sqrt{(s_1^2 + s_0^2)/2}}
 
-    (Rosenbaum & Rubin 1985; Austin 2009), and the variance ratio is
+    (Rosenbaum & Rubin 1985; Austin 2009). In blocked designs the numerator
+    is the block-weighted difference :math:`\sum_b w_b (\bar x_{1b} - \bar
+    x_{0b})`, equal to the inverse-probability-weighted difference, over the
+    unweighted pooled SD (Austin & Stuart 2015), so that treatment shares
+    varying across blocks do not show as imbalance. The variance ratio is
     :math:`s_1^2 / s_0^2`. ``flag`` classes :math:`|d|` as ``"small"``
     (:math:`\le 0.1`), ``"moderate"`` (:math:`\le 0.25`) or ``"large"``; these
     cut-offs are common practice (Stuart 2010), not a test. Undefined values
     (fewer than two observed values in an arm, zero pooled SD, zero control
     variance) are None.
     """
-    return [row.to_dict() for row in covariate_balance(X, z, names)]
+    return [row.to_dict() for row in covariate_balance(X, z, names, block=block)]
 
 
 # ---------------------------------------------------------------------------
@@ -397,30 +308,6 @@ class OmnibusBalance:
         }
 
 
-def _impute_with_indicators(arr: np.ndarray, names: tuple[str, ...]) -> np.ndarray:
-    """Fill missing values with the column mean and append a missingness indicator.
-
-    Both steps use the pooled sample only, never the assignment, so the
-    statistic stays a fixed function of the assignment vector.
-    """
-    cols, patterns = [], []
-    for j, name in enumerate(names):
-        x = arr[:, j]
-        miss = np.isnan(x)
-        if miss.all():
-            warnings.warn(f"covariate {name!r} is missing for every unit; the omnibus test leaves it out",
-                          ReportKitWarning, stacklevel=4)
-            continue
-        if miss.any():
-            cols.append(np.where(miss, x[~miss].mean(), x))
-            if not any(np.array_equal(miss, seen) for seen in patterns):
-                patterns.append(miss)  # one indicator per distinct missingness pattern
-        else:
-            cols.append(x)
-    cols.extend(m.astype(float) for m in patterns)
-    return np.column_stack(cols) if cols else np.empty((arr.shape[0], 0))
-
-
 def _whiten(arr: np.ndarray) -> np.ndarray:
     """Centre the columns and rotate them to unit sample covariance.
 
@@ -441,11 +328,55 @@ def _whiten(arr: np.ndarray) -> np.ndarray:
     return xc @ (v[:, good] / np.sqrt(w[good]))
 
 
-def _mahalanobis_rows(W: np.ndarray, n: int) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
-    def statistic(Z: np.ndarray, n1: np.ndarray) -> np.ndarray:
-        s = Z @ W
-        return ((s * s).sum(axis=1) * n / (n1 * (n - n1)))[:, None]
+def mahalanobis_statistic(W: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    r"""The per-assignment omnibus statistic on whitened covariates ``W`` (see :func:`balance_statistic`).
+
+    Returns a function from a float block of assignments ``(rows, n)`` to
+    ``(rows, 1)``: :math:`M = \lVert Z W \rVert^2 \, n / (n_1 (n - n_1))`,
+    NaN for an assignment with an empty arm (undefined; the engine sets it
+    aside).
+    """
+    n = W.shape[0]
+
+    def statistic(block: np.ndarray) -> np.ndarray:
+        s = block @ W
+        n1 = block.sum(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            m = (s * s).sum(axis=1) * n / (n1 * (n - n1))
+        return np.where((n1 > 0) & (n1 < n), m, np.nan)[:, None]
     return statistic
+
+
+def balance_statistic(X, names: Sequence[str]) -> tuple[Callable[[np.ndarray], np.ndarray] | None, int]:
+    """The omnibus statistic of covariates ``X`` (n, p) for the engine, and its degrees of freedom.
+
+    Imputes missing values (pooled mean plus one missingness indicator per
+    pattern), whitens, and returns ``(statistic, df)``; ``(None, 0)`` when no
+    direction is left. Warns when constant or collinear directions are dropped.
+    """
+    arr = np.asarray(X, dtype=float)
+    filled = mean_impute_with_indicators(arr, tuple(names))
+    W = _whiten(filled)
+    if W.shape[1] == 0:
+        return None, 0
+    if W.shape[1] < filled.shape[1]:
+        warnings.warn(
+            f"the covariates span {W.shape[1]} of {filled.shape[1]} dimensions (constant or collinear "
+            "columns); the omnibus statistic uses the independent directions only",
+            ReportKitWarning, stacklevel=3,
+        )
+    return mahalanobis_statistic(W), int(W.shape[1])
+
+
+def omnibus_from_draws(drawn: DrawnStatistics, df: int) -> OmnibusBalance:
+    """The omnibus result from the engine's drawn statistics (p-value by the engine's rules)."""
+    p, se, defined = drawn.p_values()
+    null, weights = drawn.defined_rows(0)
+    return OmnibusBalance(
+        statistic=_num(drawn.observed[0]), p_value=_num(p[0]), method=drawn.method,
+        draws=int(defined[0]), df=df, mc_std_error=_num(se[0]),
+        null_distribution=null, null_weights=weights,
+    )
 
 
 def mahalanobis_balance_test(
@@ -499,28 +430,12 @@ def mahalanobis_balance_test(
     values; constant or collinear directions are dropped (``df`` = rank used).
     """
     arr, zb, names = _check_covariates(X, z, names)
-    _check_method(method)
-    n = zb.size
-    filled = _impute_with_indicators(arr, names)
-    W = _whiten(filled)
-    if W.shape[1] == 0:
+    check_choice("method", method, METHODS)
+    statistic, df = balance_statistic(arr, names)
+    if statistic is None:
         return OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
-    if W.shape[1] < filled.shape[1]:
-        warnings.warn(
-            f"the covariates span {W.shape[1]} of {filled.shape[1]} dimensions (constant or collinear "
-            "columns); the omnibus statistic uses the independent directions only",
-            ReportKitWarning, stacklevel=2,
-        )
-    statistic = _mahalanobis_rows(W, n)
-    observed = statistic(zb[None, :].astype(float), np.array([zb.sum()], dtype=float))[0]
-    tally = _tally(chunks, n, statistic, observed, method, weights=weights, keep_null=True)
-    p, se = _p_values(tally, method)
-    return OmnibusBalance(
-        statistic=float(observed[0]), p_value=float(p[0]), method=method,
-        draws=tally.draws, df=int(W.shape[1]),
-        mc_std_error=None if se is None else float(se[0]),
-        null_distribution=tally.null[:, 0], null_weights=tally.null_weights,
-    )
+    draws = StoredDraws.from_arrays(chunks, zb.size, method, weights)
+    return omnibus_from_draws(drawn_statistics(draws, [statistic], zb)[0], df)
 
 
 def omnibus_balance(
@@ -539,6 +454,40 @@ def omnibus_balance(
 # ---------------------------------------------------------------------------
 
 
+@dataclass(frozen=True, kw_only=True, eq=False)
+class BalanceCheck:
+    """A study's balance section waiting for the engine's draws of its omnibus statistic.
+
+    ``statistic`` (None without usable covariates) is handed to the
+    engine's shared pass; :meth:`section` builds the ``results.json`` entry
+    from what the pass drew.
+    """
+
+    covariates: list
+    statistic: Callable[[np.ndarray], np.ndarray] | None
+    df: int
+
+    def section(self, drawn: DrawnStatistics | None, method: str) -> dict:
+        """``{covariates: [...], omnibus: {...}}``; the omnibus entry holds None values without a statistic."""
+        if self.statistic is None or drawn is None:
+            omnibus = OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
+        else:
+            omnibus = omnibus_from_draws(drawn, self.df)
+        return {"covariates": self.covariates, "omnibus": omnibus.to_dict()}
+
+
+def study_balance_check(study) -> BalanceCheck:
+    """The balance table of the spec's ``analysis.covariates`` and their omnibus statistic for the engine."""
+    names = tuple(study.spec.analysis.covariates)
+    if not names:
+        return BalanceCheck(covariates=[], statistic=None, df=0)
+    X = study.frame.loc[:, list(names)].to_numpy(dtype=float)
+    arr, _, names = _check_covariates(X, study.z, names)
+    statistic, df = balance_statistic(arr, names)
+    block = study.block if study.spec.design.block else None
+    return BalanceCheck(covariates=balance_rows(X, study.z, names, block=block), statistic=statistic, df=df)
+
+
 def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], method: str,
                   *, weights: WeightFn | None = None) -> dict:
     """Balance section of ``results.json``: ``{covariates: [...], omnibus: {...}}``.
@@ -547,65 +496,13 @@ def study_balance(study, chunks_factory: Callable[[], Iterable[np.ndarray]], met
     the table is empty and the omnibus entry holds None values.
     ``chunks_factory()`` must return a fresh iterator of assignment chunks
     drawn under the study's mechanism, in the frame's row order; ``weights``
-    as in :func:`mahalanobis_balance_test`.
+    as in :func:`mahalanobis_balance_test`. (The analysis itself uses
+    :func:`study_balance_check` on the engine's shared pass.)
     """
-    _check_method(method)
-    names = tuple(study.spec.analysis.covariates)
-    if not names:
-        empty = OmnibusBalance(statistic=None, p_value=None, method=method, draws=0, df=0, mc_std_error=None)
-        return {"covariates": [], "omnibus": empty.to_dict()}
-    X = study.frame.loc[:, list(names)].to_numpy(dtype=float)
-    z = study.z
-    return {
-        "covariates": balance_rows(X, z, names),
-        "omnibus": omnibus_balance(X, z, chunks_factory, method, names, weights=weights),
-    }
-
-
-def _main_estimate_sizes(estimates, outcome: str) -> tuple[int, int] | None:
-    for e in estimates or ():
-        if (e.get("outcome") == outcome and e.get("estimator") == "unadjusted"
-                and e.get("estimand") in ("ATE", "ITT") and e.get("subgroup") is None):
-            return int(e["n_treated"]), int(e["n_control"])
-    return None
-
-
-def participant_flow(study, estimates: Sequence[dict] | None = None) -> list[dict]:
-    """CONSORT-style participant flow by arm and outcome.
-
-    One dict per outcome and arm (``"treated"`` then ``"control"``):
-
-    ``outcome``, ``arm``, ``randomized`` (units assigned to the arm),
-    ``received_treatment`` (units of the arm with ``compliance.received`` = 1;
-    None without a compliance column), ``outcome_observed`` (non-missing
-    outcome), ``lost`` (``randomized - outcome_observed``) and ``analysed``
-    (units in the main unadjusted ITT/ATE estimate when ``estimates`` — the
-    ``results.json`` list — is given, else the units with an observed outcome,
-    the complete-case rule of the estimators).
-
-    The stages follow the CONSORT 2010 flow diagram (Schulz, Altman & Moher 2010).
-    """
-    zb = _check_assignment(study.z)
-    received = None
-    if study.spec.compliance is not None:
-        received = study.frame[study.spec.compliance.received].to_numpy(dtype=float) == 1
-    rows = []
-    for spec in study.spec.outcomes:
-        observed = ~np.isnan(study.outcome(spec.column))
-        sizes = _main_estimate_sizes(estimates, spec.column)
-        for arm, mask in (("treated", zb), ("control", ~zb)):
-            n_obs = int(observed[mask].sum())
-            if sizes is None:
-                analysed = n_obs
-            else:
-                analysed = sizes[0] if arm == "treated" else sizes[1]
-            rows.append({
-                "outcome": spec.column,
-                "arm": arm,
-                "randomized": int(mask.sum()),
-                "received_treatment": None if received is None else int(received[mask].sum()),
-                "outcome_observed": n_obs,
-                "lost": int(mask.sum()) - n_obs,
-                "analysed": analysed,
-            })
-    return rows
+    check_choice("method", method, METHODS)
+    check = study_balance_check(study)
+    drawn = None
+    if check.statistic is not None:
+        draws = StoredDraws.from_arrays(chunks_factory, study.z.size, method, weights)
+        drawn = drawn_statistics(draws, [check.statistic], study.z)[0]
+    return check.section(drawn, method)

@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DesignError, ReportKitError, SpecError, UsageError
+from report_kit.files import share_like_umask
 from report_kit.inputs.model import Spec, Study
 
 ASSIGNMENT_FILE = "data/assignment.csv"
@@ -108,12 +109,13 @@ def check_assignment(study: Study) -> AssignmentCheck:
     seed, treatment = spec.design.seed, spec.design.treatment
     if seed is None:
         return AssignmentCheck(status="not_checked", treatment=treatment)
-    drawn = redraw(spec, study.frame).astype(int)
-    z = study.z
+    frame = study.randomized_frame  # every unit as randomized, before any declared data handling
+    drawn = redraw(spec, frame).astype(int)
+    z = study.arm_codes(frame)
     differ = np.flatnonzero(drawn != z)
     if differ.size == 0:
         return AssignmentCheck(status="reproduced", seed=seed, treatment=treatment)
-    ids = tuple(v.item() if isinstance(v, np.generic) else v for v in study.ids[differ].tolist())
+    ids = tuple(v.item() if isinstance(v, np.generic) else v for v in frame[spec.data.id].to_numpy()[differ].tolist())
     return AssignmentCheck(status="mismatch", differing_ids=ids, recorded=tuple(int(v) for v in z[differ]),
                            seed=seed, treatment=treatment)
 
@@ -194,6 +196,7 @@ def _write_atomically(table: pd.DataFrame, target: Path, shown: Path) -> None:
         fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
         with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
             table.to_csv(fh, index=False, lineterminator="\n")
+        share_like_umask(tmp)
         os.replace(tmp, target)
     except OSError as err:
         if tmp is not None:

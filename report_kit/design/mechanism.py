@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DataError, DesignError, UsageError
+from report_kit.validate import MECHANISMS, METHODS, check_choice  # noqa: F401  (METHODS re-exported)
 
 __all__ = [
     "KINDS",
@@ -46,8 +47,7 @@ __all__ = [
 
 logger = logging.getLogger(__name__)
 
-KINDS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster", "matched_pairs")
-METHODS = ("exact", "monte_carlo")
+KINDS = MECHANISMS
 _NEEDS_BLOCK = frozenset({"blocked", "blocked_cluster", "matched_pairs"})
 _NEEDS_CLUSTER = frozenset({"cluster", "blocked_cluster"})
 #: Target number of assignment cells (draws x units) held in one chunk.
@@ -57,15 +57,8 @@ CHUNK_CELLS = 1 << 22
 # --------------------------------------------------------------------------- validation
 
 
-def _braces(choices) -> str:
-    """``{'a', 'b'}`` in the given order (a set's repr would vary between runs)."""
-    return "{" + ", ".join(repr(c) for c in choices) + "}"
-
-
 def _check_kind(kind: str) -> str:
-    if kind not in KINDS:
-        raise UsageError(f"`kind` must be one of {_braces(KINDS)}; got {kind!r}")
-    return kind
+    return check_choice("kind", kind, KINDS)
 
 
 def _check_positive_int(name: str, value, *, minimum: int = 1) -> int:
@@ -119,6 +112,10 @@ def _codes(labels, name: str, n: int) -> tuple[np.ndarray, tuple]:
     except TypeError as err:
         raise DataError(f"`{name}` labels must be all numbers or all text; got a mixture") from err
     return codes.astype(np.intp), tuple(uniq.tolist())
+
+
+#: Counts of assignments with more digits than this are described by their size (10^N) only.
+MAX_COUNT_DIGITS = 20
 
 
 def number_treated(probability: float, size: int) -> int:
@@ -246,6 +243,22 @@ class Mechanism:
             )
         )
 
+    def count_text(self, max_digits: int = MAX_COUNT_DIGITS) -> str | None:
+        """:meth:`count` as decimal digits when it has at most ``max_digits`` digits, else ``None``.
+
+        A huge count is never turned into a decimal string (Python refuses
+        integers of more than 4,300 digits, and building it costs seconds at a
+        million units); use :meth:`log10_count` for its size.
+        """
+        if self.log10_count() >= max_digits + 1:      # surely more digits than allowed
+            return None
+        text = str(self.count())
+        return text if len(text) <= max_digits else None
+
+    def log10_count(self) -> float:
+        """Base-10 logarithm of :meth:`count` (the number of digits is ``floor(log10) + 1``)."""
+        return self.log_count() / math.log(10.0)
+
     def count_at_most(self, limit: int) -> bool:
         """Whether :meth:`count` is at most ``limit``, without building huge integers."""
         if self.log_count() > math.log(max(limit, 1)) + 1.0:
@@ -316,6 +329,33 @@ class Mechanism:
         seed = _check_seed(seed)
         size = self._chunk_size(chunk_size, draws)
         return self._sample(draws, seed, size)
+
+    def sample_block(self, rows: int, seed_sequence: np.random.SeedSequence) -> np.ndarray:
+        """``rows`` random assignments as a ``(rows, n)`` ``uint8`` array, from one seed sequence alone.
+
+        The rows depend only on ``seed_sequence`` (its two children feed the
+        unit keys and the adjustment indices, as in :meth:`sample_chunks`), so
+        a block can be generated anywhere, independently of any other block.
+        The randomization engine draws its Monte Carlo chunk ``i`` with
+        ``numpy.random.SeedSequence(seed).spawn(n_chunks)[i]``.
+        """
+        rows = _check_positive_int("rows", rows)
+        if not isinstance(seed_sequence, np.random.SeedSequence):
+            raise UsageError(f"`seed_sequence` must be a numpy.random.SeedSequence; got {type(seed_sequence).__name__}")
+        key_seq, fix_seq = seed_sequence.spawn(2)
+        keys = np.random.Generator(np.random.PCG64(key_seq))
+        fixes = _IndexStream(np.random.Generator(np.random.PCG64(fix_seq)), self.n_groups)
+        return self._sample_rows(rows, keys, fixes)
+
+    def enumerate_range(self, start: int, stop: int) -> np.ndarray:
+        """Assignments number ``start`` to ``stop - 1`` of :meth:`enumerate_chunks`, as ``uint8`` rows."""
+        total = self.count()
+        if total > np.iinfo(np.int64).max:
+            raise UsageError(f"cannot enumerate {total} assignments; use sample_chunks")
+        if not (isinstance(start, int) and isinstance(stop, int) and 0 <= start <= stop <= total):
+            raise UsageError(f"`start` and `stop` must be integers with 0 <= start <= stop <= {total}; "
+                             f"got {start!r}, {stop!r}")
+        return self._unrank(np.arange(start, stop, dtype=np.int64))
 
     def _sample(self, draws: int, seed: int, size: int) -> Iterator[np.ndarray]:
         key_seq, fix_seq = np.random.SeedSequence(seed).spawn(2)

@@ -24,14 +24,17 @@ from report_kit.estimation.core import (
     _keys,
     _sample,
     _Sample,
+    _bm_df,
+    _bm_terms,
     _to_estimate,
     _undefined_fit,
     _validate,
     _warn,
 )
 from report_kit.errors import DataError, DesignError, UsageError
+from report_kit.validate import mean_impute_with_indicators
 
-__all__ = ["estimate_adjusted"]
+__all__ = ["MISSING_COVARIATES", "estimate_adjusted"]
 
 
 # ---------------------------------------------------------------------------
@@ -39,8 +42,13 @@ __all__ = ["estimate_adjusted"]
 # ---------------------------------------------------------------------------
 
 
+#: Ways to handle missing baseline covariates in the adjustment.
+MISSING_COVARIATES = ("mean_indicator", "refuse")
+
+
 def estimate_adjusted(y, z, X, *, mechanism: str, block=None, cluster=None,
-                      alpha: float = 0.05) -> Estimate:
+                      alpha: float = 0.05, missing_covariates: str = "mean_indicator",
+                      names=None) -> Estimate:
     """Covariate-adjusted ATE: Lin's (2013) interacted regression.
 
     OLS of ``y`` on ``1, z, Xc, z * Xc`` where ``Xc`` are the covariates centred
@@ -51,26 +59,78 @@ def estimate_adjusted(y, z, X, *, mechanism: str, block=None, cluster=None,
     each arm — so with no covariates the estimate equals the blocked difference
     in means — otherwise as additive fixed effects.
 
-    Degrees of freedom: ``n - p`` (p regressors) without clusters; ``G - B - 1``
-    with G clusters and B blocks (B = 1 if unblocked) for CR2 (common practice).
+    Degrees of freedom: ``n - p`` (p regressors) without clusters; for CR2 the
+    Bell & McCaffrey (2002) df of the effect contrast (Imbens & Kolesár 2016),
+    ``tr(G'G)^2 / ||G'G||_F^2`` as in ``docs/methods/estimation.md``.
 
-    Rows with a missing outcome are dropped. A missing covariate value among the
-    kept rows raises :class:`DesignError` (no imputation). Covariates constant
-    among the kept rows, and regressors that are linear combinations of others
-    (or of the block indicators), are dropped with a warning; that leaves the
-    fitted values unchanged.
+    Rows with a missing outcome are dropped. Missing covariate values among the
+    kept rows: with ``missing_covariates="mean_indicator"`` (default) they are
+    filled with the covariate's mean over the kept rows and a missingness
+    indicator is added, the same rule as the balance check
+    (:func:`report_kit.validate.mean_impute_with_indicators`); with ``"refuse"``
+    they raise :class:`DesignError`. ``names`` (optional) label the covariates
+    in messages. Covariates constant among the kept rows, and regressors that
+    are linear combinations of others (or of the block indicators), are dropped
+    with a warning; that leaves the fitted values unchanged.
+
+    Too few units for the covariates: with ``k`` covariate columns (after
+    imputation and dropping constant ones), each arm must have at least
+    ``k + 2`` units (clusters in cluster designs) — an intercept and ``k``
+    slopes per arm plus one residual degree of freedom — otherwise
+    :class:`DesignError`; so does a unit with leverage 1 in the HC2 variance,
+    whose residual is zero by construction and would shrink the standard error.
     """
     y, design = _validate(y, z, mechanism, block, cluster, alpha)
+    if missing_covariates not in MISSING_COVARIATES:
+        raise UsageError(f"`missing_covariates` must be one of {MISSING_COVARIATES}; "
+                         f"got {missing_covariates!r}")
     X = _covariates(X, design.n)
+    names = tuple(names) if names is not None else tuple(f"x{j + 1}" for j in range(X.shape[1]))
+    if len(names) != X.shape[1]:
+        raise UsageError(f"`names` must have one entry per covariate ({X.shape[1]}); got {len(names)}")
     s = _sample(design, y, np.ones(design.n, dtype=bool))
-    missing = np.isnan(X[s.pos]).any(axis=1)
+    Xs = X[s.pos]
+    missing = np.isnan(Xs).any(axis=1)
     if missing.any():
-        raise DesignError(f"covariates have missing values in {int(missing.sum())} of the "
-                          f"{s.pos.size} units with an observed outcome; impute or drop "
-                          "them before adjustment")
-    fit = _lin_fit(s, X[s.pos])
+        if missing_covariates == "refuse":
+            bad = [n for n, m in zip(names, np.isnan(Xs).any(axis=0)) if m]
+            raise DesignError(f"covariate(s) {bad} have missing values in {int(missing.sum())} of "
+                              f"the {s.pos.size} units with an observed outcome; impute or drop "
+                              "them before adjustment")
+        Xs = _singleton_indicators_out(mean_impute_with_indicators(Xs, names, user="the adjustment"),
+                                       Xs.shape[1] - int(np.isnan(Xs).all(axis=0).sum()), s.z)
+    _check_units_per_covariate(s, Xs)
+    fit = _lin_fit(s, Xs)
     return _to_estimate(fit, design.alpha, estimand="ATE", estimator="adjusted",
                         n_missing=s.n_missing)
+
+
+def _singleton_indicators_out(X: np.ndarray, n_values: int, z: np.ndarray) -> np.ndarray:
+    """Drop missingness indicators that flag exactly one unit of an arm.
+
+    In the interacted regression such an indicator fits that unit exactly
+    (leverage 1); the imputed mean stays in its covariate column.
+    """
+    keep = np.ones(X.shape[1], dtype=bool)
+    for j in range(n_values, X.shape[1]):
+        flagged = X[:, j] > 0
+        if int((flagged & z).sum()) == 1 or int((flagged & ~z).sum()) == 1:
+            keep[j] = False
+    if not keep.all():
+        _warn(f"{int((~keep).sum())} missingness indicator(s) flag a single unit of an arm and are "
+              "left out of the adjustment (the mean imputation stays)")
+    return X[:, keep]
+
+
+def _check_units_per_covariate(s: _Sample, X: np.ndarray) -> None:
+    k = int(np.sum(np.ptp(X, axis=0) > 0)) if X.size else 0
+    kind = "units" if s.cluster is None else "clusters"
+    for arm, label in ((s.z, "treated"), (~s.z, "control")):
+        count = int(arm.sum()) if s.cluster is None else int(np.unique(s.cluster[arm]).size)
+        if count < k + 2:
+            raise DesignError(f"the {label} arm has {count} {kind} with an observed outcome, fewer "
+                              f"than the {k + 2} needed to adjust for {k} covariate column(s) "
+                              "(k + 2 per arm)")
 
 
 def _covariates(X, n: int) -> np.ndarray:
@@ -146,9 +206,8 @@ def _lin_fit(s: _Sample, X: np.ndarray) -> _Fit:
         contrib, keys = _hc2_contributions(group_share + np.sum(qmat ** 2, axis=1), r, resid, s.pos)
         df, method, rule = float(n - n_par), "lin_hc2", "hc2"
     else:
-        contrib, keys = _cr2_contributions(qmat, group_share, r, resid, s.cluster)
-        n_blocks = 1 if s.block is None else np.unique(s.block).size
-        df = float(np.unique(s.cluster).size - n_blocks - 1)
+        contrib, keys, df = _cr2_contributions(qmat, group_share, r, resid, s.cluster,
+                                               layout.groups)
         method, rule = "lin_cr2", "cr2"
     if df < 1:
         _warn(f"the adjusted estimate has {df:g} degrees of freedom; no interval is reported")
@@ -236,7 +295,7 @@ def _independent_columns(raw: np.ndarray, demeaned: np.ndarray, required: int) -
         _, r_mat, piv = linalg.qr(rest, mode="economic", pivoting=True)
         rank = int(np.sum(np.abs(np.diag(r_mat)) > 1e-9))
         kept = sorted(rest_index[piv[:rank]].tolist())
-    dropped = q - required - len(kept)
+    dropped = q - required - len(kept) - int(np.sum(raw_norm[required:] == 0))
     if dropped:
         _warn(f"{dropped} regressor(s) of the adjusted regression are collinear with other "
               "covariates or with block indicators and are left out (fitted values are "
@@ -247,32 +306,53 @@ def _independent_columns(raw: np.ndarray, demeaned: np.ndarray, required: int) -
 def _hc2_contributions(lev, r, resid, pos) -> tuple[np.ndarray, np.ndarray]:
     one = lev > 1.0 - 1e-10
     if one.any():
-        _warn(f"{int(one.sum())} unit(s) have leverage 1 (their residual is 0 by construction); "
-              "HC2 treats their contribution as 0, so the standard error may be too small")
-    contrib = np.where(one, 0.0, r * resid / np.sqrt(np.where(one, 1.0, 1.0 - lev)))
+        raise DesignError(f"{int(one.sum())} unit(s) have leverage 1 in the adjusted regression "
+                          "(their residual is 0 by construction), so its HC2 standard error "
+                          "would be too small")
+    contrib = r * resid / np.sqrt(1.0 - lev)
     return contrib, _keys(_UNIT, pos)
 
 
-def _cr2_contributions(qmat, group_share, r, resid, cluster) -> tuple[np.ndarray, np.ndarray]:
-    groups = _groups(cluster)
-    codes = np.array([code for code, _ in groups], dtype=np.int64)
+def _cr2_contributions(qmat, group_share, r, resid, cluster, groups
+                       ) -> tuple[np.ndarray, np.ndarray, float]:
+    """CR2 contributions per cluster and the Bell–McCaffrey df of the effect.
+
+    Clusters are processed in batches of equal size: for each size ``m`` the
+    matrices ``I - H_gg`` of all clusters with ``m`` units are stacked and
+    decomposed by one batched ``eigh`` call.
+    """
+    order = np.argsort(cluster, kind="stable")
+    codes, starts, counts = np.unique(cluster[order], return_index=True, return_counts=True)
     contrib = np.empty(codes.size)
+    u_d = np.empty(codes.size)
+    u_t = np.empty(codes.size)
+    B = np.empty((codes.size, qmat.shape[1]))
     singular = False
-    for j, (_, idx) in enumerate(groups):
-        qg = qmat[idx]
-        hat = np.full((idx.size, idx.size), group_share[idx[0]]) + qg @ qg.T
-        adjust, sing = _inv_sqrt_psd(np.eye(idx.size) - hat)
+    for size in np.unique(counts):
+        which = np.flatnonzero(counts == size)
+        idx = order[starts[which][:, None] + np.arange(size)]          # (m, size)
+        qg = qmat[idx]                                                  # (m, size, k)
+        hat = group_share[idx[:, 0]][:, None, None] + qg @ np.swapaxes(qg, 1, 2)
+        adjust, sing = _inv_sqrt_psd(np.eye(size) - hat)
         singular |= sing
-        contrib[j] = r[idx] @ (adjust @ resid[idx])
+        u = np.einsum("mij,mj->mi", adjust, r[idx])                     # A_g r_g
+        contrib[which] = np.einsum("mi,mi->m", u, resid[idx])
+        u_d[which] = np.einsum("mi,mi->m", u, u)
+        u_t[which] = u.sum(axis=1)
+        B[which] = np.einsum("mik,mi->mk", qg, u)
     if singular:
         _warn("I - H_gg is singular for some cluster (e.g. alone in its block and arm); CR2 "
               "uses the generalised inverse square root there")
-    return contrib, _keys(_CLUSTER, codes)
+    cell = groups[order[starts]]
+    cell_size = 1.0 / group_share[order[starts]]
+    df = _bm_df(*_bm_terms(u_d, u_t, cell, cell_size, B))
+    return contrib, _keys(_CLUSTER, codes), df
 
 
 def _inv_sqrt_psd(m: np.ndarray) -> tuple[np.ndarray, bool]:
-    """Symmetric (generalised) inverse square root of a PSD matrix via eigh."""
+    """Symmetric (generalised) inverse square root of PSD matrices via (batched) eigh."""
     vals, vecs = np.linalg.eigh(m)
-    ok = vals > 1e-10 * max(1.0, float(vals.max(initial=0.0)))
+    top = np.maximum(1.0, vals.max(axis=-1, initial=0.0))[..., None]
+    ok = vals > 1e-10 * top
     inv = np.where(ok, 1.0 / np.sqrt(np.where(ok, vals, 1.0)), 0.0)
-    return (vecs * inv) @ vecs.T, bool((~ok).any())
+    return (vecs * inv[..., None, :]) @ np.swapaxes(vecs, -1, -2), bool((~ok).any())

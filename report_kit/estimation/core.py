@@ -224,6 +224,7 @@ class _Piece:
     small: bool
     n_treated: int
     n_control: int
+    bm: tuple[float, float] | None = None   # (trace, squared Frobenius norm) of G'G, CR2 only
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -279,11 +280,13 @@ def _cr2_piece(y, z, cluster, pos, label) -> _Piece:
     closed form ``H_gg = J / N_a`` (J all ones, N_a units in the cluster's arm),
     so the contribution of cluster g in arm a is
     ``+-E_g / (N_a sqrt(1 - n_g / N_a))`` with ``E_g`` the sum of the cluster's
-    residuals ``y_i - ybar_a``. One component with ``G - 2`` df.
+    residuals ``y_i - ybar_a``. Degrees of freedom: Bell & McCaffrey (2002),
+    see :func:`_bm_terms` (the piece keeps the trace and squared Frobenius norm
+    so that blocks can be combined).
     """
     n1, n0 = int(z.sum()), int((~z).sum())
     est = float(y[z].mean() - y[~z].mean())
-    contrib, keys = [], []
+    contrib, keys, parts = [], [], []
     for arm, sign in ((z, 1.0), (~z, -1.0)):
         codes, inverse = np.unique(cluster[arm], return_inverse=True)
         if codes.size < 2:
@@ -291,14 +294,60 @@ def _cr2_piece(y, z, cluster, pos, label) -> _Piece:
         resid_sum = np.bincount(inverse, weights=y[arm] - y[arm].mean())
         sizes = np.bincount(inverse).astype(float)
         total = float(arm.sum())
-        contrib.append(sign * resid_sum / (total * np.sqrt(1.0 - sizes / total)))
+        scale = sign / (total * np.sqrt(1.0 - sizes / total))
+        contrib.append(scale * resid_sum)
         keys.append(_keys(_CLUSTER, codes))
+        # A_g a_g = scale_g * 1 on the cluster's units: d_g = scale^2 n_g, t_g = scale n_g
+        parts.append((scale ** 2 * sizes, scale * sizes, np.full(codes.size, total)))
     contrib = np.concatenate(contrib)
-    n_clusters = sum(k.size for k in keys)
-    comps = ((float(np.sum(contrib ** 2)), n_clusters - 2.0),)
+    d, t, cell_size = (np.concatenate(p) for p in zip(*parts))
+    cell = np.repeat([0, 1], [parts[0][0].size, parts[1][0].size])
+    bm = _bm_terms(d, t, cell, cell_size, None)
+    comps = ((float(np.sum(contrib ** 2)), _bm_df(*bm)),)
     return _Piece(label=label, weight=float(y.size), estimate=est, contrib=contrib,
                   keys=np.concatenate(keys), components=comps, small=False,
-                  n_treated=n1, n_control=n0)
+                  n_treated=n1, n_control=n0, bm=bm)
+
+
+def _bm_terms(d, t, cell, cell_size, B) -> tuple[float, float]:
+    """Trace and squared Frobenius norm of ``G'G`` for the Bell–McCaffrey df.
+
+    A CR2 contrast is ``V = sum_g (g_g' y)^2`` with ``g_g = M_{.,g} A_g a_g``
+    (``M = I - H``, ``a`` the contrast's weights on the units, ``A_g`` the CR2
+    adjustment). Under the working model ``Var(y) = sigma^2 I`` Bell & McCaffrey
+    (2002, eq. 7 ff.; Imbens & Kolesár 2016, Section 4) match V to a scaled
+    chi-square: ``df = (sum lambda)^2 / sum lambda^2 = tr(G'G)^2 / ||G'G||_F^2``.
+    Writing ``u_g = A_g a_g`` and ``M = I - P - Q Q'`` (P the projection on the
+    absorbed group intercepts, Q an orthonormal basis of the remaining demeaned
+    regressors), ``(G'G)_{gh} = u_g' M_{gh} u_h``
+    ``= delta_gh d_g - [same group] t_g t_h / n_cell - b_g' b_h`` with
+    ``d_g = u_g'u_g``, ``t_g = 1'u_g``, ``b_g = Q_g'u_g`` (rows of ``B``). Both
+    sums are computed from these pieces in O(G k), never forming G'G.
+    """
+    d = np.asarray(d, dtype=float)
+    t = np.asarray(t, dtype=float)
+    tt = t * t / cell_size
+    trace = float(d.sum() - tt.sum())
+    # ||S||^2 with S = block-diagonal sum_c t_c t_c' / n_c
+    cell_t2 = np.bincount(cell, weights=t * t)
+    cell_n = np.zeros(cell_t2.size)
+    cell_n[cell] = cell_size
+    s_norm = float(np.sum((cell_t2 / cell_n) ** 2))
+    frob = float(np.sum(d * d)) + s_norm - 2.0 * float(np.sum(d * tt))
+    if B is not None and B.shape[1]:
+        trace -= float(np.sum(B * B))
+        bb = np.sum(B * B, axis=1)
+        gram = B.T @ B
+        tb = np.zeros((cell_t2.size, B.shape[1]))
+        np.add.at(tb, cell, t[:, None] * B)
+        frob += (float(np.sum(gram * gram)) - 2.0 * float(np.sum(d * bb))
+                 + 2.0 * float(np.sum(np.sum(tb * tb, axis=1) / cell_n)))
+    return trace, frob
+
+
+def _bm_df(trace: float, frob: float) -> float:
+    """``tr(G'G)^2 / ||G'G||_F^2`` (Bell & McCaffrey 2002); 0 when undefined."""
+    return float(trace * trace / frob) if frob > 0 else 0.0
 
 
 def _ht_piece(y, z, cluster, pos, label) -> _Piece:
@@ -368,12 +417,13 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
     """Block-size-weighted average of block estimates and its variance.
 
     ``tau = sum_b w_b tau_b`` with ``w_b = n_b / n``. Blocks where both arms
-    can be estimated contribute ``w_b^2 V_b``. Blocks with a single treated or
-    single control unit (matched pairs among them) enter together through the
-    paired-design estimator (Imai 2008; weighted form of Imai, King & Nall 2009):
-    with ``a_j = w_j tau_j`` over those J blocks,
-    ``V = J / (J - 1) sum_j (a_j - mean(a))^2`` (df ``J - 1``). If only one block
-    is small, the paired estimator is applied to all blocks.
+    can be estimated (large blocks) contribute ``w_b^2 V_b``. Blocks with a
+    single treated or single control unit (matched pairs among them) enter
+    together through the small-block estimator of :func:`_small_block_variance`
+    (Pashley & Miratrix 2021), which does not change when a constant is added to
+    every treated outcome. If the small blocks cannot carry that estimator on
+    their own (one small block, or one holding half or more of their units), it
+    is applied to all blocks.
     """
     weights = np.array([p.weight for p in pieces])
     w = weights / weights.sum()
@@ -381,27 +431,35 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
     n1 = sum(p.n_treated for p in pieces)
     n0 = sum(p.n_control for p in pieces)
     small = [i for i, p in enumerate(pieces) if p.small]
-    if len(small) == 1:
-        if len(pieces) == 1:
+    if small and _small_block_coefficients(w[small]) is None:
+        small = list(range(len(pieces)))
+        if _small_block_coefficients(w) is None:
             _warn(f"an arm has a single unit (or {'cluster' if rule != 'neyman' else 'unit'}) "
-                  "so its variance cannot be estimated; the standard error is undefined")
+                  "in too many blocks, so the variance cannot be estimated; the standard "
+                  "error is undefined")
             return _Fit(estimate=est, contrib=np.zeros(0), keys=np.zeros(0, dtype=np.int64),
                         components=(), n_treated=n1, n_control=n0, method=method,
                         variance_rule=rule, se_ok=False)
-        _warn("exactly one block has a single treated or single control unit; the paired "
-              "(between-block) variance estimator is used for all blocks")
-        small = list(range(len(pieces)))
+        _warn("the blocks with a single treated or single control unit are too few (or one "
+              "of them too large) for the small-block variance on their own; it is used for "
+              "all blocks")
     small_set = set(small)
     large = [i for i in range(len(pieces)) if i not in small_set]
     contrib = [w[i] * pieces[i].contrib for i in large]
     keys = [pieces[i].keys for i in large]
-    comps = [(w[i] ** 2 * v, d) for i in large for v, d in pieces[i].components]
+    if large and all(pieces[i].bm is not None for i in large):
+        # CR2 blocks: one component, Bell–McCaffrey df of the weighted sum of the blocks
+        trace = sum(w[i] ** 2 * pieces[i].bm[0] for i in large)
+        frob = sum(w[i] ** 4 * pieces[i].bm[1] for i in large)
+        comps = [(sum(w[i] ** 2 * v for i in large for v, _ in pieces[i].components),
+                  _bm_df(trace, frob))]
+    else:
+        comps = [(w[i] ** 2 * v, d) for i in large for v, d in pieces[i].components]
     if small:
-        a = np.array([w[i] * pieces[i].estimate for i in small])
-        c = math.sqrt(a.size / (a.size - 1)) * (a - a.mean())
+        c = _small_block_variance(w[small], np.array([pieces[i].estimate for i in small]))
         contrib.append(c)
         keys.append(_keys(_BLOCK, [pieces[i].label for i in small]))
-        comps.append((float(np.sum(c ** 2)), a.size - 1.0))
+        comps.append((float(np.sum(c ** 2)), len(small) - 1.0))
     variance_rule = "paired" if not large else (rule + "+paired" if small else rule)
     if blocked and not large and method == "blocked_neyman":
         method = "paired"
@@ -410,9 +468,46 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
                variance_rule=variance_rule, se_ok=True)
     if warn_zero and fit.variance == 0.0:
         _warn("the estimated variance is zero (the outcome does not vary within arms, or "
-              "the paired block effects are all equal); the standard error is 0 and the "
+              "the small-block effects are all equal); the standard error is 0 and the "
               "interval has zero width")
     return fit
+
+
+def _small_block_coefficients(w: np.ndarray) -> np.ndarray | None:
+    """Coefficients ``c_k`` of the small-block variance, or None where it is undefined.
+
+    With ``v_k = w_k / sum_j w_j`` (the block's share among the small blocks) and
+    ``A = sum_j v_j^2 / (1 - 2 v_j)``: ``c_k = v_k^2 / ((1 - 2 v_k)(1 + A))``
+    (Pashley & Miratrix 2021, the small-block estimator with unequal block sizes;
+    in counts ``n_k^2 / ((N - 2 n_k)(N + sum_j n_j^2 / (N - 2 n_j)))``). Needs
+    at least two blocks and every ``v_k < 1/2``; with equal shares (including two
+    blocks) ``c_k = 1 / (J (J - 1))``, the classic paired formula.
+    """
+    if w.size < 2:
+        return None
+    v = w / w.sum()
+    if np.ptp(v) <= 1e-12 * v.max():
+        return np.full(v.size, 1.0 / (v.size * (v.size - 1)))
+    if v.max() >= 0.5:
+        return None
+    a = float(np.sum(v * v / (1.0 - 2.0 * v)))
+    return v * v / ((1.0 - 2.0 * v) * (1.0 + a))
+
+
+def _small_block_variance(w: np.ndarray, tau: np.ndarray) -> np.ndarray:
+    """Contributions of the small blocks: ``W_S sqrt(c_k) (tau_k - tau_S)``.
+
+    ``tau_S = sum_k v_k tau_k`` is their weighted effect and ``W_S = sum_k w_k``
+    their share of all units, so the squares sum to ``W_S^2 sum_k c_k (tau_k -
+    tau_S)^2``, the variance of their part of the estimate. Its expectation is
+    at least the true variance, with equality when the effect is the same in
+    every small block (Pashley & Miratrix 2021). Centring at ``tau_S`` (not at
+    the mean of ``w_k tau_k``) makes it invariant to a constant added to every
+    treated outcome.
+    """
+    coef = _small_block_coefficients(w)
+    v = w / w.sum()
+    return w.sum() * np.sqrt(coef) * (tau - float(np.dot(v, tau)))
 
 
 def _undefined_fit(method: str, s: _Sample) -> _Fit:

@@ -35,7 +35,13 @@ from report_kit.estimation.core import (
 )
 from report_kit.estimation.adjustment import estimate_adjusted
 from report_kit.errors import DesignError, ReportKitWarning
-from report_kit.estimation.noncompliance import WEAK_FIRST_STAGE_F, Noncompliance, estimate_noncompliance  # noqa: F401
+from report_kit.estimation.noncompliance import (  # noqa: F401
+    CACE_ASSUMPTIONS,
+    TF_SAFE_FIRST_STAGE_F,
+    WEAK_FIRST_STAGE_F,
+    Noncompliance,
+    estimate_noncompliance,
+)
 from report_kit.estimation.subgroups import SubgroupDifference, SubgroupResult, estimate_subgroups
 
 __all__ = [
@@ -103,10 +109,13 @@ def estimate_effects(y, z, *, mechanism: str, block=None, cluster=None,
         ``s1^2/n1 + s0^2/n0`` (Neyman 1923), Welch–Satterthwaite df.
         ``blocked``/``matched_pairs``: block-size-weighted average of within-block
         differences; variance ``sum_b w_b^2 (s1b^2/n1b + s0b^2/n0b)``, with blocks
-        holding a single treated or control unit in the paired formula (Imai 2008).
+        holding a single treated or control unit in the shift-invariant small-block
+        estimator (Pashley & Miratrix 2021; for equal pairs the paired formula of
+        Imai 2008).
         ``cluster``/``blocked_cluster``: two estimates, the unit-level difference in
-        means with CR2 standard error (Bell & McCaffrey 2002; df = clusters - 2)
-        and the Horvitz–Thompson difference in totals (Middleton & Aronow 2015).
+        means with CR2 standard error and Bell–McCaffrey degrees of freedom
+        (Bell & McCaffrey 2002) and the Horvitz–Thompson difference in totals
+        (Middleton & Aronow 2015).
     """
     y, design = _validate(y, z, mechanism, block, cluster, alpha)
     s = _sample(design, y, np.ones(design.n, dtype=bool))
@@ -147,8 +156,7 @@ def study_estimates(study) -> list[dict]:
         y = study.outcome(outcome.column)
         rows += [_row(outcome.column, est, effect) for est in estimate_effects(y, z, **kw)]
         if X is not None:
-            _check_covariates(study, outcome.column, covariates, y, X)
-            adjusted = _adjusted_or_note(outcome.column, y, z, X, kw)
+            adjusted = _adjusted_or_note(outcome.column, y, z, X, covariates, kw)
             if adjusted is not None:
                 rows.append(_row(outcome.column, adjusted, effect))
         if compliance is not None:
@@ -171,8 +179,9 @@ def study_subgroup_differences(study) -> list[dict]:
 
     One dict per (outcome, subgroup variable, level other than the first):
     ``{outcome, subgroup: "col=level", reference: "col=first", estimate,
-    std_error, ci_low, ci_high, df}``. Not part of the ``results.json`` schema 1
-    ``estimates`` list; offered for a report table.
+    std_error, ci_low, ci_high, df, label: "exploratory"}`` (not adjusted for
+    multiplicity; see ``inference_scope`` in ``results.json``). Not part of the
+    ``results.json`` schema 1 ``estimates`` list; offered for a report table.
     """
     spec = study.spec
     kw = _study_design(study)
@@ -185,18 +194,20 @@ def study_subgroup_differences(study) -> list[dict]:
                 item = diff.to_dict()
                 rows.append({"outcome": outcome.column,
                              "subgroup": f"{column}={item.pop('level')}",
-                             "reference": f"{column}={item.pop('reference')}", **item})
+                             "reference": f"{column}={item.pop('reference')}", **item,
+                             "label": "exploratory"})
     return rows
 
 
-def _adjusted_or_note(column: str, y, z, X, kw: dict) -> Estimate | None:
+def _adjusted_or_note(column: str, y, z, X, names, kw: dict) -> Estimate | None:
     """The Lin estimate, or None with a warning when the design cannot carry the regression.
 
     Too many covariates for the units (or a degenerate design) must not cost the
-    report its unadjusted estimates, which are the primary analysis.
+    report its unadjusted estimates, which are the primary analysis. Missing
+    baseline covariates are mean-imputed with missingness indicators.
     """
     try:
-        return estimate_adjusted(y, z, X, **kw)
+        return estimate_adjusted(y, z, X, names=names, **kw)
     except DesignError as err:
         warnings.warn(f"outcome '{column}': no covariate-adjusted estimate ({err}); "
                       "reduce analysis.covariates or set analysis.adjust: false", ReportKitWarning, stacklevel=3)
@@ -218,15 +229,6 @@ def _takeup(study, received: str, kw: dict) -> Estimate:
     fit = _unadjusted(s, _primary_rule(design.mechanism), warn_zero=False)
     return _to_estimate(fit, design.alpha, estimand="ITT", estimator="unadjusted",
                         n_missing=s.n_missing)
-
-
-def _check_covariates(study, outcome, covariates, y, X) -> None:
-    missing = np.isnan(X[~np.isnan(y)]).any(axis=0)
-    if missing.any():
-        names = [c for c, bad in zip(covariates, missing) if bad]
-        raise DesignError(f"covariate(s) {names} have missing values among units with an "
-                          f"observed {outcome!r}; the adjusted estimate needs complete "
-                          "baseline covariates")
 
 
 def _row(outcome: str, est: Estimate, estimand: str, *, subgroup: str | None = None) -> dict:
@@ -260,8 +262,43 @@ def compliance_rates(z, d) -> dict:
 
 
 def study_compliance(study) -> dict | None:
-    """The ``compliance`` section (extension): take-up by arm, or None without a compliance column."""
+    """The ``compliance`` section (extension), or None without a compliance column.
+
+    Take-up by arm; ``cace``: per outcome the Wald CACE with its interval, the
+    first-stage F (``(ITT on take-up / SE)^2``), the Anderson–Rubin interval
+    (see :func:`~report_kit.estimation.noncompliance.estimate_noncompliance`)
+    and a note when F is below 104.7 (Lee, McCrary, Moreira & Porter 2022);
+    ``assumptions``: the exclusion and monotonicity assumptions in words.
+    """
     if study.spec.compliance is None:
         return None
     column = study.spec.compliance.received
-    return {"received": column, **compliance_rates(study.z, study.frame[column].to_numpy(dtype=float))}
+    d = study.frame[column].to_numpy(dtype=float)
+    kw = _study_design(study)
+    cace = []
+    for outcome in study.spec.outcomes:
+        with warnings.catch_warnings():   # already raised once by study_estimates
+            warnings.simplefilter("ignore", ReportKitWarning)
+            result = estimate_noncompliance(study.outcome(outcome.column), study.z, d, **kw)
+        cace.append(_cace_entry(outcome.column, result))
+    return {"received": column, **compliance_rates(study.z, d), "cace": cace,
+            "assumptions": CACE_ASSUMPTIONS}
+
+
+def _cace_entry(outcome: str, result: Noncompliance) -> dict:
+    first = result.itt_takeup
+    f_stat = None
+    if first.estimate is not None and first.std_error:
+        f_stat = (first.estimate / first.std_error) ** 2
+    note = None
+    if f_stat is not None and f_stat < TF_SAFE_FIRST_STAGE_F:
+        note = (f"First-stage F = {f_stat:.1f} is below {TF_SAFE_FIRST_STAGE_F:g}, so the Wald "
+                "interval's 95% level is not assured (Lee, McCrary, Moreira & Porter 2022); the "
+                "Anderson–Rubin interval is valid however weak the first stage.")
+    ar = result.anderson_rubin or {}
+    return {"outcome": outcome, "estimate": result.cace.estimate,
+            "wald_ci_low": result.cace.ci_low, "wald_ci_high": result.cace.ci_high,
+            "first_stage_f": f_stat, "ar_shape": ar.get("shape"),
+            "ar_ci_low": ar.get("ci_low"), "ar_ci_high": ar.get("ci_high"),
+            "ar_gap_low": ar.get("gap_low"), "ar_gap_high": ar.get("gap_high"),
+            "weak_instrument_note": note}

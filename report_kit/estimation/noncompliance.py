@@ -13,6 +13,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import stats
 
 from report_kit.estimation.core import (
     Estimate,
@@ -27,12 +28,25 @@ from report_kit.estimation.core import (
     _warn,
 )
 
-__all__ = ["Noncompliance", "estimate_noncompliance"]
+__all__ = ["CACE_ASSUMPTIONS", "TF_SAFE_FIRST_STAGE_F", "Noncompliance", "estimate_noncompliance"]
 
 
 #: First-stage strength below which a warning is issued (F = t^2 < 10;
 #: common practice, after Staiger & Stock 1997).
 WEAK_FIRST_STAGE_F = 10.0
+
+#: First-stage F below which the Wald (t-ratio) interval at the 5% level is not
+#: assured its size (Lee, McCrary, Moreira & Porter 2022: F > 104.7 is needed for
+#: the usual 1.96 critical value); the Anderson–Rubin interval is valid at any F.
+TF_SAFE_FIRST_STAGE_F = 104.7
+
+#: How the CACE's assumptions are stated in ``results.json`` (``compliance.assumptions``).
+CACE_ASSUMPTIONS = (
+    "The complier effect (CACE) assumes exclusion: assignment changes outcomes only through "
+    "take-up; and monotonicity: no unit takes the treatment up only when not offered it "
+    "(no defiers). Assignment is random by design; neither assumption is checked by the data "
+    "(Angrist, Imbens & Rubin 1996)."
+)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -48,12 +62,14 @@ class Noncompliance:
     cace: Estimate
     rate_treated: float | None
     rate_control: float | None
+    anderson_rubin: dict | None = None
 
     def to_dict(self) -> dict:
         return {
             "itt": self.itt.to_dict(),
             "itt_takeup": self.itt_takeup.to_dict(),
             "cace": self.cace.to_dict(),
+            "anderson_rubin": self.anderson_rubin,
             "rate_treated": _json_value(self.rate_treated),
             "rate_control": _json_value(self.rate_control),
         }
@@ -75,6 +91,9 @@ def estimate_noncompliance(y, z, d, *, mechanism: str, block=None, cluster=None,
     ``c = CACE``, and ``SE(CACE) = SE_design(u) / |ITT_d|``. For complete
     randomization this equals the 2SLS sandwich variance with HC2 leverages
     taken from the instruments. df: those of the design rule applied to ``u``.
+
+    Beside the Wald interval, ``anderson_rubin`` holds the Anderson–Rubin
+    interval (valid however weak the first stage), see :func:`_anderson_rubin`.
 
     Units with a missing outcome or missing take-up are dropped (both ITTs use
     the same units). A zero take-up difference leaves the CACE undefined
@@ -98,7 +117,50 @@ def estimate_noncompliance(y, z, d, *, mechanism: str, block=None, cluster=None,
     rate_t = float(used_d[used_z].mean()) if used_z.any() else None
     rate_c = float(used_d[~used_z].mean()) if (~used_z).any() else None
     return Noncompliance(itt=itt, itt_takeup=takeup, cace=cace,
-                         rate_treated=rate_t, rate_control=rate_c)
+                         rate_treated=rate_t, rate_control=rate_c,
+                         anderson_rubin=_anderson_rubin(fit_y, fit_d, cace.df, design.alpha))
+
+
+def _anderson_rubin(fit_y, fit_d, df, alpha: float) -> dict | None:
+    """Anderson–Rubin interval for the CACE by inverting the test of ``ITT(y - c d) = 0``.
+
+    The ITT of ``u_c = y - c d`` is ``a - c b`` (``a``, ``b`` the ITTs on outcome
+    and take-up) and its design variance ``sum_u (e_u - c f_u)^2`` is quadratic
+    in ``c`` because every variance contribution is linear in the outcome
+    (``e``, ``f`` the contributions of ``y`` and ``d``). ``c`` is kept when
+    ``(a - c b)^2 <= q^2 (V_yy - 2 c V_yd + c^2 V_dd)`` with ``q = t_{1-alpha/2}``
+    at the Wald interval's df (Anderson & Rubin 1949; Imbens & Rosenbaum 2005
+    for the randomization form). The set solving this quadratic is an interval
+    when the first stage is significant at level alpha (``b^2 > q^2 V_dd``),
+    otherwise two half-lines or the whole line: ``shape`` says which
+    (``bounded``: ``[ci_low, ci_high]``; ``two_half_lines``: every value except
+    the open gap ``(gap_low, gap_high)``; ``whole_line``: no value is excluded).
+    """
+    if (fit_y.estimate is None or fit_d.estimate is None or not fit_y.se_ok
+            or not fit_d.se_ok or df is None or not df > 0
+            or not np.array_equal(fit_y.keys, fit_d.keys)):
+        return None
+    q2 = float(stats.t.ppf(1.0 - alpha / 2.0, df)) ** 2
+    a, b = fit_y.estimate, fit_d.estimate
+    vyy = float(fit_y.contrib @ fit_y.contrib)
+    vyd = float(fit_y.contrib @ fit_d.contrib)
+    vdd = float(fit_d.contrib @ fit_d.contrib)
+    qa, qb, qc = b * b - q2 * vdd, -2.0 * (a * b - q2 * vyd), a * a - q2 * vyy
+    disc = qb * qb - 4.0 * qa * qc
+    out = {"level": 1.0 - alpha, "df": float(df), "ci_low": None, "ci_high": None,
+           "gap_low": None, "gap_high": None}
+    if qa > 0:
+        if disc < 0:       # cannot happen with a real variance; kept for safety
+            return {**out, "shape": "empty"}
+        root = math.sqrt(disc)
+        lo, hi = sorted(((-qb - root) / (2 * qa), (-qb + root) / (2 * qa)))
+        return {**out, "shape": "bounded", "ci_low": lo, "ci_high": hi}
+    if qa < 0 and disc > 0:
+        root = math.sqrt(disc)
+        lo, hi = sorted(((-qb - root) / (2 * qa), (-qb + root) / (2 * qa)))
+        # kept: c <= lo or c >= hi; the gap (lo, hi) is excluded
+        return {**out, "shape": "two_half_lines", "gap_low": lo, "gap_high": hi}
+    return {**out, "shape": "whole_line"}
 
 
 def _cace(design, y, d, keep, fit_y, takeup: Estimate, n_missing) -> Estimate:

@@ -25,12 +25,13 @@ import numpy as np
 from report_kit.design.arms import ArmSource, MultiArmMechanism
 from report_kit.design.mechanism import mechanism_from_arrays
 from report_kit.errors import ReportKitWarning
-from report_kit.inference.engine import DEFAULT_RTOL, NullDistribution
+from report_kit.inference.engine import ChunkMap, StoredDraws, chunk_rows, drawn_statistics, run_pass
+from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics, null_centre
 from report_kit.inference.multiplicity import benjamini_hochberg, holm, westfall_young
 from report_kit.inference.randomization import TestResult, invert_test, randomization_test
 
-__all__ = ["OMNIBUS", "ArmTest", "arm_multiplicity", "between_arms", "contrast_joint_null", "contrast_tests",
-           "omnibus_null", "omnibus_test"]
+__all__ = ["OMNIBUS", "ArmTest", "arm_draws", "arm_multiplicity", "between_arms", "contrast_joint_null",
+           "contrast_tests", "omnibus_null", "omnibus_test"]
 
 OMNIBUS = "between_arms"
 
@@ -86,33 +87,54 @@ def between_arms(y, assignments, n_arms: int) -> np.ndarray:
     return stat
 
 
-def omnibus_null(Y, source: ArmSource) -> NullDistribution:
-    """Observed and null ``between_arms`` statistics of the columns of ``Y`` (n x m) on ``source``."""
+def arm_draws(source: ArmSource) -> StoredDraws:
+    """The multi-arm assignments of ``source`` as the engine's draws (arm codes, chunks of :func:`chunk_rows`).
+
+    Every multi-arm procedure passes over these with
+    :func:`report_kit.inference.engine.run_pass`, so the chunk seam
+    (``chunk_map``) and the counting rules of :mod:`report_kit.inference.pvalues`
+    are the engine's; the rows are re-cut into chunks of a size fixed by the
+    number of units, so results do not depend on how they were generated.
+    """
+    mech: MultiArmMechanism = source.mechanism
+    z = np.concatenate([np.asarray(c, dtype=np.uint8) for c in source.chunks()])
+    rows = chunk_rows(mech.n)
+    return StoredDraws(source.method, mech.n, rows, [(z[s:s + rows], None) for s in range(0, z.shape[0], rows)])
+
+
+def omnibus_null(Y, source: ArmSource, *, chunk_map: ChunkMap | None = None) -> DrawnStatistics:
+    """Observed ``(m,)`` and null ``(B, m)`` ``between_arms`` statistics of the columns of ``Y`` on ``source``.
+
+    One pass of the engine (:func:`report_kit.inference.engine.drawn_statistics`)
+    over :func:`arm_draws`; larger is more extreme.
+    """
     Y = np.asarray(Y, dtype=float)
     if Y.ndim == 1:
         Y = Y[:, None]
     mech: MultiArmMechanism = source.mechanism
-    observed = np.array([between_arms(Y[:, j], mech.arm, mech.n_arms)[0] for j in range(Y.shape[1])])
-    parts = [np.column_stack([between_arms(Y[:, j], chunk, mech.n_arms) for j in range(Y.shape[1])])
-             for chunk in source.chunks()]
-    null = np.vstack(parts)
-    return NullDistribution(statistic=OMNIBUS, direction=None, null_effect=0.0, observed=observed, null=null,
-                            centre=np.full(Y.shape[1], np.nan), method=source.method)
+
+    def statistic(block: np.ndarray) -> np.ndarray:
+        return np.column_stack([between_arms(Y[:, j], block, mech.n_arms) for j in range(Y.shape[1])])
+
+    (drawn,) = drawn_statistics(arm_draws(source), [statistic], mech.arm, chunk_map=chunk_map)
+    return drawn
 
 
-def omnibus_test(Y, source: ArmSource, *, outcomes, rtol: float = DEFAULT_RTOL) -> list[ArmTest]:
+def omnibus_test(Y, source: ArmSource, *, outcomes, rtol: float = DEFAULT_RTOL,
+                 chunk_map: ChunkMap | None = None) -> list[ArmTest]:
     """Randomization test of the sharp null that no arm changes any outcome, per column of ``Y``.
 
     Upper-tailed on :func:`between_arms` under the multi-arm mechanism of
-    ``source``; the p-value rule (exact share, or Phipson & Smyth 2010 for draws)
-    is that of :meth:`report_kit.inference.engine.NullDistribution.p_values`.
+    ``source``; the p-value rule (exact share, or Phipson & Smyth 2010 for
+    draws), the tie rule and the Monte Carlo standard error are the engine's
+    (:func:`report_kit.inference.pvalues.tail_p_values`).
     """
-    dist = omnibus_null(Y, source)
-    p, se, defined = dist.p_values("greater", rtol)
+    dist = omnibus_null(Y, source, chunk_map=chunk_map)
+    p, se, defined = dist.p_values(rtol)
     out = []
     for j, name in enumerate(outcomes):
         result = TestResult(outcome=name, statistic=OMNIBUS, alternative="greater", null_effect=0.0,
-                            observed=float(dist.observed[j]), p_value=float(p[j]), method=dist.method,
+                            observed=float(dist.observed[j]), p_value=float(p[j]), method=source.method,
                             draws=int(defined[j]), mc_std_error=None if np.isnan(se[j]) else float(se[j]))
         out.append(ArmTest(arm=None, reference=None, test=result))
     return out
@@ -215,7 +237,8 @@ def _contrast_statistics(y: np.ndarray, assignments: np.ndarray, a: int, r: int,
     return total
 
 
-def contrast_joint_null(Y, pairs, source: ArmSource, *, alternatives, block=None) -> tuple[np.ndarray, np.ndarray]:
+def contrast_joint_null(Y, pairs, source: ArmSource, *, alternatives, block=None,
+                        chunk_map: ChunkMap | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Observed ``(m,)`` and null ``(B, m)`` contrast statistics on the shared multi-arm draws, oriented.
 
     Column ``j`` is the difference in means (block-weighted, with weights the
@@ -223,26 +246,34 @@ def contrast_joint_null(Y, pairs, source: ArmSource, *, alternatives, block=None
     arm code, reference code)`` of ``Y``, under every assignment of ``source``
     (the sharp null that no arm changes any outcome). Oriented so that larger
     is more extreme: ``greater`` keeps it, ``less`` negates it, ``two-sided``
-    takes the distance from the null mean (with the observed row included for
-    Monte Carlo draws, as the engine does). Input of Westfall–Young.
+    takes the distance from the null centre of the engine
+    (:func:`report_kit.inference.pvalues.null_centre`). Input of Westfall–Young.
+    The draws come from one pass of :func:`report_kit.inference.engine.run_pass`.
     """
     Y = np.asarray(Y, dtype=float)
     mech = source.mechanism
     codes = None if block is None else np.unique(np.asarray(block), return_inverse=True)[1].ravel()
-    chunks = list(source.chunks())
-    observed, null = [], []
-    for (col, a, r), alt in zip(pairs, alternatives):
+    weights = []
+    for _, a, r in pairs:
         weight = None
         if codes is not None:
             counts = np.bincount(codes[np.isin(mech.arm, (a, r))], minlength=int(codes.max()) + 1)
             weight = counts / counts.sum()
-        t = _contrast_statistics(Y[:, col], mech.arm[None, :], a, r, codes, weight)[0]
-        draws = np.concatenate([_contrast_statistics(Y[:, col], c, a, r, codes, weight) for c in chunks])
+        weights.append(weight)
+
+    def statistic(block_z: np.ndarray) -> np.ndarray:
+        return np.column_stack([_contrast_statistics(Y[:, col], block_z, a, r, codes, w)
+                                for (col, a, r), w in zip(pairs, weights)])
+
+    (drawn,), _ = run_pass(arm_draws(source), [statistic], chunk_map=chunk_map)
+    observed_all = statistic(mech.arm[None, :].astype(float))[0]
+    observed, null = [], []
+    for j, alt in enumerate(alternatives):
+        t, draws = observed_all[j], drawn[:, j]
         if alt == "less":
             t, draws = -t, -draws
         elif alt == "two-sided":
-            valid = draws[np.isfinite(draws)]
-            centre = valid.mean() if source.method == "exact" else (valid.sum() + t) / (valid.size + 1)
+            centre = null_centre(t, draws[np.isfinite(draws)], None, source.method)
             t, draws = abs(t - centre), np.abs(draws - centre)
         observed.append(t)
         null.append(draws)

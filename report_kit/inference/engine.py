@@ -1,49 +1,79 @@
-"""Shared engine of the randomization tests (private).
+"""The randomization engine: one pass over the draws for every procedure.
 
-Owns what :mod:`report_kit.inference.randomization` and :mod:`report_kit.inference.inversion`
-both build on: argument validation, the :class:`NullDistribution` result
-(orientation, tie tolerance, p-value rules) and the one pass over an
-assignment source that evaluates the statistics of
-:mod:`report_kit.inference.kernels` on blocks of one fixed shape.
-``NullDistribution`` and the constants are public through
-:mod:`report_kit.inference.randomization`; definitions in
-``docs/methods/randomization.md``.
+Owns HOW assignments are produced, chunked, evaluated and weighted:
+
+* :class:`MechanismDraws` - the draws of an :class:`~report_kit.design.mechanism.AssignmentSource`
+  cut into chunks of a fixed number of rows (a function of the number of
+  units alone). Exact chunk ``i`` holds assignments ``i * rows`` onwards of
+  the enumeration; Monte Carlo chunk ``i`` is drawn from
+  ``numpy.random.SeedSequence(seed).spawn(n_chunks)[i]`` alone, so any chunk
+  can be generated in any process, independently of the others;
+* :class:`StoredDraws` - draws held in memory (given as arrays, or kept for
+  repeated passes);
+* :func:`run_pass` - ``partials = chunk_map(work, tasks)``: each task (a small
+  picklable :class:`ChunkTask`) builds its chunks once, as ``uint8``, turns
+  each into one float block and evaluates every registered statistic on it;
+  the per-chunk statistics come back in task order;
+* :class:`NullDistribution` and the study-level ``_run`` that builds the
+  statistics of :mod:`report_kit.inference.kernels` plus any statistic
+  registered by another part (balance, attrition).
+
+The counting rules (ties, p-values, Monte Carlo error, undefined draws) are in
+:mod:`report_kit.inference.pvalues`. ``docs/methods/randomization.md`` has the
+definitions.
 """
 
 from __future__ import annotations
 
 import logging
-from collections.abc import Sequence
+import math
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
-from report_kit.validate import finite_number
-from report_kit.validate import finite_or_none as _num
 from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError, UsageError
 from report_kit.inference.kernels import _KERNELS, _analytic_centre
+from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics, null_centre, tail_p_values, tie_tolerance
+from report_kit.validate import ALTERNATIVES, METHODS, STATISTICS, check_choice, finite_number
+from report_kit.validate import finite_or_none as _num
 
 logger = logging.getLogger(__name__)
 
-STATISTICS = ("mean_difference", "rank_sum", "studentized", "ks")
-ALTERNATIVES = ("two-sided", "greater", "less")
-#: Relative tolerance under which two statistics count as tied (see :func:`_tolerance`).
-DEFAULT_RTOL = 1e-12
+__all__ = [
+    "ChunkMap",
+    "ChunkTask",
+    "MechanismDraws",
+    "NullDistribution",
+    "StoredDraws",
+    "chunk_rows",
+    "drawn_statistics",
+    "observed_statistics",
+    "run_pass",
+    "serial_chunk_map",
+]
+
+
+#: ``chunk_map(fn, tasks)``: apply ``fn`` to every task and return the results in task order.
+ChunkMap = Callable[[Callable[[Any], Any], Sequence[Any]], Iterable[Any]]
+
+#: A statistic evaluated on a float block of assignments ``(rows, n)``, returning ``(rows, q)`` (NaN: undefined).
+Statistic = Callable[[np.ndarray], np.ndarray]
+
+
+def serial_chunk_map(fn: Callable[[Any], Any], tasks: Sequence[Any]) -> Iterator[Any]:
+    """The default :data:`ChunkMap`: the tasks one after another in this process (``map``)."""
+    return map(fn, tasks)
 
 
 # =========================================================================== validation
 
 
-def _braces(choices) -> str:
-    """``{'a', 'b'}`` in the given order (a set's repr would vary between runs)."""
-    return "{" + ", ".join(repr(c) for c in choices) + "}"
-
-
 def _check_choice(name: str, value, choices: Sequence[str]) -> str:
-    if not isinstance(value, str) or value not in choices:
-        raise UsageError(f"`{name}` must be one of {_braces(choices)}; got {value!r}")
-    return value
+    return check_choice(name, value, choices)
 
 
 def _check_outcomes(y, n: int) -> np.ndarray:
@@ -94,6 +124,225 @@ def _check_rtol(rtol) -> float:
     if not isinstance(rtol, (int, float)) or not 0.0 <= float(rtol) < 1e-3:
         raise UsageError(f"`rtol` must be a number in [0, 0.001); got {rtol!r}")
     return float(rtol)
+
+
+def _check_chunk_map(chunk_map) -> ChunkMap:
+    if chunk_map is None:
+        return serial_chunk_map
+    if not callable(chunk_map):
+        raise TypeError(f"`chunk_map` must be callable as chunk_map(fn, tasks); got {type(chunk_map).__name__}")
+    return chunk_map
+
+
+# =========================================================================== draws
+
+
+def chunk_rows(n: int) -> int:
+    """Rows of every chunk of draws: fixed by the number of units alone (about 4 million cells, at most 1024)."""
+    return int(max(1, min(1024, (1 << 22) // max(n, 1))))
+
+
+@dataclass(frozen=True)
+class ChunkTask:
+    """``count`` consecutive chunks from chunk ``first``: the unit of work handed to a :data:`ChunkMap`."""
+
+    first: int
+    count: int
+
+
+class _Draws:
+    """What both kinds of draws share: the cut into chunks and the tasks."""
+
+    method: str
+    n: int
+    draws: int
+    rows: int
+
+    @property
+    def n_chunks(self) -> int:
+        return -(-self.draws // self.rows)
+
+    def tasks(self, chunks_per_task: int = 1) -> list[ChunkTask]:
+        """The tasks of one pass: ``chunks_per_task`` chunks each (the last may hold fewer)."""
+        if isinstance(chunks_per_task, bool) or not isinstance(chunks_per_task, int) or chunks_per_task < 1:
+            raise TypeError(f"`chunks_per_task` must be a positive integer; got {chunks_per_task!r}")
+        total = self.n_chunks
+        return [ChunkTask(first, min(chunks_per_task, total - first)) for first in range(0, total, chunks_per_task)]
+
+    def chunk(self, i: int) -> tuple[np.ndarray, np.ndarray | None]:  # pragma: no cover - interface
+        raise NotImplementedError
+
+
+class MechanismDraws(_Draws):
+    """The assignments of an :class:`AssignmentSource`, generated chunk by chunk on demand.
+
+    Chunk ``i`` covers draws ``i * rows`` to ``(i + 1) * rows - 1`` with
+    ``rows = chunk_rows(n)``. Exact: those assignments of the enumeration
+    order. Monte Carlo: ``mechanism.sample_block(k, SeedSequence(seed).spawn(n_chunks)[i])``
+    (computed as the equal ``SeedSequence(seed, spawn_key=(i,))``), so
+    the draws do not depend on which process generates which chunk.
+    """
+
+    def __init__(self, source: AssignmentSource):
+        if not isinstance(source, AssignmentSource):
+            raise TypeError(f"`source` must be an AssignmentSource; got {type(source).__name__}")
+        self.mechanism = source.mechanism
+        self.method, self.draws, self.seed = source.method, int(source.draws), source.seed
+        self.n = self.mechanism.n
+        self.rows = chunk_rows(self.n)
+
+    def seed_sequence(self, i: int) -> np.random.SeedSequence:
+        """The seed sequence of Monte Carlo chunk ``i``: child ``i`` of ``SeedSequence(seed)``."""
+        return np.random.SeedSequence(self.seed, spawn_key=(i,))
+
+    def chunk(self, i: int) -> tuple[np.ndarray, np.ndarray | None]:
+        """Chunk ``i`` as ``(k, n)`` ``uint8`` assignments and their weights (``None``: equal)."""
+        start = i * self.rows
+        stop = min(self.draws, start + self.rows)
+        if self.method == "exact":
+            z = self.mechanism.enumerate_range(start, stop)
+            return z, self.mechanism.weights(z)
+        return self.mechanism.sample_block(stop - start, self.seed_sequence(i)), None
+
+    def stored(self) -> StoredDraws:
+        """Every chunk generated once and kept (for repeated passes over the same draws)."""
+        chunks = [self.chunk(i) for i in range(self.n_chunks)]
+        return StoredDraws(self.method, self.n, self.rows, chunks)
+
+
+class StoredDraws(_Draws):
+    """Draws held in memory as chunks of ``rows`` rows (the last may be shorter)."""
+
+    def __init__(self, method: str, n: int, rows: int, chunks: list[tuple[np.ndarray, np.ndarray | None]]):
+        self.method, self.n, self.rows = check_choice("method", method, METHODS), int(n), int(rows)
+        self._chunks = chunks
+        self.draws = int(sum(c[0].shape[0] for c in chunks))
+
+    def chunk(self, i: int) -> tuple[np.ndarray, np.ndarray | None]:
+        return self._chunks[i]
+
+    @classmethod
+    def from_arrays(cls, chunks, n: int, method: str, weights: Callable | None = None) -> StoredDraws:
+        """Validated draws from an iterable of ``(k, n)`` 0/1 arrays (or a callable returning one).
+
+        ``weights``: ``chunk -> (k,) probabilities or None``, exact enumerations
+        only, called with each chunk as given. The rows are re-cut into chunks
+        of :func:`chunk_rows` so results do not depend on how they were split.
+        """
+        method = check_choice("method", method, METHODS)
+        source = chunks() if callable(chunks) else chunks
+        try:
+            iterator = iter(source)
+        except TypeError as err:
+            raise UsageError("`chunks` must be an iterable of (k, n) 0/1 arrays or a callable returning one; "
+                             f"got {type(source).__name__}") from err
+        parts, wparts = [], []
+        for i, chunk in enumerate(iterator):
+            arr = np.asarray(chunk)
+            if arr.ndim == 1:
+                arr = arr[None, :]
+            if arr.ndim != 2 or arr.shape[1] != n:
+                raise UsageError(f"assignment chunk {i} must have shape (k, {n}); got {np.shape(chunk)}")
+            if arr.dtype.kind != "b" and arr.size and not np.isin(arr, (0, 1)).all():
+                raise UsageError(f"assignment chunk {i} must contain only 0 and 1")
+            parts.append(arr.astype(np.uint8))
+            wparts.append(_given_weights(weights, arr, method, i))
+        if not parts or sum(p.shape[0] for p in parts) == 0:
+            raise UsageError("`chunks` yielded no assignment")
+        z = np.concatenate(parts)
+        w = None if all(x is None for x in wparts) else np.concatenate(
+            [np.ones(p.shape[0]) if x is None else x for p, x in zip(parts, wparts)])
+        rows = chunk_rows(n)
+        cut = [(z[s:s + rows], None if w is None else w[s:s + rows]) for s in range(0, z.shape[0], rows)]
+        return cls(method, n, rows, cut)
+
+
+def _given_weights(weights, chunk: np.ndarray, method: str, i: int) -> np.ndarray | None:
+    if weights is None:
+        return None
+    w = weights(chunk)
+    if w is None:
+        return None
+    if method != "exact":
+        raise UsageError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
+    w = np.asarray(w, dtype=np.float64)
+    if w.shape != (chunk.shape[0],) or not np.isfinite(w).all() or (w < 0).any():
+        raise UsageError(f"`weights` of chunk {i} must be {chunk.shape[0]} finite non-negative numbers")
+    return w
+
+
+# =========================================================================== the pass
+
+
+class _PassWork:
+    """``work(task)``: build the task's chunks and evaluate every statistic on them.
+
+    Each chunk is converted once to a float block of exactly ``rows`` rows
+    (zero rows pad the last one), so every statistic sees blocks of one fixed
+    shape and floating-point results are bitwise identical however the chunks
+    are grouped into tasks or spread over processes. The products inside are
+    thin (``rows x n`` by ``n x q``); BLAS runs them on one thread, since
+    waiting for a second thread on a busy machine costs more than it saves
+    (parallel work comes from the chunk map instead).
+    """
+
+    def __init__(self, draws: _Draws, statistics: Sequence[Statistic]):
+        self.draws, self.statistics = draws, tuple(statistics)
+
+    def __call__(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
+        with threadpool_limits(limits=1, user_api="blas"):
+            return self._compute(task)
+
+    def _compute(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
+        block = np.zeros((self.draws.rows, self.draws.n))
+        outs: list[list[np.ndarray]] = [[] for _ in self.statistics]
+        weights = []
+        for i in range(task.first, task.first + task.count):
+            z, w = self.draws.chunk(i)
+            used = z.shape[0]
+            block[:used] = z
+            block[used:] = 0.0
+            for out, statistic in zip(outs, self.statistics):
+                out.append(statistic(block)[:used])
+            weights.append(w)
+        w = None if all(x is None for x in weights) else np.concatenate(weights)
+        return tuple(np.concatenate(o) for o in outs), w
+
+
+def observed_statistics(statistics: Sequence[Statistic], z: np.ndarray, rows: int) -> list[np.ndarray]:
+    """Each statistic under the observed assignment ``z``, computed in a block of ``rows`` rows.
+
+    The outcome tests use the pass's block shape (the observed assignment then
+    gets the very bits it gets as a draw); the checks' statistics use one row.
+    Either way the tie rule absorbs the floating-point noise.
+    """
+    block = np.zeros((rows, z.size))
+    block[0] = z
+    return [np.asarray(s(block)[0], dtype=np.float64) for s in statistics]
+
+
+def run_pass(draws: _Draws, statistics: Sequence[Statistic], *, chunk_map: ChunkMap | None = None,
+             chunks_per_task: int = 1) -> tuple[list[np.ndarray], np.ndarray | None]:
+    """One pass over the draws: every statistic on every draw, ``(B, q_k)`` each, and the weights.
+
+    ``partials = chunk_map(work, draws.tasks(chunks_per_task))``; the partials
+    come back in task order and are joined in that order, so the result does
+    not depend on ``chunk_map`` or ``chunks_per_task``.
+    """
+    mapper = _check_chunk_map(chunk_map)
+    tasks = draws.tasks(chunks_per_task)
+    work = _PassWork(draws, statistics)
+    parts: list[list[np.ndarray]] = [[] for _ in statistics]
+    weights: list[np.ndarray | None] = []
+    for values, w in mapper(work, tasks):
+        for out, v in zip(parts, values):
+            out.append(v)
+        weights.append(w)
+    null = [np.concatenate(p) if p else np.empty((0, 0)) for p in parts]
+    wts = None if not weights or all(w is None for w in weights) else np.concatenate(weights)
+    if wts is not None and draws.method != "exact":
+        raise UsageError("`weights` apply to exact enumeration only")
+    return null, wts
 
 
 # =========================================================================== null distribution
@@ -165,7 +414,7 @@ class NullDistribution:
                 obs[j], null[:, j] = -obs[j], -null[:, j]
             elif alt == "two-sided":
                 obs[j], null[:, j] = abs(obs[j] - self.centre[j]), np.abs(null[:, j] - self.centre[j])
-        return obs, null, _tolerance(self.observed, self.null, self.centre, rtol)
+        return obs, null, tie_tolerance(self.observed, self.null, self.centre, rtol)
 
     def p_values(self, alternative, rtol: float = DEFAULT_RTOL) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """p-values, Monte Carlo standard errors and defined draws, each ``(m,)``.
@@ -179,22 +428,7 @@ class NullDistribution:
         for exact p-values.
         """
         obs, null, tol = self.oriented(alternative, rtol)
-        valid = np.isfinite(null)
-        with np.errstate(invalid="ignore"):
-            hit = valid & (null >= (obs - tol)[None, :])
-        if self.method == "exact":
-            w = np.ones(self.draws) if self.weights is None else self.weights
-            with np.errstate(invalid="ignore", divide="ignore"):
-                p = (w @ hit) / (w @ valid)
-            se = np.full(p.shape, np.nan)
-        else:
-            b = valid.sum(axis=0)
-            p = (1.0 + hit.sum(axis=0)) / (1.0 + b)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                se = np.sqrt(p * (1.0 - p) / b)
-        undefined = ~np.isfinite(self.observed)
-        p[undefined], se[undefined] = np.nan, np.nan
-        return np.minimum(p, 1.0), se, valid.sum(axis=0)
+        return tail_p_values(obs, null, method=self.method, tolerance=tol, weights=self.weights)
 
     def to_dict(self) -> dict:
         """Plain-Python form (lists; None for undefined) for plotting or archiving."""
@@ -207,34 +441,16 @@ class NullDistribution:
         }
 
 
-def _tolerance(observed, null, centre, rtol: float) -> np.ndarray:
-    """Tie tolerance per outcome: ``rtol * max(|t|, max_b |T_b|, |centre|)``.
-
-    Statistics within this distance of the observed one count as ties (as
-    extreme); it absorbs floating-point noise from summing in different
-    orders without merging genuinely different values.
-    """
-    finite = np.where(np.isfinite(null), np.abs(null), 0.0)
-    scale = np.maximum(np.nan_to_num(np.abs(observed)), finite.max(axis=0, initial=0.0))
-    return rtol * np.maximum(scale, np.nan_to_num(np.abs(centre)))
+def drawn_statistics(draws: _Draws, statistics: Sequence[Statistic], z, *,
+                     chunk_map: ChunkMap | None = None) -> list[DrawnStatistics]:
+    """Observed (assignment ``z``) and drawn values of upper-tailed statistics, one pass for all."""
+    z = np.asarray(z, dtype=np.float64)
+    observed = observed_statistics(statistics, z, 1)
+    nulls, wts = run_pass(draws, statistics, chunk_map=chunk_map)
+    return [DrawnStatistics(observed=o, null=v, method=draws.method, weights=wts) for o, v in zip(observed, nulls)]
 
 
-def _empirical_centre(observed, null, weights, method) -> np.ndarray:
-    """Mean of the null distribution: exact (weighted) mean, or the mean of the draws and the observed value.
-
-    Including the observed value keeps the Monte Carlo two-sided statistic a
-    symmetric function of the observed and drawn assignments, so the
-    Phipson-Smyth p-value stays valid.
-    """
-    valid = np.isfinite(null)
-    vals = np.where(valid, null, 0.0)
-    if method == "exact":
-        w = np.ones(null.shape[0]) if weights is None else weights
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return (w @ vals) / (w @ valid)
-    obs_ok = np.isfinite(observed)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return (vals.sum(axis=0) + np.where(obs_ok, observed, 0.0)) / (valid.sum(axis=0) + obs_ok)
+# =========================================================================== study statistics
 
 
 @dataclass(frozen=True)
@@ -244,72 +460,39 @@ class _Request:
     y: np.ndarray
 
 
-def _block_rows(n: int) -> int:
-    """Rows of every compute block: fixed by the number of units alone (about 4 million cells)."""
-    return int(max(1, min(1024, (1 << 22) // max(n, 1))))
+def _draws_of(source) -> _Draws:
+    return source if isinstance(source, _Draws) else MechanismDraws(source)
 
 
-def _blocks(source, rows: int, n: int):
-    """Re-cut the source's chunks into ``(rows, n)`` float blocks, the last one padded with zero rows.
+def _run(requests: Sequence[_Request], mechanism: Mechanism, source, null_effect: float, *,
+         extra: Sequence[Statistic] = (), chunk_map: ChunkMap | None = None) -> list:
+    """Every requested statistic, and every ``extra`` statistic, on one pass over the draws.
 
-    Every statistic is computed on blocks of one fixed shape whatever the
-    source's chunk size, so floating-point results are bitwise identical for
-    any chunking. Yields ``(block, used_rows)``; the block buffer is reused.
+    Returns one :class:`NullDistribution` per request followed by one
+    :class:`~report_kit.inference.pvalues.DrawnStatistics` per ``extra`` statistic.
     """
-    buf = np.zeros((rows, n))
-    filled = 0
-    for chunk in source.chunks():
-        start = 0
-        while start < chunk.shape[0]:
-            take = min(rows - filled, chunk.shape[0] - start)
-            buf[filled:filled + take] = chunk[start:start + take]
-            filled += take
-            start += take
-            if filled == rows:
-                yield buf, rows
-                filled = 0
-    if filled:
-        buf[filled:] = 0.0
-        yield buf, filled
-
-
-def _source_weights(source) -> np.ndarray | None:
-    if source.method != "exact" or source.mechanism.kind != "bernoulli":
-        return None
-    return np.concatenate([source.weights(chunk) for chunk in source.chunks()])
-
-
-def _run(requests: Sequence[_Request], mechanism: Mechanism, source: AssignmentSource,
-         null_effect: float) -> list[NullDistribution]:
-    """Compute every requested statistic on one pass over the source's draws."""
+    draws = _draws_of(source)
     z = mechanism.z.astype(np.float64)
-    rows = _block_rows(mechanism.n)
     adjusted = [r.y - null_effect * z[:, None] for r in requests]
-    kernels = [_KERNELS[r.statistic](y, mechanism, r.direction) for r, y in zip(requests, adjusted)]
-    first = np.zeros((rows, mechanism.n))
-    first[0] = z
-    observed = [k(first)[0] for k in kernels]
-    parts: list[list[np.ndarray]] = [[] for _ in kernels]
-    for block, used in _blocks(source, rows, mechanism.n):
-        for out, kernel in zip(parts, kernels):
-            out.append(kernel(block)[:used])
-    wts = _source_weights(source)
-    results = []
-    for r, y, obs, out in zip(requests, adjusted, observed, parts):
-        null = np.vstack(out)
+    statistics = [_KERNELS[r.statistic](y, mechanism, r.direction) for r, y in zip(requests, adjusted)]
+    observed = observed_statistics(statistics, z, draws.rows) + observed_statistics(extra, z, 1)
+    statistics += list(extra)
+    nulls, wts = run_pass(draws, statistics, chunk_map=chunk_map)
+    results: list = []
+    for r, y, obs, null in zip(requests, adjusted, observed, nulls):
         undefined = int(np.count_nonzero(~np.isfinite(null)))
         if undefined:
             logger.debug("%s: %d undefined statistic(s) among %d draws x %d outcomes set aside",
                          r.statistic, undefined, null.shape[0], null.shape[1])
         centre = _analytic_centre(r.statistic, y, mechanism)
-        fill = np.isnan(centre)
-        if fill.any():
-            centre[fill] = _empirical_centre(obs, null, wts, source.method)[fill]
+        for j in np.flatnonzero(np.isnan(centre)):
+            keep = np.isfinite(null[:, j])
+            centre[j] = null_centre(obs[j], null[keep, j], None if wts is None else wts[keep], draws.method)
         for arr in (obs, null, centre):
             arr.setflags(write=False)
         results.append(NullDistribution(statistic=r.statistic, direction=r.direction, null_effect=null_effect,
-                                        observed=obs, null=null, centre=centre, method=source.method,
+                                        observed=obs, null=null, centre=centre, method=draws.method,
                                         weights=wts))
+    for obs, null in zip(observed[len(requests):], nulls[len(requests):]):
+        results.append(DrawnStatistics(observed=obs, null=null, method=draws.method, weights=wts))
     return results
-
-

@@ -20,8 +20,8 @@ import numpy as np
 
 from report_kit.inference.engine import (
     ALTERNATIVES,
-    DEFAULT_RTOL,
     STATISTICS,
+    MechanismDraws,
     NullDistribution,
     _check_choice,
     _check_outcomes,
@@ -33,6 +33,7 @@ from report_kit.inference.engine import (
 )
 from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError, ReportKitWarning, UsageError
+from report_kit.inference.pvalues import DEFAULT_RTOL, null_centre, tail_p_values
 
 __all__ = ["Interval", "invert_test"]
 
@@ -66,36 +67,44 @@ class Interval:
 
 
 class _LinearInversion:
-    """p-value of the sharp null ``tau`` for the difference in means, in ``O(B)`` per ``tau``.
+    """p-value of the sharp null ``tau`` for the difference in means, in ``O(B)`` 1-D operations per ``tau``.
 
     The (block-weighted) difference in means is linear in the outcomes for a
     fixed assignment, so ``T_b(tau) = A_b - tau C_b`` and ``t(tau) = a - tau c``
     with ``A_b``, ``a`` the statistic of ``Y`` and ``C_b``, ``c`` that of
     ``Z_obs`` (masked like ``Y``), under draw ``b`` and the observed assignment.
-    The same draws serve every ``tau`` (common random numbers).
+    The same draws serve every ``tau`` (common random numbers); ``A`` and ``C``
+    are kept as contiguous vectors and each ``tau`` costs a few vector
+    operations (no matrix product), with the engine's tie, centre and p-value
+    rules.
     """
 
     def __init__(self, dist: NullDistribution, rtol: float, zero_centre: bool):
-        self.a, self.c = dist.observed
+        self.a, self.c = (float(v) for v in dist.observed)
         valid = np.isfinite(dist.null[:, 0])
-        self.A, self.C = dist.null[valid, 0], dist.null[valid, 1]
+        self.A = np.ascontiguousarray(dist.null[valid, 0])
+        self.C = np.ascontiguousarray(dist.null[valid, 1])
         self.w = None if dist.weights is None else dist.weights[valid]
         self.method, self.rtol, self.zero_centre = dist.method, rtol, zero_centre
 
     def centre(self, tau: float) -> float:
+        """Null centre at ``tau``: 0 when known, else :func:`~report_kit.inference.pvalues.null_centre`."""
         if self.zero_centre:
             return 0.0
-        values = self.A - tau * self.C
-        obs = self.a - tau * self.c
-        if self.method == "exact":
-            return float(np.average(values, weights=self.w))
-        return float((values.sum() + obs) / (values.size + 1))
+        return null_centre(self.a - tau * self.c, self.A - tau * self.C, self.w, self.method)
 
     def p(self, tau: float, alternative: str) -> float:
-        dist = NullDistribution(statistic="mean_difference", direction=None, null_effect=tau,
-                                observed=np.array([self.a - tau * self.c]), null=(self.A - tau * self.C)[:, None],
-                                centre=np.array([self.centre(tau)]), method=self.method, weights=self.w)
-        return float(dist.p_values(alternative, self.rtol)[0][0])
+        values = self.A - tau * self.C
+        obs = self.a - tau * self.c
+        centre = self.centre(tau)
+        tol = self.rtol * max(abs(obs), float(np.abs(values).max(initial=0.0)), abs(centre))
+        if alternative == "less":
+            obs, values = -obs, -values
+        elif alternative == "two-sided":
+            obs, values = abs(obs - centre), np.abs(values - centre)
+        p, _, _ = tail_p_values(np.array([obs]), values[:, None], method=self.method,
+                                tolerance=np.array([tol]), weights=self.w)
+        return float(p[0])
 
     def hodges_lehmann(self) -> float | None:
         """``tau`` where ``t(tau)`` equals the null centre: ``a / c``, or ``(mean A - a) / (mean C - c)``."""
@@ -120,8 +129,8 @@ class _GenericInversion:
 
     def __init__(self, y, mechanism, source, statistic, rtol):
         self.y, self.mechanism, self.statistic, self.rtol = y, mechanism, statistic, rtol
-        cells = source.draws * mechanism.n
-        self.source = _CachedSource(source) if cells <= _CACHE_CELLS else source
+        draws = MechanismDraws(source)
+        self.source = draws.stored() if source.draws * mechanism.n <= _CACHE_CELLS else draws
         self._memo: dict[float, NullDistribution] = {}
 
     def dist(self, tau: float) -> NullDistribution:
@@ -152,20 +161,6 @@ class _GenericInversion:
         d = self.dist(0.0)
         spread = float(np.nanstd(d.null[:, 0]))
         return spread if spread > 0 else 1.0
-
-
-class _CachedSource:
-    """An AssignmentSource whose chunks are generated once and kept."""
-
-    def __init__(self, source: AssignmentSource):
-        self.method, self.draws, self.mechanism = source.method, source.draws, source.mechanism
-        self._chunks = list(source.chunks())
-
-    def chunks(self):
-        return iter(self._chunks)
-
-    def weights(self, chunk):
-        return self.mechanism.weights(chunk) if self.method == "exact" else None
 
 
 def _boundary(inside: Callable[[float], bool], start: float, scale: float, *, upward: bool) -> float | None:

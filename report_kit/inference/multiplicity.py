@@ -14,15 +14,17 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from report_kit.checks.balance import TIE_RTOL, _check_method
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.inference.pvalues import DEFAULT_RTOL, tie_tolerance
 from report_kit.inputs.model import FAMILIES, MULTIPLICITY
+from report_kit.validate import METHODS, check_choice
 
 __all__ = [
     "ADJUSTMENTS",
     "SharedNull",
     "benjamini_hochberg",
     "holm",
+    "multiplicity_table",
     "study_multiplicity",
     "westfall_young",
 ]
@@ -92,8 +94,9 @@ def benjamini_hochberg(p) -> np.ndarray:
 # ---------------------------------------------------------------------------
 
 
-def _check_wy(observed, null, method: str, kind: str, weights) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    _check_method(method)
+def _check_wy(observed, null, method: str, kind: str, weights, tolerance
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    check_choice("method", method, METHODS)
     if kind not in WY_KINDS:
         raise UsageError(f"`kind` must be one of {{'min_p', 'max_t'}}; got {kind!r}")
     obs = np.asarray(observed, dtype=float)
@@ -112,25 +115,27 @@ def _check_wy(observed, null, method: str, kind: str, weights) -> tuple[np.ndarr
         w = np.asarray(weights, dtype=float)
         if w.shape != (nul.shape[0],) or not np.isfinite(w).all() or (w < 0).any() or w.sum() <= 0:
             raise UsageError(f"`weights` must be {nul.shape[0]} finite non-negative numbers with a positive sum")
+    if tolerance is None:
+        tol = tie_tolerance(obs, nul, None, DEFAULT_RTOL)
+    else:
+        tol = np.asarray(tolerance, dtype=float)
+        if tol.shape != obs.shape or not np.isfinite(tol).all() or (tol < 0).any():
+            raise UsageError(f"`tolerance` must hold {obs.size} finite numbers >= 0")
     if method == "monte_carlo":
         nul = np.vstack([obs[None, :], nul])  # the +1 rule: the observed draw counts
         w = np.ones(nul.shape[0])
-    return obs, nul, w
+    return obs, nul, w, tol
 
 
-def _threshold(x: np.ndarray) -> np.ndarray:
-    return x - TIE_RTOL * np.maximum(1.0, np.abs(x))
-
-
-def _upper_share(col: np.ndarray, w: np.ndarray, x: np.ndarray) -> np.ndarray:
-    """Weight share of the draws of ``col`` at least as large as each ``x`` (tie tolerance).
+def _upper_share(col: np.ndarray, w: np.ndarray, x: np.ndarray, tol: float) -> np.ndarray:
+    """Weight share of the draws of ``col`` at least as large as each ``x`` less the tie tolerance.
 
     With unit weights the tail sums are whole numbers, so the share is exactly
     ``count / N``.
     """
     order = np.argsort(col, kind="stable")
     tail = np.concatenate([np.cumsum(w[order][::-1])[::-1], [0.0]])
-    return tail[np.searchsorted(col[order], _threshold(x), side="left")] / w.sum()
+    return tail[np.searchsorted(col[order], x - tol, side="left")] / w.sum()
 
 
 def _step_down(order: np.ndarray, hits: np.ndarray, w: np.ndarray) -> np.ndarray:
@@ -146,7 +151,8 @@ def _step_down(order: np.ndarray, hits: np.ndarray, w: np.ndarray) -> np.ndarray
     return out
 
 
-def westfall_young(observed, null, *, method: str, kind: str = "min_p", weights=None) -> np.ndarray:
+def westfall_young(observed, null, *, method: str, kind: str = "min_p", weights=None,
+                   tolerance=None) -> np.ndarray:
     r"""Westfall–Young (1993) step-down adjusted p-values from shared randomization draws.
 
     Parameters
@@ -169,6 +175,11 @@ def westfall_young(observed, null, *, method: str, kind: str = "min_p", weights=
         Probabilities of the enumerated assignments when they are not equally
         likely (exact enumeration of a Bernoulli design); counts below become
         probability masses.
+    tolerance : array_like, shape (m,), optional
+        Tie tolerance of each column; default the engine's scale-free rule
+        :func:`~report_kit.inference.pvalues.tie_tolerance` on the oriented
+        statistics. Pass the tolerance of the marginal tests (``JointNull.tolerance``)
+        so that the raw p-values agree with them exactly.
 
     Returns
     -------
@@ -190,20 +201,21 @@ def westfall_young(observed, null, *, method: str, kind: str = "min_p", weights=
     (Westfall & Young 1993; Ge, Dudoit & Speed 2003). For ``max_t`` the statistics are
     sorted :math:`t_{(1)} \ge \dots \ge t_{(m)}` and
     :math:`\tilde p_{(i)} = \max_{k \le i} \#\{b : \max_{l \ge k} T^b_{r_l}
-    \ge t_{(k)}\}/N`. Comparisons use the
-    relative tie tolerance :data:`report_kit.checks.balance.TIE_RTOL`. Step-down
+    \ge t_{(k)}\}/N`. A draw is at least as extreme when
+    :math:`T \ge t - tol`, the engine's tie rule (relative to the magnitude of
+    the statistics, so scale-free). Step-down
     resampling controls the family-wise error rate strongly under subset
     pivotality, without assuming independence.
     """
-    obs, nul, w = _check_wy(observed, null, method, kind, weights)
+    obs, nul, w, tol = _check_wy(observed, null, method, kind, weights, tolerance)
     if kind == "max_t":
         order = np.argsort(-obs, kind="stable")
         succ = np.maximum.accumulate(nul[:, order][:, ::-1], axis=1)[:, ::-1]
-        hits = succ >= _threshold(obs[order])[None, :]
+        hits = succ >= (obs - tol)[order][None, :]
         return _step_down(order, hits, w)
     m = obs.size
-    raw = np.array([_upper_share(nul[:, j], w, obs[j:j + 1])[0] for j in range(m)])
-    pb = np.column_stack([_upper_share(nul[:, j], w, nul[:, j]) for j in range(m)])
+    raw = np.array([_upper_share(nul[:, j], w, obs[j:j + 1], tol[j])[0] for j in range(m)])
+    pb = np.column_stack([_upper_share(nul[:, j], w, nul[:, j], tol[j]) for j in range(m)])
     order = np.argsort(raw, kind="stable")
     succ = np.minimum.accumulate(pb[:, order][:, ::-1], axis=1)[:, ::-1]
     hits = succ <= raw[order][None, :] * (1 + 1e-12)
@@ -221,7 +233,7 @@ class SharedNull:
 
     ``outcomes`` names the columns of ``null`` (outcome columns from the
     spec); ``observed`` and ``null`` are oriented so larger = more extreme;
-    ``weights`` as in :func:`westfall_young`.
+    ``weights`` and ``tolerance`` as in :func:`westfall_young`.
     """
 
     outcomes: tuple[str, ...]
@@ -230,6 +242,7 @@ class SharedNull:
     method: str
     kind: str = "min_p"
     weights: np.ndarray | None = None
+    tolerance: np.ndarray | None = None
 
 
 def _as_shared_null(family: str, value) -> SharedNull:
@@ -243,7 +256,8 @@ def _as_shared_null(family: str, value) -> SharedNull:
         raise UsageError(f"`null_by_family[{family!r}]` lacks keys {sorted(missing)}")
     return SharedNull(outcomes=tuple(value["outcomes"]), observed=np.asarray(value["observed"]),
                       null=np.asarray(value["null"]), method=value["method"],
-                      kind=value.get("kind", "min_p"), weights=value.get("weights"))
+                      kind=value.get("kind", "min_p"), weights=value.get("weights"),
+                      tolerance=value.get("tolerance"))
 
 
 def _main_test(tests: Sequence[Mapping], spec) -> Mapping | None:
@@ -286,8 +300,10 @@ def _usable_shared(shared: SharedNull, tested: list[str]) -> SharedNull | None:
         if not keep.any():
             return None
     weights = None if shared.weights is None else np.asarray(shared.weights, dtype=float)[keep]
+    tolerance = None if shared.tolerance is None else np.asarray(shared.tolerance, dtype=float)[cols]
     return SharedNull(outcomes=tuple(tested), observed=np.asarray(shared.observed, dtype=float)[cols],
-                      null=null[keep], method=shared.method, kind=shared.kind, weights=weights)
+                      null=null[keep], method=shared.method, kind=shared.kind, weights=weights,
+                      tolerance=tolerance)
 
 
 def _family_adjustments(columns, pvals, shared: SharedNull | None) -> dict[str, dict[str, float]]:
@@ -299,7 +315,7 @@ def _family_adjustments(columns, pvals, shared: SharedNull | None) -> dict[str, 
         shared = _usable_shared(shared, tested)
     if shared is not None:
         adj = westfall_young(shared.observed, shared.null, method=shared.method, kind=shared.kind,
-                             weights=shared.weights)
+                             weights=shared.weights, tolerance=shared.tolerance)
         out["westfall_young"] = dict(zip(shared.outcomes, adj.tolist()))
     return out
 
@@ -364,3 +380,36 @@ def study_multiplicity(tests: Sequence[Mapping], outcomes, null_by_family: Mappi
                     "lead": method == lead,
                 })
     return entries
+
+
+def multiplicity_table(entries: Sequence[Mapping]) -> list[dict]:
+    """The ``multiplicity`` rows pivoted to one row per outcome (the report's table).
+
+    Parameters
+    ----------
+    entries : sequence of mappings
+        The ``multiplicity`` section (:func:`study_multiplicity`).
+
+    Returns
+    -------
+    list of dict
+        ``{outcome, family, p_value, adjusted, lead_method}`` in the order the
+        outcomes first appear; ``adjusted`` maps each method of
+        :data:`ADJUSTMENTS` that was computed to its adjusted p-value, and
+        ``lead_method`` is the pre-specified method (None when none leads).
+    """
+    if isinstance(entries, (str, bytes)) or not isinstance(entries, Sequence):
+        raise TypeError(f"`entries` must be a sequence of mappings; got {type(entries).__name__}")
+    rows: dict[tuple, dict] = {}
+    for i, entry in enumerate(entries):
+        if not isinstance(entry, Mapping):
+            raise TypeError(f"`entries[{i}]` must be a mapping; got {type(entry).__name__}")
+        key = (entry["outcome"], entry["family"])
+        row = rows.setdefault(key, {"outcome": entry["outcome"], "family": entry["family"],
+                                    "p_value": entry.get("p_value"), "adjusted": {}, "lead_method": None})
+        row["adjusted"][entry["method"]] = entry.get("p_adjusted")
+        if entry.get("lead"):
+            row["lead_method"] = entry["method"]
+    for row in rows.values():
+        row["adjusted"] = {m: row["adjusted"][m] for m in ADJUSTMENTS if m in row["adjusted"]}
+    return list(rows.values())

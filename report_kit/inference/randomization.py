@@ -29,14 +29,13 @@ from __future__ import annotations
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
-from decimal import Decimal
 
 import numpy as np
 
 from report_kit.inference.engine import (
     ALTERNATIVES,
-    DEFAULT_RTOL,
     STATISTICS,
+    ChunkMap,
     NullDistribution,
     _check_alternatives,
     _check_choice,
@@ -53,6 +52,7 @@ from report_kit.design.mechanism import AssignmentSource, Mechanism, mechanism_f
 from report_kit.errors import ReportKitWarning, UsageError
 from report_kit.inference.inversion import Interval, _interval, _LinearInversion, invert_test
 from report_kit.inference.kernels import Kernel  # noqa: F401
+from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics
 
 __all__ = [
     "ALTERNATIVES",
@@ -252,7 +252,8 @@ class StudyRandomization:
         ``results.json`` ``intervals`` entries (difference in means, two-sided,
         level ``1 - alpha``).
     n_assignments : str or None
-        Exact number of possible assignments, as decimal digits.
+        Exact number of possible assignments, as decimal digits; ``None`` when it
+        has more than 20 digits (see ``Mechanism.log10_count``).
     method : {"exact", "monte_carlo"}
     draws : int
         Assignments in every null distribution.
@@ -260,6 +261,8 @@ class StudyRandomization:
         Per outcome column (one column each): observed and null statistics, for
         plots and joint procedures.
     alternatives : dict of str to str
+    extra : tuple of DrawnStatistics
+        The ``extra`` statistics of :func:`study_randomization`, on the same draws.
     """
 
     tests: list
@@ -269,6 +272,7 @@ class StudyRandomization:
     draws: int
     distributions: dict
     alternatives: dict
+    extra: tuple[DrawnStatistics, ...] = ()
 
     def joint_null(self, outcomes: Sequence[str] | None = None, rtol: float = DEFAULT_RTOL) -> JointNull:
         """Oriented ``(B, m)`` null matrix of ``outcomes`` (default: all), each by its own alternative."""
@@ -292,11 +296,6 @@ class StudyRandomization:
                 "n_assignments": self.n_assignments, "method": self.method, "draws": int(self.draws)}
 
 
-def count_digits(count: int) -> str:
-    """Decimal digits of a (possibly huge) integer, avoiding Python's int-to-str digit limit."""
-    return str(Decimal(count))
-
-
 def study_assignments(study) -> tuple[Mechanism, AssignmentSource]:
     """The study's assignment mechanism and the one set of assignments every procedure shares.
 
@@ -314,8 +313,8 @@ def study_assignments(study) -> tuple[Mechanism, AssignmentSource]:
     return mechanism, source
 
 
-def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] | None = None
-                        ) -> StudyRandomization:
+def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] | None = None, *,
+                        extra: Sequence = (), chunk_map: ChunkMap | None = None) -> StudyRandomization:
     """Randomization tests and intervals for every outcome of a validated study.
 
     Builds the mechanism from ``study.spec.design`` and the study's assignment,
@@ -326,6 +325,15 @@ def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] |
     level ``1 - analysis.alpha``. All outcomes use the same assignments.
     ``assignments`` is what :func:`study_assignments` returns, when the caller
     already built it to share it with other procedures.
+
+    ``extra`` statistics (callables from a float block of assignments
+    ``(rows, n)`` to ``(rows, q)``, larger = more extreme, NaN = undefined;
+    e.g. the balance omnibus and the differential-attrition statistics) are
+    evaluated on the same pass over the draws; their
+    :class:`~report_kit.inference.pvalues.DrawnStatistics` are in ``extra`` of
+    the result, in the order given. ``chunk_map`` runs the chunks of the pass
+    (default: one after another in this process; see
+    :func:`~report_kit.inference.engine.run_pass`).
     """
     spec = study.spec
     analysis = spec.analysis
@@ -335,7 +343,8 @@ def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] |
     stats = {o.column: o.statistic for o in spec.outcomes}
     alts = {o.column: o.alternative for o in spec.outcomes}
     requests, slots = _study_requests(y, names, stats, alts, mechanism)
-    dists = _run(requests, mechanism, source, 0.0)
+    results = _run(requests, mechanism, source, 0.0, extra=extra, chunk_map=chunk_map)
+    dists, drawn = results[:len(requests)], tuple(results[len(requests):])
     per_outcome = {name: dists[r].column(j) for name, (r, j) in slots.items()}
     level = 1.0 - analysis.alpha
     tests, intervals = [], []
@@ -348,8 +357,8 @@ def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] |
         inv = _LinearInversion(pair, DEFAULT_RTOL, mechanism.fixed_arms_within_blocks)
         intervals.append(_interval(inv, inv.hodges_lehmann(), inv.scale(), "two-sided", level, name).to_dict())
     return StudyRandomization(
-        tests=tests, intervals=intervals, n_assignments=count_digits(mechanism.count()),
-        method=source.method, draws=source.draws, distributions=per_outcome, alternatives=alts,
+        tests=tests, intervals=intervals, n_assignments=mechanism.count_text(),
+        method=source.method, draws=source.draws, distributions=per_outcome, alternatives=alts, extra=drawn,
     )
 
 

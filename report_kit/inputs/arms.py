@@ -16,7 +16,9 @@ import itertools
 import pandas as pd
 
 from report_kit.errors import DataError
-from report_kit.inputs.data import Table, _as_text, _is_missing, _label_list, _Locator, _show
+from report_kit.inputs.checks import _is_missing, _label_list, _Locator, _show
+from report_kit.inputs.data import _as_text
+from report_kit.inputs.readers import Table
 from report_kit.inputs.model import Spec
 
 __all__ = ["arm_text", "arm_spec_problems", "factor_grid", "normalise_arm_column", "check_arms"]
@@ -55,6 +57,9 @@ def arm_spec_problems(design: dict) -> list[str]:
     if "probability" in design and len(labels) > 2:
         problems.append("design.probability: given for a design with more than two arms; the arms are drawn "
                         "with equal shares (remove the key)")
+    if design.get("single_arm_blocks", "error") != "error":
+        problems.append(f"design.single_arm_blocks: '{design['single_arm_blocks']}' is for 0/1 treatment columns; "
+                        "with design.arms every block must hold every arm (remove the key)")
     for key in design.get("arm_labels", {}):
         if arm_text(key) not in first:
             problems.append(f"design.arm_labels.{key}: '{key}' is not one of design.arms ({', '.join(labels)})")

@@ -12,10 +12,9 @@ from pathlib import Path
 
 import pandas as pd
 
-MECHANISMS = ("complete", "bernoulli", "blocked", "cluster", "blocked_cluster", "matched_pairs")
+from report_kit.validate import ALTERNATIVES, MECHANISMS, STATISTICS  # noqa: F401  (re-exported)
+
 FAMILIES = ("primary", "secondary", "exploratory")
-ALTERNATIVES = ("two-sided", "greater", "less")
-STATISTICS = ("mean_difference", "rank_sum", "studentized", "ks")
 MULTIPLICITY = ("none", "holm", "bh", "westfall_young")
 
 
@@ -24,6 +23,7 @@ class DataSpec:
     units: str
     id: str
     merge: tuple[str, ...] = ()
+    missing_values: tuple[str, ...] = ()   # texts read as missing besides a blank (never in the id)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -38,6 +38,7 @@ class DesignSpec:
     contrasts: str = "reference"                 # reference | pairwise
     factors: tuple[tuple[str, tuple[str, ...]], ...] | None = None  # factorial: (factor, arms where on)
     arm_labels: tuple[tuple[str, str], ...] = ()  # display label of each arm (optional)
+    single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
 
     @property
     def multi_arm(self) -> bool:
@@ -58,6 +59,8 @@ class AnalysisSpec:
     max_exact: int = 200000
     seed: int = 5150
     multiplicity: str = "holm"
+    missing_covariates: str = "error"    # error | drop_units (a unit lacking a baseline covariate)
+    subgroup_missing: str = "error"      # error | own_level | drop (a unit lacking its subgroup value)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -118,11 +121,22 @@ class Study:
     spec: Spec
     frame: pd.DataFrame
     inputs: tuple[InputFile, ...]
+    handling: tuple[dict, ...] = ()      # what the declared data handling did (results.json data_handling)
+    as_randomized: pd.DataFrame | None = field(default=None, compare=False, repr=False)  # before handling
+
+    @property
+    def randomized_frame(self) -> pd.DataFrame:
+        """Every unit as randomized (before a declared handling left some out or pooled blocks)."""
+        return self.frame if self.as_randomized is None else self.as_randomized
 
     @property
     def z(self):
+        return self.arm_codes(self.frame)
+
+    def arm_codes(self, frame: pd.DataFrame):
+        """The treatment column of ``frame`` as int codes: 0/1, or positions in ``design.arms``."""
         arms = self.spec.design.arms
-        column = self.frame[self.spec.design.treatment]
+        column = frame[self.spec.design.treatment]
         if arms is None:
             return column.to_numpy(dtype=int)
         position = {arm: k for k, arm in enumerate(arms)}

@@ -34,6 +34,13 @@ from report_kit.inputs.model import (
 
 SPEC_FILENAME = "design.yaml"
 
+#: Largest design spec read, in bytes (a real plan is a few kilobytes).
+MAX_SPEC_BYTES = 1 << 20
+#: Deepest nesting of mappings and lists (a real plan nests four levels).
+MAX_SPEC_DEPTH = 32
+#: Most values (mappings, lists and scalars) the spec may hold once YAML aliases are expanded.
+MAX_SPEC_NODES = 100_000
+
 _NEEDS_BLOCK = ("blocked", "blocked_cluster", "matched_pairs")
 _NEEDS_CLUSTER = ("cluster", "blocked_cluster")
 
@@ -104,6 +111,9 @@ def _parse_yaml(path: Path) -> dict:
     except OSError as err:
         reason = "permission denied" if isinstance(err, PermissionError) else (err.strerror or str(err))
         raise SpecError(f"{path}: cannot read the design spec ({reason})") from err
+    if len(raw) > MAX_SPEC_BYTES:
+        raise SpecError(f"{path}: the design spec is {len(raw)} bytes; the limit is {MAX_SPEC_BYTES} bytes "
+                        "(a plan is a few kilobytes: keep data in data/, not in design.yaml)")
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as err:
@@ -111,6 +121,7 @@ def _parse_yaml(path: Path) -> dict:
         raise SpecError(f"{path}: is not UTF-8 text (byte 0x{raw[err.start]:02x} on line {line} is not valid "
                         "UTF-8); save the design spec with UTF-8 encoding") from err
     try:
+        check_yaml_shape(path, text)
         doc = yaml.load(text, Loader=_StrictLoader)  # noqa: S506 - a SafeLoader subclass
     except yaml.YAMLError as err:
         mark = getattr(err, "problem_mark", None)
@@ -126,6 +137,40 @@ def _parse_yaml(path: Path) -> dict:
     if not isinstance(doc, dict):
         raise SpecError(f"{path}: (top level): found {_describe(doc)}; expected a mapping of keys such as 'spec_version', 'title', 'data'")
     return doc
+
+
+def check_yaml_shape(path: Path, text: str) -> None:
+    """Refuse a YAML text that nests too deeply or whose aliases expand too far, before building it.
+
+    Walks the event stream once (no recursion, no objects built), keeping for
+    every anchor the number of values its expansion holds, so a one-kilobyte
+    "billion laughs" document is refused in microseconds instead of expanding.
+    Syntax errors are left to the loader, which reports them with a line number.
+    """
+    sizes: dict[str, int] = {}
+    stack: list[list] = [[0, None]]  # [values so far, anchor] of each open mapping or list
+    for event in yaml.parse(text, Loader=yaml.SafeLoader):
+        if isinstance(event, yaml.CollectionStartEvent):
+            stack.append([1, event.anchor])
+            if len(stack) - 1 > MAX_SPEC_DEPTH:
+                raise SpecError(f"{path}: the design spec nests deeper than {MAX_SPEC_DEPTH} levels (line "
+                                f"{event.start_mark.line + 1}); a plan needs only a few levels")
+            continue
+        if isinstance(event, yaml.CollectionEndEvent):
+            size, anchor = stack.pop()
+        elif isinstance(event, yaml.AliasEvent):
+            size, anchor = sizes.get(event.anchor, 1), None
+        elif isinstance(event, yaml.ScalarEvent):
+            size, anchor = 1, event.anchor
+        else:
+            continue
+        if anchor is not None:
+            sizes[anchor] = size
+        stack[-1][0] += size
+        if stack[-1][0] > MAX_SPEC_NODES:
+            line = event.start_mark.line + 1
+            raise SpecError(f"{path}: the design spec expands to more than {MAX_SPEC_NODES} values (YAML "
+                            f"aliases, near line {line}); write the values out or use fewer aliases")
 
 
 # --------------------------------------------------------------------------- schema errors
@@ -200,8 +245,12 @@ def _translate(err: jsonschema.ValidationError) -> list[str]:
         return [f"{where}: found an empty value; expected at least {value} {'character' if kind == 'minLength' else 'item'}(s)"]
     if kind == "minProperties":
         return [f"{where}: found {len(inst)} key(s); expected at least {value}"]
+    if kind == "maxProperties":
+        return [f"{where}: found {len(inst)} key(s); expected at most {value}"]
     if kind == "maxItems":
         return [f"{where}: found {len(inst)} items; expected at most {value}"]
+    if kind == "maxLength":
+        return [f"{where}: found text of {len(inst)} characters; expected at most {value}"]
     bounds = {"minimum": ">=", "maximum": "<=", "exclusiveMinimum": ">", "exclusiveMaximum": "<"}
     if kind in bounds:
         return [f"{where}: found {_describe(inst)}; expected a value {bounds[kind]} {value}"]
@@ -240,6 +289,9 @@ def cross_field_problems(doc: dict) -> list[str]:
     if "block" in design and mech not in _NEEDS_BLOCK:
         problems.append(f"design.block: given, but mechanism '{mech}' has no blocks; "
                         f"use one of {', '.join(_NEEDS_BLOCK)} or remove the key")
+    if design.get("single_arm_blocks", "error") != "error" and mech not in ("blocked", "blocked_cluster"):
+        problems.append(f"design.single_arm_blocks: given, but mechanism '{mech}' has no blocks to drop or "
+                        "pool; it applies to blocked and blocked_cluster designs")
     if "cluster" in design and mech not in _NEEDS_CLUSTER:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
@@ -352,13 +404,15 @@ def _build_spec(path: Path, doc: dict) -> Spec:
         spec_version=doc["spec_version"],
         title=doc["title"],
         summary=doc.get("summary", ""),
-        data=DataSpec(units=data["units"], id=data["id"], merge=tuple(data.get("merge", ()))),
+        data=DataSpec(units=data["units"], id=data["id"], merge=tuple(data.get("merge", ())),
+                      missing_values=tuple(data.get("missing_values", ()))),
         design=DesignSpec(
             mechanism=design["mechanism"], treatment=design["treatment"],
             block=design.get("block"), cluster=design.get("cluster"),
             probability=design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
             **_arm_keys(design),
+            single_arm_blocks=design.get("single_arm_blocks", "error"),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),
@@ -368,6 +422,8 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             max_exact=int(analysis.get("max_exact", defaults.max_exact)),
             seed=int(analysis.get("seed", defaults.seed)),
             multiplicity=analysis.get("multiplicity", defaults.multiplicity),
+            missing_covariates=analysis.get("missing_covariates", defaults.missing_covariates),
+            subgroup_missing=analysis.get("subgroup_missing", defaults.subgroup_missing),
         ),
         outcomes=outcomes,
         compliance=ComplianceSpec(received=doc["compliance"]["received"]) if "compliance" in doc else None,

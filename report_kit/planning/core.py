@@ -16,7 +16,6 @@ import numpy as np
 from scipy import optimize, stats
 
 from report_kit.validate import closed_unit_interval
-from report_kit.errors import UsageError
 from report_kit.inputs.model import ALTERNATIVES
 
 
@@ -29,9 +28,9 @@ def _check_unit_interval(name: str, value) -> float:
     try:
         v = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a number in (0, 1); got {value!r}") from err
+        raise TypeError(f"`{name}` must be a number in (0, 1); got {value!r}") from err
     if not 0 < v < 1:
-        raise UsageError(f"`{name}` must be in (0, 1); got {value!r}")
+        raise ValueError(f"`{name}` must be in (0, 1); got {value!r}")
     return v
 
 
@@ -41,15 +40,15 @@ def _check_positive(name: str, value, *, allow_none: bool = False) -> float | No
     try:
         v = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a positive number; got {value!r}") from err
+        raise TypeError(f"`{name}` must be a positive number; got {value!r}") from err
     if not (np.isfinite(v) and v > 0):
-        raise UsageError(f"`{name}` must be a positive number; got {value!r}")
+        raise ValueError(f"`{name}` must be a positive number; got {value!r}")
     return v
 
 
 def _check_alternative(alternative: str) -> str:
     if alternative not in ALTERNATIVES:
-        raise UsageError(
+        raise ValueError(
             f"`alternative` must be one of {{'two-sided', 'greater', 'less'}}; got {alternative!r}"
         )
     return alternative
@@ -105,7 +104,8 @@ def _solve_mde(se: float, df: float, alpha: float, power: float, alternative: st
 def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
                   effect: float | None = None, power: float = 0.8, icc: float = 0.0,
                   cluster_size: float = 1, alpha: float = 0.05,
-                  alternative: str = "two-sided") -> dict:
+                  alternative: str = "two-sided", attrition: float = 0.0,
+                  takeup_treated: float | None = None, takeup_control: float | None = None) -> dict:
     r"""Power and MDE of a two-arm design before data (analytic).
 
     Parameters
@@ -123,13 +123,23 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
         for cluster randomization (defaults: individual randomization).
     alpha : float, default 0.05
     alternative : {'two-sided', 'greater', 'less'}
+    attrition : float in [0, 1), default 0
+        Expected share of units whose outcome will be missing (the same in
+        both arms). Only the others are analysed: ``n_a (1 - attrition)``
+        units per arm; in cluster designs the clusters stay and their mean
+        size becomes ``m (1 - attrition)``.
+    takeup_treated, takeup_control : float in [0, 1], optional
+        Expected shares receiving the treatment in each assigned arm (give
+        both). Then ``mde_cace = mde / (takeup_treated - takeup_control)``.
 
     Returns
     -------
     dict
         ``method="analytic", n_treated, n_control, sd, icc, cluster_size,
         design_effect, std_error, df, alpha, alternative, target_power, mde,
-        mde_std, effect, power`` (``power`` None without ``effect``).
+        mde_std, effect, power`` (``power`` None without ``effect``),
+        ``attrition, n_treated_analysed, n_control_analysed, takeup_treated,
+        takeup_control, mde_cace`` (None without take-up).
 
     Notes
     -----
@@ -143,6 +153,13 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
     noncentral t :math:`T'` (Cohen 1988, ch. 2), with
     :math:`\nu = n_1 + n_0 - 2`, or :math:`\nu = J - 2` for :math:`J =
     (n_1 + n_0)/m` clusters. The MDE solves :math:`\pi(\tau) =` ``power``.
+
+    With attrition :math:`a`, :math:`n_a` becomes :math:`n_a(1-a)` in the
+    standard error and the df, and :math:`m` becomes :math:`m(1-a)` in the
+    design effect (never below 1). With take-up :math:`c_1, c_0` the
+    complier effect is the ITT over :math:`c_1 - c_0`, so its MDE is
+    :math:`\mathrm{MDE}/(c_1 - c_0)` (Bloom 1984; Duflo, Glennerster & Kremer
+    2007, Section 4.3).
     """
     n1 = _check_positive("n_treated", n_treated)
     n0 = _check_positive("n_control", n_control)
@@ -152,15 +169,21 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
     _check_alternative(alternative)
     m = _check_positive("cluster_size", cluster_size)
     if m < 1:
-        raise UsageError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
+        raise ValueError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
     rho = closed_unit_interval("icc", icc)
     if effect is not None and not np.isfinite(float(effect)):
-        raise UsageError(f"`effect` must be a finite number; got {effect!r}")
-    df = (n1 + n0) / m - 2
+        raise ValueError(f"`effect` must be a finite number; got {effect!r}")
+    attrition = closed_unit_interval("attrition", attrition)
+    if attrition >= 1:
+        raise ValueError(f"`attrition` must be below 1; got {attrition!r}")
+    takeup = _check_takeup(takeup_treated, takeup_control)
+    kept = 1.0 - attrition
+    n1a, n0a = n1 * kept, n0 * kept
+    df = (n1 + n0) / m - 2 if m > 1 else n1a + n0a - 2
     if df <= 0:
-        raise UsageError(f"the design needs more than two clusters (or units); got {(n1 + n0) / m:g}")
-    deff = design_effect(m, rho)
-    se = sd * np.sqrt(deff * (1 / n1 + 1 / n0))
+        raise ValueError(f"the design needs more than two clusters (or analysed units); got {df + 2:g}")
+    deff = design_effect(max(1.0, m * kept), rho) if m > 1 else design_effect(m, rho)
+    se = sd * np.sqrt(deff * (1 / n1a + 1 / n0a))
     size = _solve_mde(se, df, alpha, power, alternative)
     return {
         "method": "analytic", "n_treated": _plain(n1), "n_control": _plain(n0), "sd": sd,
@@ -169,7 +192,23 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
         "mde": size, "mde_std": size / sd,
         "effect": None if effect is None else float(effect),
         "power": None if effect is None else _t_power(float(effect), se, df, alpha, alternative),
+        "attrition": attrition, "n_treated_analysed": float(n1a), "n_control_analysed": float(n0a),
+        "takeup_treated": None if takeup is None else takeup[0],
+        "takeup_control": None if takeup is None else takeup[1],
+        "mde_cace": None if takeup is None else size / (takeup[0] - takeup[1]),
     }
+
+
+def _check_takeup(treated, control) -> tuple[float, float] | None:
+    if treated is None and control is None:
+        return None
+    if treated is None or control is None:
+        raise ValueError("`takeup_treated` and `takeup_control` go together: give both expected take-up shares")
+    t1 = closed_unit_interval("takeup_treated", treated)
+    t0 = closed_unit_interval("takeup_control", control)
+    if not t1 > t0:
+        raise ValueError(f"`takeup_treated` must exceed `takeup_control` for a complier effect; got {t1!r} and {t0!r}")
+    return t1, t0
 
 
 # ---------------------------------------------------------------------------
@@ -179,7 +218,7 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
 
 def _check_progress(progress):
     if progress is not None and not callable(progress):
-        raise UsageError(f"`progress` must be a callable (done, total) or None; got {progress!r}")
+        raise TypeError(f"`progress` must be a callable (done, total) or None; got {progress!r}")
     return progress
 
 

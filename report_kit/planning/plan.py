@@ -18,6 +18,7 @@ from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from report_kit.validate import closed_unit_interval, finite_number
 from report_kit.planning.core import (
@@ -31,7 +32,7 @@ from report_kit.planning.core import (
 )
 from report_kit.inputs.data import load_units_for_assignment, resolve_inside
 from report_kit.design.mechanism import draw_assignment, mechanism_from_arrays, number_treated
-from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.inputs.model import OutcomeSpec, Spec
 from report_kit.inference.randomization import randomization_test
 from report_kit.inputs.spec import load_spec
@@ -108,10 +109,11 @@ class PowerPlan:
         The project folder and the spec's title.
     mechanism : str
         ``design.mechanism``.
-    sizes_from : {"data", "options"}
-        Where the sizes came from: the units table, or the planned sizes given.
+    sizes_from : {"assignment", "data", "options"}
+        Where the sizes came from: the actual arms of an assigned units table,
+        the units table (expected arm sizes), or the planned sizes given.
     units_table : str or None
-        ``data.units`` when ``sizes_from == "data"``.
+        ``data.units`` when the sizes come from it.
     n_units : int
     n_blocks, n_clusters, clusters_treated : int or None
         ``None`` when the design has no blocks (clusters).
@@ -160,7 +162,9 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
                power: float = 0.8, icc: float | None = None, cluster_size: float | None = None,
                n_treated: int | None = None, n_control: int | None = None, n_clusters: int | None = None,
                outcome: str | None = None, simulate: int = 0, draws: int = DEFAULT_TEST_DRAWS,
-               seed: int | None = None, progress: Callable[[int, int], None] | None = None) -> PowerPlan:
+               seed: int | None = None, progress: Callable[[int, int], None] | None = None,
+               attrition: float = 0.0, takeup_treated: float | None = None,
+               takeup_control: float | None = None) -> PowerPlan:
     r"""Power and MDE of a project's design as planned, before (or without) outcome data.
 
     Parameters
@@ -197,6 +201,10 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
         Seed of the simulation (default ``analysis.seed``).
     progress : callable ``(done, total)``, optional
         Called after each simulated experiment.
+    attrition, takeup_treated, takeup_control : float, optional
+        Expected share of missing outcomes and expected take-up by arm, passed
+        to :func:`planned_power` (the analytic MDE of the ITT with the analysed
+        units, and ``mde_cace``).
 
     Returns
     -------
@@ -204,7 +212,9 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
 
     Notes
     -----
-    With a units table, the sizes are those of the real design: the number
+    With a units table whose treatment column (``design.treatment``) is
+    already filled with 0/1 for every unit, the arm sizes are the actual ones
+    (``sizes_from = "assignment"``). Otherwise, with a units table, the sizes are those of the real design: the number
     of randomization units (units or clusters) treated in each stratum is
     :func:`~report_kit.design.mechanism.number_treated` of ``design.probability``
     (0.5 when absent, as ``report-kit assign`` draws it), and the expected
@@ -243,11 +253,12 @@ def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: f
     target = _target_outcome(spec, outcome)
     units = _planned_units(spec, opts)
     if opts.simulate and units.ids is None:
-        raise UsageError(f"cannot simulate: {units.why_not}")
+        raise ValueError(f"cannot simulate: {units.why_not}")
     analytic = planned_power(n_treated=units.n_treated, n_control=units.n_control, sd=opts.sd,
                              effect=opts.effect, power=opts.power, icc=opts.icc,
                              cluster_size=units.cluster_size, alpha=spec.analysis.alpha,
-                             alternative=target.alternative)
+                             alternative=target.alternative, attrition=attrition,
+                             takeup_treated=takeup_treated, takeup_control=takeup_control)
     simulation = None
     if opts.simulate:
         simulation = _simulate_plan(units, target, analytic, opts, alpha=spec.analysis.alpha,
@@ -269,7 +280,7 @@ def _check_count(name: str, value) -> int | None:
     if value is None:
         return None
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise UsageError(f"`{name}` must be a whole number >= 1; got {value!r}")
+        raise ValueError(f"`{name}` must be a whole number >= 1; got {value!r}")
     return int(value)
 
 
@@ -278,35 +289,35 @@ def _check_plan(spec: Spec, *, sd, effect, power, icc, cluster_size, n_treated, 
     kind = spec.design.mechanism
     clustered = kind in _CLUSTERED
     if sd is None:
-        raise UsageError("`sd` is required: the standard deviation of the outcome in its own units "
+        raise ValueError("`sd` is required: the standard deviation of the outcome in its own units "
                          "(e.g. from a pilot or an earlier study)")
     sd = _check_positive("sd", sd)
     if effect is not None:
         effect = finite_number("effect", effect)
     power = _check_unit_interval("power", power)
     if clustered and icc is None:
-        raise UsageError(f"`icc` is required for a {kind} design: the intraclass correlation of the outcome "
+        raise ValueError(f"`icc` is required for a {kind} design: the intraclass correlation of the outcome "
                          "within clusters, a number in [0, 1]")
     if not clustered and icc not in (None, 0):
-        raise UsageError(f"`icc` applies to cluster designs only; design.mechanism is {kind!r}")
+        raise ValueError(f"`icc` applies to cluster designs only; design.mechanism is {kind!r}")
     icc = 0.0 if icc is None else closed_unit_interval("icc", icc)
     for name, value in (("cluster_size", cluster_size), ("n_clusters", n_clusters)):
         if value is not None and not clustered:
-            raise UsageError(f"`{name}` applies to cluster designs only; design.mechanism is {kind!r}")
+            raise ValueError(f"`{name}` applies to cluster designs only; design.mechanism is {kind!r}")
     cluster_size = _check_positive("cluster_size", cluster_size, allow_none=True)
     if cluster_size is not None and cluster_size < 1:
-        raise UsageError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
+        raise ValueError(f"`cluster_size` must be at least 1; got {cluster_size!r}")
     n_treated, n_control = _check_count("n_treated", n_treated), _check_count("n_control", n_control)
     n_clusters = _check_count("n_clusters", n_clusters)
     if (n_treated is None) != (n_control is None):
-        raise UsageError("`n_treated` and `n_control` go together: give both planned arm sizes")
+        raise ValueError("`n_treated` and `n_control` go together: give both planned arm sizes")
     if n_clusters is not None and n_treated is not None:
-        raise UsageError("give either `n_clusters` or `n_treated` and `n_control`, not both")
+        raise ValueError("give either `n_clusters` or `n_treated` and `n_control`, not both")
     if isinstance(simulate, bool) or not isinstance(simulate, (int, np.integer)) or simulate < 0:
-        raise UsageError(f"`simulate` must be a whole number >= 0; got {simulate!r}")
+        raise ValueError(f"`simulate` must be a whole number >= 0; got {simulate!r}")
     draws = _check_count("draws", draws)
     if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0):
-        raise UsageError(f"`seed` must be a non-negative integer; got {seed!r}")
+        raise ValueError(f"`seed` must be a non-negative integer; got {seed!r}")
     return _PlanOptions(sd=sd, effect=effect, power=power, icc=icc, cluster_size=cluster_size,
                         n_treated=n_treated, n_control=n_control, n_clusters=n_clusters,
                         simulate=int(simulate), draws=draws, seed=None if seed is None else int(seed))
@@ -320,7 +331,7 @@ def _target_outcome(spec: Spec, outcome: str | None) -> OutcomeSpec:
     if outcome not in names:
         close = difflib.get_close_matches(str(outcome), names, n=1)
         hint = f" — did you mean {close[0]!r}?" if close else ""
-        raise UsageError(f"`outcome` must be one of the spec's outcomes {names}; got {outcome!r}{hint}")
+        raise ValueError(f"`outcome` must be one of the spec's outcomes {names}; got {outcome!r}{hint}")
     return spec.outcomes[names.index(outcome)]
 
 
@@ -332,13 +343,13 @@ def _planned_units(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
     table = resolve_inside(spec.project_dir, spec.data.units, "data.units")
     if table.is_file():
         if opts.sizes_given:
-            raise UsageError(f"{table}: the units table exists and gives the sizes; planned sizes "
+            raise ValueError(f"{table}: the units table exists and gives the sizes; planned sizes "
                              "(`n_treated`, `n_control`, `n_clusters`, `cluster_size`) are for a design without data")
         return _units_from_table(spec)
     if not opts.sizes_given:
         needs = ("`cluster_size` with `n_clusters` (or `n_treated` and `n_control`)"
                  if spec.design.mechanism in _CLUSTERED else "`n_treated` and `n_control`")
-        raise UsageError(f"{table}: no units table yet; give the planned sizes: {needs}")
+        raise ValueError(f"{table}: no units table yet; give the planned sizes: {needs}")
     return _units_from_sizes(spec, opts)
 
 
@@ -349,18 +360,56 @@ def _share(spec: Spec) -> float:
     return float(spec.design.probability)
 
 
+def _share_in_data(spec: Spec, frame) -> float | None:
+    """Share treated in the units table's treatment column, when it holds both arms as 0/1.
+
+    Used instead of 0.5 when ``design.probability`` is absent, so a study that
+    treated 185 of 445 units is planned with those arm sizes. Shares of
+    clusters for cluster designs; not used for Bernoulli designs (their
+    probability is the plan) nor matched pairs (one of two by construction).
+    """
+    col, kind = spec.design.treatment, spec.design.mechanism
+    if spec.design.probability is not None or kind in ("bernoulli", "matched_pairs") or col not in frame.columns:
+        return None
+    z = pd.to_numeric(frame[col], errors="coerce")
+    if z.isna().any() or not z.isin([0, 1]).all() or z.nunique() < 2:
+        return None
+    if kind in _CLUSTERED:
+        z = z.groupby(frame[spec.design.cluster].to_numpy()).first()
+    return float(Fraction(int(z.sum()), int(z.size)))
+
+
 def _units_from_table(spec: Spec) -> _PlannedUnits:
     frame = load_units_for_assignment(spec)
     kind, design = spec.design.mechanism, spec.design
     ids = frame[spec.data.id].to_numpy()
     block = frame[design.block].to_numpy() if kind in _BLOCKED else None
     cluster = frame[design.cluster].to_numpy() if kind in _CLUSTERED else None
-    p = _share(spec)
+    p = _share_in_data(spec, frame)
+    p = _share(spec) if p is None else p
     try:  # the real draw validates ids, labels, nesting and pairs
         draw_assignment(kind, ids, seed=0, block=block, cluster=cluster, probability=p)
     except (DataError, DesignError) as err:
         raise type(err)(f"{spec.project_dir / spec.data.units}: {err}") from err
-    return _describe_units(kind, ids, block, cluster, p, sizes_from="data", units_table=spec.data.units)
+    units = _describe_units(kind, ids, block, cluster, p, sizes_from="data", units_table=spec.data.units)
+    return _actual_arms(units, frame, spec.design.treatment)
+
+
+def _actual_arms(units: _PlannedUnits, frame, treatment: str) -> _PlannedUnits:
+    """The planned units with the actual arm sizes when the treatment column is filled."""
+    if treatment not in frame.columns:
+        return units
+    z = frame[treatment].to_numpy()
+    try:
+        zf = z.astype(float)
+    except (TypeError, ValueError):
+        return units
+    if np.isnan(zf).any() or not np.isin(zf, (0, 1)).all():
+        return units
+    n1 = int(zf.sum())
+    clusters_treated = None if units.cluster is None else int(np.unique(units.cluster[zf == 1]).size)
+    return replace(units, sizes_from="assignment", n_treated=float(n1), n_control=float(zf.size - n1),
+                   clusters_treated=clusters_treated)
 
 
 def _codes(labels: np.ndarray) -> np.ndarray:
@@ -402,7 +451,7 @@ def _units_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
     n1, n0 = opts.n_treated, opts.n_control
     n = n1 + n0
     if kind == "matched_pairs" and n1 != n0:
-        raise UsageError(f"matched pairs treat one unit of each pair: `n_treated` must equal `n_control`; "
+        raise ValueError(f"matched pairs treat one unit of each pair: `n_treated` must equal `n_control`; "
                          f"got {n1} and {n0}")
     _agree_with_spec(spec, n1, n, "units")
     if kind == "blocked":
@@ -421,7 +470,7 @@ def _units_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
 def _clusters_from_sizes(spec: Spec, opts: _PlanOptions) -> _PlannedUnits:
     kind, m = spec.design.mechanism, opts.cluster_size
     if m is None:
-        raise UsageError(f"`cluster_size` is required for a {kind} design without data: "
+        raise ValueError(f"`cluster_size` is required for a {kind} design without data: "
                          "the planned (average) number of units per cluster")
     if opts.n_clusters is not None:
         total = opts.n_clusters
@@ -458,7 +507,7 @@ def _agree_with_spec(spec: Spec, treated, total, what: str) -> None:
         return
     expected = number_treated(p, int(total))
     if expected != treated:
-        raise UsageError(f"design.probability {p:g} treats {expected} of {int(total)} {what}; "
+        raise ValueError(f"design.probability {p:g} treats {expected} of {int(total)} {what}; "
                          f"the planned sizes treat {int(treated)}")
 
 
@@ -533,7 +582,9 @@ def _g(x, digits: int = 4) -> str:
 def format_plan_text(plan: PowerPlan) -> str:
     """A readable summary of a :class:`PowerPlan` (what ``report-kit power`` prints)."""
     a, sim = plan.analytic, plan.simulation
-    source = f"sizes from {plan.units_table}" if plan.sizes_from == "data" else "planned sizes (no units table yet)"
+    source = {"data": f"sizes from {plan.units_table}",
+              "assignment": f"actual arm sizes from {plan.units_table}"}.get(
+        plan.sizes_from, "planned sizes (no units table yet)")
     expected = plan.mechanism == "bernoulli" or (plan.mechanism in _CLUSTERED and plan.sizes_from == "data")
     lines = [f"Power plan: {plan.title}",
              f"  design         {plan.mechanism}; {source}",
@@ -553,6 +604,12 @@ def format_plan_text(plan: PowerPlan) -> str:
               f"  outcome SD     {_g(a['sd'])}",
               f"  std. error     {_g(a['std_error'])} (t test, {_g(a['df'], 8)} df)",
               f"  MDE            {_g(a['mde'])} at {a['target_power']:.0%} power ({_g(a['mde_std'], 3)} SD)"]
+    if a.get("attrition"):
+        lines.insert(-1, f"  attrition      {a['attrition']:.0%} expected: {_g(a['n_treated_analysed'], 8)} treated and "
+                         f"{_g(a['n_control_analysed'], 8)} control units analysed")
+    if a.get("mde_cace") is not None:
+        lines.append(f"  MDE (CACE)     {_g(a['mde_cace'])} = MDE / ({_g(a['takeup_treated'])} - "
+                     f"{_g(a['takeup_control'])}) take-up difference")
     if a["power"] is not None:
         lines.append(f"  power          {a['power']:.3f} at effect {_g(a['effect'])} (analytic)")
     if sim is not None:

@@ -26,8 +26,8 @@ from report_kit.planning.core import (
     design_effect,
     planned_power,
 )
-from report_kit.checks.balance import _num
-from report_kit.errors import DataError, UsageError
+from report_kit.errors import DataError
+from report_kit.validate import finite_or_none as _num
 from report_kit.planning.plan import DEFAULT_TEST_DRAWS, SIM_EXACT_LIMIT, PowerPlan, format_plan_text, plan_power
 
 __all__ = [
@@ -86,12 +86,12 @@ def _check_simulation(y0, effect, n_sims, alpha, seed):
             raise DataError("`y0` must be a finite one-dimensional array or a callable rng -> array")
     eff = np.asarray(effect, dtype=float)
     if eff.ndim > 1 or not np.isfinite(eff).all():
-        raise UsageError("`effect` must be a finite number or a one-dimensional array of unit effects")
+        raise ValueError("`effect` must be a finite number or a one-dimensional array of unit effects")
     if isinstance(n_sims, bool) or not isinstance(n_sims, (int, np.integer)) or n_sims < 1:
-        raise UsageError(f"`n_sims` must be a positive integer; got {n_sims!r}")
+        raise ValueError(f"`n_sims` must be a positive integer; got {n_sims!r}")
     alpha = _check_unit_interval("alpha", alpha)
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
-        raise UsageError(f"`seed` must be an integer; got {seed!r}")
+        raise TypeError(f"`seed` must be an integer; got {seed!r}")
     return y0, eff, int(n_sims), alpha, int(seed)
 
 
@@ -99,10 +99,10 @@ def _one_simulation(rng, y0, eff, draw_assignment, test) -> float:
     base = np.asarray(y0(rng), dtype=float) if callable(y0) else y0
     z = np.asarray(draw_assignment(rng))
     if z.shape != base.shape:
-        raise UsageError(f"`draw_assignment` returned shape {z.shape}; the outcomes have shape {base.shape}")
+        raise ValueError(f"`draw_assignment` returned shape {z.shape}; the outcomes have shape {base.shape}")
     p = float(test(base + eff * z, z))
     if not 0 <= p <= 1:
-        raise UsageError(f"`test` must return a p-value in [0, 1]; got {p!r}")
+        raise ValueError(f"`test` must return a p-value in [0, 1]; got {p!r}")
     return p
 
 

@@ -69,13 +69,13 @@ def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, leve
             if r["ci_low"] is not None and r["ci_high"] is not None and np.isfinite([r["ci_low"], r["ci_high"]]).all():
                 ax.plot([r["ci_low"], r["ci_high"]], [y, y], color=colour, linewidth=2.2, solid_capstyle="butt")
             ax.plot([r["estimate"]], [y], marker="s", markersize=6.5, color=colour)
-        ax.set_yticks(ypos, ticks(part), fontsize=8)
+        ax.set_yticks(ypos, ticks(part), fontsize=8, parse_math=False)  # arm labels are user text
         ax.set_ylim(-0.7, len(part) - 0.3)
         ax.axvline(0, color=MUTED, linestyle="--", linewidth=1)
         _tidy(ax)
         ax.tick_params(axis="y", length=0)
         ax.tick_params(axis="x", labelsize=8)
-        ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold")
+        ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold", parse_math=False)  # user text
     axes[-1, 0].set_xlabel(f"{what} with {level}% confidence interval, in each outcome's own units", fontsize=8)
     handles = [Line2D([], [], color=INK, marker="s", linewidth=2.2, label="unadjusted"),
                Line2D([], [], color=ACCENT, marker="s", linewidth=2.2, label="covariate-adjusted")]
@@ -100,7 +100,7 @@ def randomization_plot(null: np.ndarray, observed: float, *, label: str, statist
     ax.set_yticks([])
     ax.spines["left"].set_visible(False)
     ax.grid(False)
-    ax.set_title(label, fontsize=9, loc="left")
+    ax.set_title(label, fontsize=9, loc="left", parse_math=False)  # user text: a "$" is not math
     ax.set_xlabel(f"{statistic.replace('_', ' ')} under the null of no effect — {count_text}", fontsize=8)
     fig.tight_layout()
     return fig

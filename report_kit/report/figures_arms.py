@@ -38,11 +38,12 @@ def cell_means_plot(means: dict, *, first: str, second: str, first_on: tuple, se
                 ys.append(means[arm])
         ax.plot(xs, ys, color=colour, linestyle=style, marker="o", linewidth=2,
                 label=f"{second} {'on' if on else 'off'}")
-    ax.set_xticks([0, 1], [f"{first} off", f"{first} on"], fontsize=8)
+    ax.set_xticks([0, 1], [f"{first} off", f"{first} on"], fontsize=8, parse_math=False)  # user text
     ax.set_xlim(-0.3, 1.3)
     ax.tick_params(axis="y", labelsize=8)
     ax.set_ylabel("mean outcome", fontsize=8)
-    ax.set_title(label, fontsize=9, loc="left", fontweight="bold")
-    ax.legend(frameon=False, fontsize=7.5)
+    ax.set_title(label, fontsize=9, loc="left", fontweight="bold", parse_math=False)  # user text
+    for text in ax.legend(frameon=False, fontsize=7.5).get_texts():
+        text.set_parse_math(False)  # factor names are user text
     fig.tight_layout()
     return fig

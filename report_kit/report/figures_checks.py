@@ -12,7 +12,6 @@ from collections.abc import Mapping, Sequence
 from matplotlib.figure import Figure
 
 from report_kit.checks.balance import SMD_THRESHOLDS
-from report_kit.errors import UsageError
 from report_kit.report.figures import INK
 
 __all__ = ["plot_balance"]
@@ -26,7 +25,7 @@ _TONES = {"small": "#2a7f7a", "moderate": "#c98a1b", "large": "#b2432f"}
 def _rows(balance_dict) -> Sequence[Mapping]:
     if isinstance(balance_dict, Mapping):
         if "covariates" not in balance_dict:
-            raise UsageError(
+            raise ValueError(
                 "`balance_dict` must have a 'covariates' list (the results.json balance section)"
             )
         return balance_dict["covariates"]
@@ -76,7 +75,7 @@ def plot_balance(balance_dict) -> Figure:
         tone = _TONES.get(row.get("flag"), _INK)
         ax.hlines(y, 0, v, color=tone, linewidth=1.6, zorder=2)
         ax.plot([v], [y], marker="D", markersize=6, color=tone, zorder=3, linestyle="none")
-    ax.set_yticks(range(len(rows)), [r.get("name", "") for r in reversed(rows)])
+    ax.set_yticks(range(len(rows)), [r.get("name", "") for r in reversed(rows)], parse_math=False)
     ax.set_ylim(-0.7, max(len(rows), 1) - 0.3)
     ax.set_xlim(-reach, reach)
     ax.set_xlabel("Standardized difference, treated minus control (pooled SD units)")

@@ -12,12 +12,15 @@ Owns the renderers, registered by name:
 from __future__ import annotations
 
 import html
+import json
 import logging
 import shutil
 import subprocess
 import warnings
 from datetime import datetime, timezone
 from pathlib import Path
+from urllib.parse import urlsplit
+from urllib.request import url2pathname
 
 from report_kit.errors import UsageError
 from report_kit.report.notebooks import TEMPLATE_DIR, ReportError
@@ -139,15 +142,57 @@ def render_builtin(notebooks: list[Path], run_dir: Path, *, title: str, pdf: boo
         write_pdf(run_dir / "report.html", run_dir / "report.pdf")
 
 
+def fetch_allowed(url: str, root: Path) -> bool:
+    """Whether the PDF renderer may load ``url``: inline ``data:`` or a file inside ``root``.
+
+    Anything else (``http:``, ``https:``, ``ftp:``, files outside the run
+    folder) is refused, so rendering a report never reaches the network or
+    reads another file of the machine, whatever the HTML contains.
+    """
+    scheme = urlsplit(url).scheme.lower()
+    if scheme == "data":
+        return True
+    if scheme != "file":
+        return False
+    path = Path(url2pathname(urlsplit(url).path)).resolve()
+    return path == root.resolve() or root.resolve() in path.parents
+
+
+def _offline_fetcher(root: Path):
+    """A weasyprint URL fetcher that loads only what :func:`fetch_allowed` allows."""
+    import weasyprint.urls as urls
+
+    def refuse(url: str) -> None:
+        log.warning("PDF: refused to load %s (only data: URLs and files of the run folder)", url[:200])
+        raise ValueError(f"report-kit renders offline; refused {url[:200]}")
+
+    if hasattr(urls, "URLFetcher"):  # weasyprint >= 68: a fetcher class
+        class RunFolderFetcher(urls.URLFetcher):
+            def fetch(self, url, headers=None):
+                if not fetch_allowed(url, root):
+                    refuse(url)
+                return super().fetch(url, headers)
+
+        return RunFolderFetcher(allowed_protocols={"data", "file"}, allow_redirects=False)
+
+    def fetcher(url: str):  # older weasyprint: a function
+        if not fetch_allowed(url, root):
+            refuse(url)
+        return urls.default_url_fetcher(url)
+
+    return fetcher
+
+
 def write_pdf(html_path: Path, pdf_path: Path) -> None:
-    """PDF from the self-contained HTML with weasyprint."""
+    """PDF from the self-contained HTML with weasyprint; nothing outside the HTML's folder is fetched."""
     logging.getLogger("weasyprint").setLevel(logging.ERROR)
     logging.getLogger("fontTools").setLevel(logging.ERROR)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DeprecationWarning)  # weasyprint's notice about optional HarfBuzz-Subset
         import weasyprint
 
-        weasyprint.HTML(filename=str(html_path)).write_pdf(str(pdf_path))
+        weasyprint.HTML(filename=str(html_path), url_fetcher=_offline_fetcher(html_path.parent)).write_pdf(
+            str(pdf_path))
 
 
 def quarto_available() -> bool:
@@ -158,10 +203,13 @@ def render_quarto(notebooks: list[Path], run_dir: Path, *, title: str, pdf: bool
     """Render the combined notebook with ``quarto render`` (HTML; PDF via weasyprint of it)."""
     import nbformat
 
+    from report_kit.report.view import esc
+
     if not quarto_available():
         raise UsageError("--renderer quarto: `quarto` is not on PATH; install it or use the built-in renderer")
     nb = combine(notebooks)
-    nb.cells.insert(0, nbformat.v4.new_raw_cell(f"---\ntitle: \"{title}\"\nexecute:\n  enabled: false\n"
+    # the title as a JSON string (valid YAML) of entities: quarto reads it as Markdown, shows it as text
+    nb.cells.insert(0, nbformat.v4.new_raw_cell(f"---\ntitle: {json.dumps(esc(title))}\nexecute:\n  enabled: false\n"
                                                 f"echo: false\nembed-resources: true\n---"))
     source = run_dir / "report.ipynb"
     nbformat.write(nb, source)
@@ -183,5 +231,5 @@ def render_report(notebooks: list[Path], run_dir: Path, *, title: str, renderer:
                   pdf: bool = True) -> None:
     """Render with the named renderer; ``renderer`` must be one of :data:`RENDERERS`."""
     if renderer not in RENDERERS:
-        raise UsageError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
+        raise ValueError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
     RENDERERS[renderer](notebooks, run_dir, title=title, pdf=pdf)

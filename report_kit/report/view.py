@@ -10,12 +10,14 @@ from __future__ import annotations
 import base64
 import html
 import json
+import math
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from report_kit.audit.compare import CHANGES_NAME
 from report_kit.audit.provenance import INPUTS_DIR
 from report_kit.inputs.spec import SPEC_FILENAME, load_spec
 
@@ -29,7 +31,18 @@ CAUTIONS = (
     "statistician or its registered protocol say otherwise, defer to them.",
 )
 
-LEAD_METHODS = ("neyman", "blocked_neyman", "paired", "cr2")
+#: Characters that HTML or Markdown would read as markup, as numeric character references.
+_MARKUP = {ord(c): f"&#{ord(c)};" for c in "&<>\"'`*_[]()#!|{}~\\$"}
+
+
+def esc(text) -> str:
+    """User-supplied text made safe for HTML and for Markdown: every markup character as an entity.
+
+    ``<script>`` becomes ``&#60;script&#62;`` and ``[a](http://x)`` cannot become
+    a link, so the text reaches the page only as text, in an HTML fragment and in
+    a Markdown paragraph alike. ``None`` becomes an empty string.
+    """
+    return "" if text is None else str(text).translate(_MARKUP)
 
 
 def plan_status(deviations: dict) -> str:
@@ -37,7 +50,7 @@ def plan_status(deviations: dict) -> str:
     if not deviations.get("locked"):
         return ", which was not locked before the analysis (see Deviations from the plan)"
     changes = len(deviations.get("changes") or [])
-    when = deviations.get("locked_at") or "an earlier date"
+    when = esc(deviations.get("locked_at") or "an earlier date")
     if changes == 0:
         return f", locked on {when} and unchanged since"
     return f", locked on {when}; {changes} key(s) changed since — see Deviations from the plan"
@@ -48,29 +61,19 @@ def cautions(deviations: dict) -> tuple[str, ...]:
     return CAUTIONS[:-1] + (CAUTIONS[-1].format(plan_status=plan_status(deviations)),)
 
 
-def estimate_role(row: dict, first_seen: set) -> str:
-    """'lead' for the first design-based unadjusted estimate of an outcome, else its role.
-
-    The lead is the estimator the design implies (Neyman, block-weighted, paired,
-    or CR2 for clusters); Lin is 'adjusted'; Horvitz–Thompson is a 'check'.
-    """
-    key = (row["outcome"], row["estimand"], row.get("subgroup"))
-    if row.get("method") in LEAD_METHODS and row["estimator"] == "unadjusted" and key not in first_seen:
-        first_seen.add(key)
-        return "lead"
-    if row["estimator"] == "adjusted":
-        return "adjusted"
-    return "check" if row.get("method") == "horvitz_thompson" else ""
-
-
 @dataclass(frozen=True, kw_only=True)
 class RunView:
-    """A run folder as the notebooks see it."""
+    """A run folder as the notebooks see it: ``results.json``, the recorded spec, ``changes.json``.
+
+    Everything a notebook shows comes from here; the view selects and labels
+    what the analysis stored, it computes no statistic.
+    """
 
     run_dir: Path
     project_dir: Path
     results: dict
     spec: object
+    changes: dict | None = None
 
     @classmethod
     def open(cls, run_dir: str | Path, project_dir: str | Path) -> RunView:
@@ -78,7 +81,25 @@ class RunView:
         results = json.loads((run_dir / "results.json").read_text(encoding="utf-8"))
         recorded = run_dir / INPUTS_DIR / SPEC_FILENAME
         spec = load_spec(recorded) if recorded.exists() else load_spec(project_dir)
-        return cls(run_dir=run_dir, project_dir=project_dir, results=results, spec=spec)
+        changes_path = run_dir / CHANGES_NAME
+        changes = json.loads(changes_path.read_text(encoding="utf-8")) if changes_path.is_file() else None
+        return cls(run_dir=run_dir, project_dir=project_dir, results=results, spec=spec, changes=changes)
+
+    @property
+    def level(self) -> int:
+        """The confidence level in percent, from ``analysis.alpha``."""
+        return round(100 * (1 - self.spec.analysis.alpha))
+
+    @property
+    def tool_version(self) -> str:
+        from report_kit import __version__
+
+        return __version__
+
+    @property
+    def plan(self) -> dict:
+        """The ``plan`` section (deviations from the locked plan); unlocked when absent."""
+        return self.results.get("plan") or {"locked": False, "changes": []}
 
     def arrays(self) -> dict[str, np.ndarray]:
         folder = self.run_dir / "analysis"
@@ -98,6 +119,43 @@ class RunView:
                 return o.family
         return None
 
+    def estimates(self) -> pd.DataFrame:
+        """``results["estimates"]`` as a frame (``role`` filled with "" for older runs)."""
+        frame = pd.DataFrame(self.results.get("estimates") or [])
+        if len(frame) and "role" not in frame:
+            frame["role"] = ""
+        return frame
+
+    def main_estimates(self) -> pd.DataFrame:
+        """Whole-sample ATE/ITT rows of the spec's outcomes, by outcome order then role."""
+        est = self.estimates()
+        if not len(est):
+            return est
+        order = {o.column: k for k, o in enumerate(self.spec.outcomes)}
+        main = est[est["estimand"].isin(["ATE", "ITT"]) & est["subgroup"].isna() & est["outcome"].isin(order)]
+        key = {i: (order[main.at[i, "outcome"]], ROLE_ORDER.get(main.at[i, "role"], 9), i) for i in main.index}
+        return main.loc[sorted(main.index, key=key.get)]
+
+    def lead_estimates(self) -> pd.DataFrame:
+        """The pre-specified (``role == "lead"``) row of each outcome."""
+        main = self.main_estimates()
+        return main[main["role"] == "lead"] if len(main) else main
+
+    def take_up(self) -> pd.DataFrame:
+        """The first stage (``role == "take_up"``) and the CACE rows."""
+        est = self.estimates()
+        if not len(est):
+            return est
+        return est[(est["role"] == "take_up") | (est["estimand"] == "CACE")]
+
+    def multiplicity_table(self) -> pd.DataFrame:
+        """``results["multiplicity_table"]`` as a frame, one row per outcome."""
+        return pd.DataFrame(self.results.get("multiplicity_table") or [])
+
+
+#: Order of the rows of one outcome in the estimates tables.
+ROLE_ORDER = {"lead": 0, "adjusted": 1, "check": 2, "": 3, "take_up": 4}
+
 
 def fmt(value, digits: int = 3) -> str:
     """Format a number for a table cell: fixed significant digits, '—' for missing."""
@@ -110,8 +168,27 @@ def fmt(value, digits: int = 3) -> str:
     return f"{value:.{digits}g}" if abs(value) < 1e-3 and value != 0 else f"{value:,.{digits}f}"
 
 
+def fmt_count(digits: str | None, log10: float | None = None) -> str:
+    """A count of assignments for a reader: ``12,870`` when short, ``≈ 10^4,301`` when huge.
+
+    ``digits`` is ``results.json``'s ``n_assignments`` (a string of digits or
+    ``None``) and ``log10`` its ``n_assignments_log10``. Never prints more than
+    20 digits in a row.
+    """
+    if digits is not None and len(str(digits)) <= 15:
+        return f"{int(digits):,}"
+    if log10 is None:
+        return "more than can be written out" if digits is None else f"≈ 10^{len(str(digits)) - 1:,}"
+    exponent = int(math.floor(float(log10)))
+    mantissa = 10 ** (float(log10) - exponent)
+    if mantissa >= 9.95:
+        mantissa, exponent = 1.0, exponent + 1
+    return f"≈ {mantissa:.1f} × 10^{exponent:,}"
+
+
 def fmt_p(p) -> str:
-    if p is None:
+    """A p-value for a table cell: three decimals, '< 0.001', '—' when missing."""
+    if p is None or not np.isfinite(p):
         return "—"
     return "< 0.001" if p < 0.001 else f"{p:.3f}"
 
@@ -167,27 +244,24 @@ def show_figure(view: RunView, fig, name: str, *, caption: str = "") -> None:
 
 
 def say(text: str) -> None:
-    """Display a paragraph of Markdown."""
+    """Display a paragraph of Markdown written by the template; pass user text through :func:`esc`."""
     from IPython.display import Markdown, display
 
     display(Markdown(text))
 
 
 def callout(text: str, kind: str = "info") -> None:
-    """Display a boxed paragraph (kind: info | caution | change)."""
+    """Display a boxed HTML paragraph (kind: info | caution | change); pass user text through :func:`esc`."""
     from IPython.display import HTML, display
 
     display(HTML(f'<div class="rk-box rk-{kind}">{text}</div>'))
 
 
 def show_opening(view: RunView) -> None:
-    """Open a report: the study summary, then the standing cautions with the plan-lock status."""
-    from report_kit.audit.planlock import plan_deviations
-
+    """Open a report: the study summary (escaped), then the standing cautions with the plan-lock status."""
     if view.spec.summary:
-        say(view.spec.summary.strip())
-    deviations = plan_deviations(view.run_dir / "inputs")
-    callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(deviations)) + "</ul>",
+        say(esc(view.spec.summary.strip()))
+    callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(view.plan)) + "</ul>",
             "caution")
 
 

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 from report_kit.audit.archive import archive_run, safe_extract, verify_checksums
-from report_kit.errors import UsageError, VerificationError
+from report_kit.errors import ArchiveError, UsageError, VerificationError
 from report_kit.inputs.model import InputFile
 from report_kit.audit.provenance import RunRecord, write_manifest, write_results_json, write_ro_crate
 
@@ -159,7 +159,7 @@ GOOD = {"p/runs/r/results.json": b"{}", "p/runs/r/manifest.json": b"{}"}
 ])
 def test_safe_extract_refuses_unsafe_members(tmp_path, members, symlink, message):
     bad = _zip(tmp_path / "bad.zip", members, symlink=symlink)
-    with pytest.raises(UsageError, match=message.replace("\\", "\\\\").replace("(", r"\(")):
+    with pytest.raises(ArchiveError, match=message.replace("\\", "\\\\").replace("(", r"\(")):
         safe_extract(bad, tmp_path / "x")
     assert not any((tmp_path / "x").rglob("*"))      # nothing was written
     assert not (tmp_path / "evil.txt").exists()
@@ -171,19 +171,19 @@ def test_safe_extract_refuses_repeated_members(tmp_path):
         zf.writestr("p/runs/r/results.json", b"{}")
         with pytest.warns(UserWarning, match="Duplicate name"):   # zipfile's own warning
             zf.writestr("p/runs/r/results.json", b"{}")
-    with pytest.raises(UsageError, match="appears twice"):
+    with pytest.raises(ArchiveError, match="appears twice"):
         safe_extract(path, tmp_path / "x")
     aliased = _zip(tmp_path / "alias.zip", {**GOOD, "p/runs/r/a.txt": b"1", "p/runs//r/a.txt": b"2"})
-    with pytest.raises(UsageError, match="member 'p/runs//r/a.txt' appears twice"):
+    with pytest.raises(ArchiveError, match="member 'p/runs//r/a.txt' appears twice"):
         safe_extract(aliased, tmp_path / "y")
     clash = _zip(tmp_path / "clash.zip", {**GOOD, "p/runs/r/x": b"1", "p/runs/r/x/y": b"2"})
-    with pytest.raises(UsageError, match="cannot extract member 'p/runs/r/x/y'"):
+    with pytest.raises(ArchiveError, match="cannot extract member 'p/runs/r/x/y'"):
         safe_extract(clash, tmp_path / "z")
 
 
 def test_safe_extract_usage_errors(tmp_path):
     (tmp_path / "not.zip").write_text("plain text")
-    with pytest.raises(UsageError, match="not.zip: not a zip file"):
+    with pytest.raises(ArchiveError, match="not.zip: not a zip file"):
         safe_extract(tmp_path / "not.zip", tmp_path / "x")
     good = _zip(tmp_path / "good.zip", GOOD)
     (tmp_path / "full").mkdir()
@@ -191,9 +191,9 @@ def test_safe_extract_usage_errors(tmp_path):
     with pytest.raises(UsageError, match="must be a new or empty folder"):
         safe_extract(good, tmp_path / "full")
     no_run = _zip(tmp_path / "norun.zip", {"p/design.yaml": b"x"})
-    with pytest.raises(UsageError, match="expected exactly one run folder under <project>/runs/; found 0"):
+    with pytest.raises(ArchiveError, match="expected exactly one run folder under <project>/runs/; found 0"):
         safe_extract(no_run, tmp_path / "y")
-    with pytest.raises(UsageError, match="would unpack to 4 bytes \\(limit 3\\)"):
+    with pytest.raises(ArchiveError, match="would unpack to 4 bytes \\(limit 3\\)"):
         safe_extract(good, tmp_path / "z", max_bytes=3)
 
 

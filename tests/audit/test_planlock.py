@@ -178,3 +178,17 @@ def test_errors_name_the_file(project, tmp_path):
         lock_plan(project)
     with pytest.raises(UsageError, match="`force` must be True or False; got 'yes'"):
         lock_plan(project, force="yes")
+
+
+def test_plan_is_in_results_and_a_later_lock_does_not_break_verify(project_copy):
+    """results.json holds the plan section; locking after a run leaves that run verifiable."""
+    from report_kit.audit.verify import verify_run
+    from report_kit.pipeline import RunOptions, analyse_project, run_project
+
+    example = project_copy("quiet-hours")
+    run = run_project(example, RunOptions(pdf=False))
+    assert run.results["plan"]["locked"] is False and run.results["plan"]["changes"] == []
+    lock_plan(example)
+    assert analyse_project(example)["plan"]["locked"] is True  # a new analysis sees the lock
+    report = verify_run(run.run_dir, analyse=analyse_project)
+    assert report.ok, report.result_differences

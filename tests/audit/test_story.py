@@ -64,11 +64,16 @@ def test_correction_story(project_copy, tmp_path):
     assert tables["data/pupils.csv"]["units_removed"] == ["P1030"]
     assert tables["data/pupils.csv"]["n_changed_cells"] == 0
     assert d["summary"]["results_changed"] > 0
+    # The changes section is stored beside results.json and equals `report-kit diff` (the run id aside).
+    stored = json.loads((run_b / "changes.json").read_text(encoding="utf-8"))
+    assert stored == d and "changes" not in json.loads((run_b / "results.json").read_text(encoding="utf-8"))
 
-    assert invoke("verify", run_b).exit_code == 0
+    verified = invoke("verify", run_b)
+    assert verified.exit_code == 0 and "changes.json): re-derived" in verified.output
     archived = invoke("archive", run_b, "-o", tmp_path / "run_b.zip")
     assert archived.exit_code == 0, archived.output
-    assert invoke("verify", tmp_path / "run_b.zip").exit_code == 0
+    from_zip = invoke("verify", tmp_path / "run_b.zip")
+    assert from_zip.exit_code == 0 and "changes.json): not re-derived" in from_zip.output
 
     raw = pupils.read_bytes()
     pupils.write_bytes(raw[:-2] + (b"9" if raw[-2:-1] != b"9" else b"8") + raw[-1:])

@@ -224,9 +224,9 @@ def test_usage_errors(tmp_path):
     (tmp_path / "notes.txt").write_text("x")
     with pytest.raises(UsageError, match="notes.txt: not a run folder or a .zip archive"):
         verify_run(tmp_path / "notes.txt", analyse=analyse)
-    with pytest.raises(UsageError, match="`analyse` must be callable; got str"):
+    with pytest.raises(TypeError, match="`analyse` must be callable; got str"):
         verify_run(run, analyse="analyse_project")
-    with pytest.raises(UsageError, match="`rel_tol` must be a finite number >= 0; got -1"):
+    with pytest.raises(ValueError, match="`rel_tol` must be a finite number >= 0; got -1"):
         verify_run(run, analyse=analyse, rel_tol=-1)
 
 
@@ -237,16 +237,25 @@ def test_report_to_dict_is_plain(tmp_path):
     assert out["ok"] is True and out["rel_tol"] == 1e-9 and out["input_mismatches"] == []
 
 
-def test_rerun_gets_the_plan_lock(tmp_path):
-    run = _make_run(tmp_path)
+@pytest.mark.parametrize("copies", [True, False])
+def test_rerun_gets_the_plan_lock_the_run_had(tmp_path, copies):
+    """A run with input copies kept its lock (or had none): a lock made later is not used.
+    A run without copies (older layout) can only use the project's lock."""
+    run = _make_run(tmp_path, copies=copies)
     (run.parent.parent / "design.lock").write_text('{"schema": "report-kit/plan-lock/1"}\n')
     seen = []
 
     def recording(project):
-        seen.append((project / "design.lock").read_text())
+        lock = project / "design.lock"
+        seen.append(lock.read_text() if lock.is_file() else None)
         return analyse(project)
 
     report = verify_run(run, analyse=recording)
-    assert report.ok
-    assert seen == ['{"schema": "report-kit/plan-lock/1"}\n']
-    assert report.rerun_inputs[-1] == {"path": "design.lock", "source": "project folder"}
+    if copies:
+        assert seen == [None] and all(s["path"] != "design.lock" for s in report.rerun_inputs)
+        (run / "inputs" / "design.lock").write_text('{"schema": "report-kit/plan-lock/1", "kept": 1}\n')
+        verify_run(run, analyse=recording)
+        assert seen[-1] == '{"schema": "report-kit/plan-lock/1", "kept": 1}\n'
+    else:
+        assert seen == ['{"schema": "report-kit/plan-lock/1"}\n']
+        assert report.rerun_inputs[-1] == {"path": "design.lock", "source": "project folder"}

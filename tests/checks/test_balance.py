@@ -14,6 +14,7 @@ from matplotlib.figure import Figure
 from scipy import stats
 
 from report_kit.checks import balance
+from report_kit.checks import flow as flow_module
 from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
 from report_kit.report.figures_checks import plot_balance
 from report_kit.inputs.model import AnalysisSpec, ComplianceSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
@@ -207,7 +208,8 @@ def test_monte_carlo_plus_one_rule():
     res = balance.omnibus_balance(x, z, [Z], "monte_carlo")
     assert res["p_value"] == pytest.approx(1 / 4)
     assert res["draws"] == 3
-    assert res["mc_std_error"] == pytest.approx(0.0)
+    # the engine's one Monte Carlo SE: sqrt(p (1 - p) / B) with the reported p = 1/4, B = 3 (hand-computed)
+    assert res["mc_std_error"] == pytest.approx(np.sqrt(0.25 * 0.75 / 3), rel=1e-15)
 
 
 def test_bernoulli_enumeration_skips_draws_with_an_empty_arm():
@@ -331,7 +333,7 @@ def test_participant_flow_counts_by_hand():
     frame = flow_frame()
     outcomes = (OutcomeSpec(column="y", label="Y"), OutcomeSpec(column="w", label="W", family="secondary"))
     study = make_study(frame, outcomes=outcomes, received="got")
-    flow = balance.participant_flow(study)
+    flow = flow_module.participant_flow(study)
     by = {(r["outcome"], r["arm"]): r for r in flow}
     # counted by hand from flow_frame()
     assert by["y", "treated"] == {"outcome": "y", "arm": "treated", "randomized": 4, "received_treatment": 3,
@@ -341,9 +343,9 @@ def test_participant_flow_counts_by_hand():
     assert by["w", "control"]["outcome_observed"] == 4
     estimates = [{"outcome": "y", "estimand": "ATE", "estimator": "unadjusted", "subgroup": None,
                   "n_treated": 2, "n_control": 2}]
-    by = {(r["outcome"], r["arm"]): r for r in balance.participant_flow(study, estimates)}
+    by = {(r["outcome"], r["arm"]): r for r in flow_module.participant_flow(study, estimates)}
     assert by["y", "treated"]["analysed"] == 2 and by["w", "treated"]["analysed"] == 4
-    no_compliance = balance.participant_flow(make_study(frame))
+    no_compliance = flow_module.participant_flow(make_study(frame))
     assert no_compliance[0]["received_treatment"] is None
 
 
@@ -365,5 +367,5 @@ def test_plot_balance_draws_one_row_per_covariate():
     assert any(t.get_text() == "n/a" for t in ax.texts)
     lo, hi = ax.get_xlim()
     assert lo < -0.31 and hi > 0.31
-    with pytest.raises(UsageError, match="'covariates'"):
+    with pytest.raises(ValueError, match="'covariates'"):
         plot_balance({"omnibus": {}})

@@ -422,3 +422,26 @@ def test_subprocess_has_no_traceback(project_copy):
     done = subprocess.run([sys.executable, "-m", "report_kit.cli", "check", str(project)],
                           capture_output=True, text=True)
     assert done.returncode == 1 and "Traceback" not in done.stderr and "no data rows" in done.stderr
+
+
+def test_library_misuse_is_type_or_value_error_and_the_cli_keeps_exit_2(tmp_path):
+    """From Python, a wrong argument is a plain TypeError/ValueError; from the command line, exit 2."""
+    from report_kit.audit.verify import verify_run
+    from report_kit.errors import ReportKitError
+    from report_kit.planning.core import planned_power
+    from report_kit.validate import finite_number, tolerance
+
+    calls = (
+        (lambda: finite_number("x", "abc"), TypeError),
+        (lambda: finite_number("x", float("inf")), ValueError),
+        (lambda: tolerance("rel_tol", "1"), TypeError),
+        (lambda: tolerance("rel_tol", -1), ValueError),
+        (lambda: verify_run(tmp_path, analyse="not callable"), TypeError),
+        (lambda: planned_power(n_treated=10, n_control=10, alpha=1.5), ValueError),
+    )
+    for call, kind in calls:
+        with pytest.raises(kind) as err:
+            call()
+        assert not isinstance(err.value, ReportKitError)
+    result = CliRunner().invoke(main, ["diff", str(tmp_path), str(tmp_path), "--max-items", "0"])
+    assert result.exit_code == 2 and "Traceback" not in result.output

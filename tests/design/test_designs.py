@@ -587,3 +587,13 @@ def test_numpy_bounded_integers_do_not_depend_on_call_boundaries():
         joined = np.concatenate([one.integers(0, high, size=s) for s in sizes])
         assert np.array_equal(joined, two.integers(0, high, size=sum(sizes)))
         assert one.bit_generator.state == two.bit_generator.state
+
+
+def test_count_text_short_and_huge():
+    from report_kit.design.mechanism import mechanism_from_arrays
+
+    small = mechanism_from_arrays("complete", [1] * 5 + [0] * 7)
+    assert small.count_text() == str(math.comb(12, 5))           # 792, exact (math.comb)
+    big = mechanism_from_arrays("complete", [1] * 7150 + [0] * 7150)
+    assert big.count_text() is None                               # thousands of digits: never built
+    assert abs(big.log10_count() - math.log10(math.comb(14300, 7150))) < 1e-6   # math.log10 of the exact int

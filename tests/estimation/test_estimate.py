@@ -89,6 +89,28 @@ def direct_cr2(X, y, groups):
     return beta, bread @ meat @ bread
 
 
+def direct_bm_df(X, groups, contrast):
+    """Bell & McCaffrey (2002) degrees of freedom of a CR2 contrast, written out densely.
+
+    Published formula (Bell & McCaffrey 2002, Section 3; Imbens & Kolesar 2016, eq. 9 with
+    Omega = I): G has one column per cluster, g_g = (I - H)_{.,g} A_g a_g with
+    a = X (X'X)^{-1} contrast and A_g = (I - H_gg)^{-1/2}; df = tr(G'G)^2 / tr((G'G)^2).
+    Independent of the library: full n x n matrices and scipy.linalg.sqrtm.
+    """
+    X = np.asarray(X, float)
+    bread = np.linalg.inv(X.T @ X)
+    H = X @ bread @ X.T
+    M = np.eye(X.shape[0]) - H
+    a = X @ bread @ np.asarray(contrast, float)
+    cols = []
+    for g in np.unique(groups):
+        m = groups == g
+        A = np.real(scipy.linalg.sqrtm(np.linalg.pinv(np.eye(m.sum()) - H[np.ix_(m, m)])))
+        cols.append(M[:, m] @ (A @ a[m]))
+    GtG = np.column_stack(cols).T @ np.column_stack(cols)
+    return np.trace(GtG) ** 2 / np.trace(GtG @ GtG)
+
+
 def two_sls(y, d, z):
     """Just-identified 2SLS of y on (1, d) with instruments (1, z), by numpy.
 
@@ -104,6 +126,17 @@ def two_sls(y, d, z):
     meat = (Z * (e ** 2 / (1 - h))[:, None]).T @ Z
     V = ZX_inv @ meat @ ZX_inv.T
     return beta[1], math.sqrt(V[1, 1])
+
+
+def pashley_miratrix_small(sizes, tau):
+    """Small-block variance of Pashley & Miratrix (2021), count form, for sum (n_k/N) tau_k:
+    sum_k n_k^2 / ((N - 2 n_k)(N + sum_j n_j^2 / (N - 2 n_j))) (tau_k - tau_bar_w)^2."""
+    n = np.asarray(sizes, float)
+    N = n.sum()
+    tau = np.asarray(tau, float)
+    centre = np.dot(n / N, tau)
+    denom = (N - 2 * n) * (N + np.sum(n ** 2 / (N - 2 * n)))
+    return float(np.sum(n ** 2 / denom * (tau - centre) ** 2))
 
 
 def assignments(n, n1):
@@ -179,15 +212,15 @@ def test_cluster_must_not_mix_arms_or_span_blocks():
         estimate_effects(y, z, mechanism="blocked_cluster", block=block, cluster=labels)
 
 
-def test_covariates_with_missing_values_in_kept_rows_are_refused():
+def test_covariates_with_missing_values_in_kept_rows_are_refused_on_request():
     y, z = complete_data()
     X = np.random.default_rng(0).normal(size=(30, 2))
     X[3, 1] = np.nan
-    with pytest.raises(DesignError, match=r"covariates have missing values in 1 of the 30 units"):
-        estimate_adjusted(y, z, X, mechanism="complete")
+    with pytest.raises(DesignError, match=r"covariate\(s\) \['x2'\] have missing values in 1 of the 30 units"):
+        estimate_adjusted(y, z, X, mechanism="complete", missing_covariates="refuse")
     y = y.copy()
     y[3] = np.nan  # the row is dropped for the outcome, so its covariate does not matter
-    est = estimate_adjusted(y, z, X, mechanism="complete")
+    est = estimate_adjusted(y, z, X, mechanism="complete", missing_covariates="refuse")
     assert est.n_treated + est.n_control == 29
     assert est.n_missing == 1
 
@@ -558,8 +591,8 @@ def test_matched_pairs_match_scipy_paired_t_test():
 
 def test_small_blocks_use_paired_formula_beside_neyman_blocks():
     # Documented hybrid: blocks with >= 2 units per arm get Neyman's variance; blocks with a
-    # single treated (or control) unit enter through J/(J-1) sum (a_j - mean a)^2,
-    # a_j = w_j tau_j (Imai, King & Nall 2009, weighted paired estimator). Written out here.
+    # single treated (or control) unit enter through the small-block estimator of
+    # Pashley & Miratrix (2021), written here in their count form.
     rng = np.random.default_rng(4)
     sizes = [6, 8, 3, 4, 2, 3]
     treated = [3, 4, 1, 1, 1, 2]          # blocks 2..5 have a single treated or control unit
@@ -573,8 +606,7 @@ def test_small_blocks_use_paired_formula_beside_neyman_blocks():
     for b in (0, 1):
         yt, yc = y[(block == b) & (z == 1)], y[(block == b) & (z == 0)]
         var += w[b] ** 2 * (svar(yt) / yt.size + svar(yc) / yc.size)
-    a = w[2:] * tau[2:]
-    var += 4 / 3 * np.sum((a - a.mean()) ** 2)
+    var += (sum(sizes[2:]) / sum(sizes)) ** 2 * pashley_miratrix_small(sizes[2:], tau[2:])
     assert est.estimate == pytest.approx(np.dot(w, tau), rel=1e-12)
     assert est.std_error == pytest.approx(math.sqrt(var), rel=1e-10)
     assert est.variance_rule == "neyman+paired"
@@ -584,7 +616,7 @@ def test_a_single_small_block_switches_to_paired_for_all_blocks():
     y, z, block = blocked_data()
     z = z.copy()
     z[block == 2] = [1, 0, 0, 0, 0, 0]
-    with pytest.warns(ReportKitWarning, match="exactly one block"):
+    with pytest.warns(ReportKitWarning, match="used for all blocks"):
         est = estimate_effects(y, z, mechanism="blocked", block=block)[0]
     assert est.variance_rule == "paired" and est.df == 3
 
@@ -613,7 +645,11 @@ def test_cr2_matches_direct_bell_mccaffrey_implementation():
     beta, V = direct_cr2(sm.add_constant(z.astype(float)), y, cl)
     assert cr2.estimate == pytest.approx(beta[1], rel=1e-10)
     assert cr2.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-8)
-    assert cr2.df == 9 - 2 and cr2.method == "cr2"
+    assert cr2.method == "cr2"
+    # Bell & McCaffrey (2002) df, dense hand-written implementation above.
+    ref_df = direct_bm_df(sm.add_constant(z.astype(float)), cl, [0.0, 1.0])
+    assert cr2.df == pytest.approx(ref_df, rel=1e-9)
+    assert cr2.df < 9 - 2
 
 
 def test_cr2_equals_statsmodels_cluster_robust_up_to_known_factor():
@@ -667,11 +703,13 @@ def test_blocked_cluster_cr2_equals_saturated_regression_contrast():
     assert cr2.estimate == pytest.approx(contrast @ beta, rel=1e-10)
     assert cr2.std_error == pytest.approx(math.sqrt(contrast @ V @ contrast), rel=1e-8)
     assert ht.method == "horvitz_thompson"
+    # Bell & McCaffrey (2002) df of the block-weighted contrast (dense reference above).
+    assert cr2.df == pytest.approx(direct_bm_df(D, cl, contrast), rel=1e-9)
 
 
 def test_cluster_pairs_use_paired_formula():
-    # Cluster matched pairs: Imai, King & Nall (2009) variance J/(J-1) sum (a_j - mean a)^2
-    # with a_j = w_j tau_j, w_j the pair's share of units; written out here.
+    # Cluster matched pairs of unequal sizes: Pashley & Miratrix (2021) small-block variance
+    # (count form written out above), shift invariant unlike J/(J-1) sum (w_j tau_j - mean)^2.
     sizes = [2, 4, 3, 3, 5, 2, 1, 4, 3, 2]
     treated = [1, 0, 0, 1, 1, 0, 0, 1, 1, 0]
     y, z, cl, _ = cluster_data(sizes, treated, seed=13)
@@ -681,7 +719,8 @@ def test_cluster_pairs_use_paired_formula():
     tau = np.array([y[(block == j) & (z == 1)].mean() - y[(block == j) & (z == 0)].mean() for j in range(5)])
     a = w * tau
     assert cr2.estimate == pytest.approx(a.sum(), rel=1e-12)
-    assert cr2.std_error == pytest.approx(math.sqrt(5 / 4 * np.sum((a - a.mean()) ** 2)), rel=1e-10)
+    assert cr2.std_error == pytest.approx(math.sqrt(pashley_miratrix_small(np.bincount(block), tau)),
+                                          rel=1e-10)
     assert cr2.variance_rule == "paired" and cr2.df == 4
 
 
@@ -763,22 +802,31 @@ def test_lin_cluster_matches_direct_cr2():
     beta, V = direct_cr2(lin_design(z, X), y, cl)
     assert est.estimate == pytest.approx(beta[1], rel=1e-10)
     assert est.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-8)
-    assert est.df == 10 - 2 and est.method == "lin_cr2"
+    assert est.method == "lin_cr2"
+    # Bell & McCaffrey (2002) df of the Lin contrast (dense reference above).
+    D = lin_design(z, X)
+    assert est.df == pytest.approx(direct_bm_df(D, cl, np.eye(D.shape[1])[1]), rel=1e-9)
 
 
-def test_lin_blocked_cluster_matches_direct_cr2():
+@pytest.mark.parametrize(("sizes", "treated", "seed"), [
+    ([2, 3, 4, 2, 3, 1, 2, 5, 3, 2, 4, 3, 2, 2, 3, 4],
+     [1, 1, 0, 0, 1, 0, 1, 0, 1, 0, 0, 1, 0, 1, 1, 0], 14),
+    # clusters of many sizes, several of each: the batched CR2 adjustment (one eigh per
+    # cluster size) must equal the cluster-by-cluster formula to 1e-10
+    ([1, 2, 3, 4, 5, 6, 2, 3, 4, 2, 5, 1, 3, 3, 2, 4, 6, 2, 3, 1, 2, 4, 3, 2], [1, 0] * 12, 31),
+])
+def test_lin_blocked_cluster_matches_direct_cr2(sizes, treated, seed):
     # Blocked cluster design, >= 2 clusters per arm in every block: Lin regression with
     # centred, interacted block indicators; CR2 by the direct Bell & McCaffrey (2002) code.
-    sizes = [2, 3, 4, 2, 3, 1, 2, 5, 3, 2, 4, 3, 2, 2, 3, 4]
-    treated = [1, 1, 0, 0, 1, 0, 1, 0, 1, 0, 0, 1, 0, 1, 1, 0]
-    y, z, cl, X = cluster_data(sizes, treated, seed=14, covariates=2)
-    block = np.repeat([0, 1, 2, 3], 4)[cl]
+    y, z, cl, X = cluster_data(sizes, treated, seed=seed, covariates=2)
+    block = np.repeat([0, 1, 2, 3], len(sizes) // 4)[cl]
     est = estimate_adjusted(y, z, X, mechanism="blocked_cluster", block=block, cluster=cl)
     dummies = (block[:, None] == np.arange(1, 4)[None, :]).astype(float)
     beta, V = direct_cr2(lin_design(z, np.column_stack([X, dummies])), y, cl)
     assert est.estimate == pytest.approx(beta[1], rel=1e-10)
-    assert est.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-8)
-    assert est.df == 16 - 4 - 1
+    assert est.std_error == pytest.approx(math.sqrt(V[1, 1]), rel=1e-10)
+    D = lin_design(z, np.column_stack([X, dummies]))
+    assert est.df == pytest.approx(direct_bm_df(D, cl, np.eye(D.shape[1])[1]), rel=1e-9)
 
 
 def test_lin_cluster_pairs_use_additive_pair_effects_with_cr2():
@@ -1006,16 +1054,27 @@ def test_study_estimates_cluster_design_reports_cr2_and_ht():
     rows = study_estimates(make_study(frame, mechanism="cluster", cluster="village"))
     check_rows(rows)
     assert [(r["estimand"], r["method"]) for r in rows] == [("ATE", "cr2"), ("ATE", "horvitz_thompson")]
-    assert rows[0]["df"] == 6.0
+    # Bell & McCaffrey (2002) df (dense reference above), not clusters - 2.
+    assert rows[0]["df"] == pytest.approx(direct_bm_df(sm.add_constant(z.astype(float)), cl, [0, 1]),
+                                          rel=1e-9)
 
 
-def test_study_estimates_names_covariates_with_missing_values():
+def test_study_estimates_impute_missing_covariates_with_mean_and_indicator():
+    # Missing baseline values: mean imputation plus a missingness indicator (the balance
+    # check's rule), then Lin's regression; reference: statsmodels OLS with HC2 on the
+    # same design written out here (Lin 2013 interacted form).
     y, z = complete_data()
     base = np.random.default_rng(1).normal(size=30)
-    base[7] = np.nan
+    base[np.r_[np.flatnonzero(z == 1)[:2], np.flatnonzero(z == 0)[:3]]] = np.nan
     frame = pd.DataFrame({"unit_id": np.arange(30), "assigned": z, "score": y, "baseline": base})
-    with pytest.raises(DesignError, match=r"covariate\(s\) \['baseline'\] have missing values"):
-        study_estimates(make_study(frame, covariates=["baseline"]))
+    rows = study_estimates(make_study(frame, covariates=["baseline"]))
+    adjusted = [r for r in rows if r["estimator"] == "adjusted"]
+    miss = np.isnan(base)
+    filled = np.where(miss, base[~miss].mean(), base)
+    X = np.column_stack([filled, miss.astype(float)])
+    fit = sm.OLS(y, lin_design(z, X)).fit(cov_type="HC2")
+    assert adjusted[0]["estimate"] == pytest.approx(fit.params[1], rel=1e-10)
+    assert adjusted[0]["std_error"] == pytest.approx(fit.bse[1], rel=1e-8)
 
 
 def test_estimate_to_dict_is_json_safe_and_keeps_fields():

@@ -282,3 +282,29 @@ def test_study_multiplicity_missing_and_invalid_inputs():
     with pytest.raises(UsageError, match="shared null draws cover outcomes"):
         mt.study_multiplicity(TESTS, OUTCOMES, {"primary": {"outcomes": ["a"], "observed": [1.0],
                                                             "null": np.ones((3, 1)), "method": "exact"}})
+
+
+def test_multiplicity_table_matches_a_pandas_pivot():
+    """One row per outcome; reference: pandas.pivot_table of the same rows (general-purpose library)."""
+    import pandas as pd
+
+    from report_kit.inference.multiplicity import multiplicity_table
+
+    entries = [
+        {"outcome": "b", "family": "primary", "method": "holm", "p_value": 0.02, "p_adjusted": 0.04, "lead": True},
+        {"outcome": "b", "family": "primary", "method": "bh", "p_value": 0.02, "p_adjusted": 0.03, "lead": False},
+        {"outcome": "a", "family": "primary", "method": "holm", "p_value": 0.30, "p_adjusted": 0.30, "lead": True},
+        {"outcome": "a", "family": "primary", "method": "bh", "p_value": 0.30, "p_adjusted": 0.30, "lead": False},
+        {"outcome": "c", "family": "secondary", "method": "bh", "p_value": None, "p_adjusted": None, "lead": False},
+    ]
+    table = multiplicity_table(entries)
+    wide = pd.DataFrame(entries).pivot_table(index=["outcome", "family"], columns="method", values="p_adjusted",
+                                             aggfunc="first", sort=False)
+    assert [r["outcome"] for r in table] == ["b", "a", "c"]
+    for row in table[:2]:
+        for method, value in row["adjusted"].items():
+            assert value == wide.loc[(row["outcome"], row["family"]), method]
+    assert table[0]["lead_method"] == "holm" and table[2]["lead_method"] is None
+    assert list(table[0]["adjusted"]) == ["holm", "bh"] and table[2]["adjusted"] == {"bh": None}
+    with pytest.raises(TypeError):
+        multiplicity_table("holm")

@@ -511,7 +511,7 @@ def test_validation_messages():
     with pytest.raises(UsageError) as err:
         randomization_test(y, mech, source=src, statistic="t")
     assert str(err.value) == "`statistic` must be one of {'mean_difference', 'rank_sum', 'studentized', 'ks'}; got 't'"
-    with pytest.raises(UsageError, match="`null_effect` must be a finite number; got inf"):
+    with pytest.raises(ValueError, match="`null_effect` must be a finite number; got inf"):
         randomization_test(y, mech, source=src, null_effect=float("inf"))
     with pytest.raises(DataError, match="shape \\(n, m\\) with n = 4 units; got \\(5,\\)"):
         randomization_test(np.arange(5.0), mech, source=src)

@@ -153,3 +153,19 @@ def test_check_command_reports_arm_problems_without_traceback(tmp_path):
                   ["none", "a", "b"])
     result = CliRunner().invoke(main, ["check", bad])
     assert result.exit_code == 1 and "design.factors.fb[0]: 'c' is not one of design.arms" in result.output
+
+
+def test_single_arm_blocks_handling_is_refused_with_arms(tmp_path):
+    # design.single_arm_blocks drops or pools blocks of a 0/1 column; with design.arms every block needs every arm.
+    path = project(tmp_path, {"mechanism": "blocked", "block": "site", "arms": THREE, "single_arm_blocks": "drop"},
+                   THREE * 2, extra_cols={"site": ["a"] * 3 + ["b"] * 3})
+    message = spec_error(path)
+    assert "design.single_arm_blocks" in message and "every block must hold every arm" in message
+
+
+def test_arm_lists_are_bounded(tmp_path):
+    # Bounded specs: at most 50 arms, arm labels of at most 200 characters.
+    message = spec_error(project(tmp_path, {"arms": [f"a{i}" for i in range(51)]}, THREE * 2))
+    assert "design.arms" in message and "at most 50" in message
+    message = spec_error(project(tmp_path, {"arms": ["usual", "x" * 201]}, THREE * 2))
+    assert "at most 200" in message

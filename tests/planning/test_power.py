@@ -16,7 +16,6 @@ from statsmodels.stats.power import NormalIndPower, TTestIndPower
 
 from report_kit.planning import power as pw
 from report_kit.cli import main
-from report_kit.errors import UsageError
 from report_kit.inputs.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
 
 from tests.conftest import copy_project
@@ -47,11 +46,11 @@ def test_mde_multiplier_is_about_2_8():
 
 
 def test_mde_validation_messages():
-    with pytest.raises(UsageError, match=r"`se` must be a positive number; got -1"):
+    with pytest.raises(ValueError, match=r"`se` must be a positive number; got -1"):
         pw.mde(-1)
-    with pytest.raises(UsageError, match=r"`alpha` must be in \(0, 1\); got 1.5"):
+    with pytest.raises(ValueError, match=r"`alpha` must be in \(0, 1\); got 1.5"):
         pw.mde(1, alpha=1.5)
-    with pytest.raises(UsageError, match=r"`alternative` must be one of \{'two-sided', 'greater', 'less'\}; got 'both'"):
+    with pytest.raises(ValueError, match=r"`alternative` must be one of \{'two-sided', 'greater', 'less'\}; got 'both'"):
         pw.mde(1, alternative="both")
 
 
@@ -104,11 +103,11 @@ def test_cluster_design_uses_design_effect():
 
 
 def test_planned_power_validation_messages():
-    with pytest.raises(UsageError, match=r"`icc` must be in \[0, 1\]; got 1.5"):
+    with pytest.raises(ValueError, match=r"`icc` must be in \[0, 1\]; got 1.5"):
         pw.planned_power(n_treated=10, n_control=10, icc=1.5)
-    with pytest.raises(UsageError, match="more than two clusters"):
+    with pytest.raises(ValueError, match="more than two clusters"):
         pw.planned_power(n_treated=10, n_control=10, cluster_size=10)
-    with pytest.raises(UsageError, match=r"`n_treated` must be a positive number"):
+    with pytest.raises(ValueError, match=r"`n_treated` must be a positive number"):
         pw.planned_power(n_treated=0, n_control=10)
     json.dumps(pw.planned_power(n_treated=10, n_control=12, effect=1.0), allow_nan=False)
 
@@ -155,11 +154,11 @@ def test_simulated_power_is_reproducible_and_validates():
     a = pw.simulated_power(*args, randomization_test(99, 1), n_sims=40, seed=5)
     b = pw.simulated_power(*args, randomization_test(99, 1), n_sims=40, seed=5)
     assert a == b
-    with pytest.raises(UsageError, match=r"`test` must return a p-value in \[0, 1\]; got 2.0"):
+    with pytest.raises(ValueError, match=r"`test` must return a p-value in \[0, 1\]; got 2.0"):
         pw.simulated_power(*args, lambda y, z: 2.0, n_sims=3, seed=5)
-    with pytest.raises(UsageError, match=r"`n_sims` must be a positive integer; got 0"):
+    with pytest.raises(ValueError, match=r"`n_sims` must be a positive integer; got 0"):
         pw.simulated_power(*args, lambda y, z: 0.5, n_sims=0, seed=5)
-    with pytest.raises(UsageError, match=r"`draw_assignment` returned shape \(3,\)"):
+    with pytest.raises(ValueError, match=r"`draw_assignment` returned shape \(3,\)"):
         pw.simulated_power(y0, 0.5, lambda rng: np.zeros(3), lambda y, z: 0.5, n_sims=3, seed=5)
     # a test that always rejects gives power 1 with zero Monte Carlo error
     one = pw.simulated_power(*args, lambda y, z: 0.0, n_sims=10, seed=5)
@@ -245,7 +244,7 @@ def test_cli_power_quiet_hours_matches_statsmodels(tmp_path):
     # complete randomization of the 12 branches, half treated (design.probability absent -> 0.5)
     assert plan["design"]["n_units"] == len(units) == 12
     assert (plan["design"]["n_treated"], plan["design"]["n_control"]) == (6, 6)
-    assert plan["design"]["sizes_from"] == "data" and plan["design"]["design_effect"] == 1.0
+    assert plan["design"]["sizes_from"] == "assignment" and plan["design"]["design_effect"] == 1.0
     # Reference: statsmodels.stats.power.TTestIndPower (noncentral t, df = 10).
     ref = TTestIndPower()
     assert plan["analytic"]["power"] == pytest.approx(ref.power(effect_size=60 / 50, nobs1=6, ratio=1.0,
@@ -262,6 +261,8 @@ def test_cli_power_quiet_hours_matches_statsmodels(tmp_path):
 def test_cli_power_tutoring_clubs_design_effect_by_hand(tmp_path):
     project = copy_project("tutoring-clubs", tmp_path)
     pupils = pd.read_csv(project / "data" / "pupils.csv")
+    # before the assignment: the treatment column is not in the units table yet
+    pupils.drop(columns="assigned").to_csv(project / "data" / "pupils.csv", index=False)
     n, clusters = len(pupils), pupils["school"].nunique()
     m, rho, sd, effect = n / clusters, 0.05, 10.0, 3.0
     result = power_cli(project, "--sd", sd, "--icc", rho, "--effect", effect, "--json")
@@ -284,6 +285,66 @@ def test_cli_power_tutoring_clubs_design_effect_by_hand(tmp_path):
     text = power_cli(project, "--sd", sd, "--icc", rho).stdout
     assert f"clusters       {clusters} ({clusters // 2} treated, {clusters // 2} control)" in text
     assert "design effect  " in text and "blocks         4" in text
+
+
+def test_cli_power_uses_actual_arm_sizes_once_assigned(tmp_path):
+    # Reference: statsmodels TTestIndPower with the arm sizes counted here from the units
+    # table's filled treatment column (the actual arms, not the expected ones).
+    project = copy_project("quiet-hours", tmp_path)
+    spec = yaml.safe_load((project / "design.yaml").read_text())
+    units = pd.read_csv(project / spec["data"]["units"])
+    units.loc[units.index[:2], spec["design"]["treatment"]] = 1     # unequal arms on purpose
+    units.to_csv(project / spec["data"]["units"], index=False)
+    z = units[spec["design"]["treatment"]]
+    n1, n0 = int(z.sum()), int((1 - z).sum())
+    assert n1 != n0
+    plan = json.loads(power_cli(project, "--sd", 2.0, "--effect", 1.5, "--json").stdout)
+    assert plan["design"]["sizes_from"] == "assignment"
+    assert (plan["design"]["n_treated"], plan["design"]["n_control"]) == (n1, n0)
+    expected = TTestIndPower().power(effect_size=1.5 / 2.0, nobs1=n1, ratio=n0 / n1, alpha=0.05)
+    assert plan["analytic"]["power"] == pytest.approx(expected, rel=1e-9)
+
+
+@pytest.mark.parametrize("attrition", [0.0, 0.1, 0.3])
+def test_planned_mde_with_attrition_matches_statsmodels_on_analysed_units(attrition):
+    # statsmodels TTestIndPower.solve_power on the units left after attrition
+    # (n_a (1 - attrition) per arm): same noncentral t (Cohen 1988), same df.
+    n1, n0 = 120, 80
+    # solve_power stops at a loose tolerance (1e-5); statsmodels' power at our MDE must
+    # hit the target to 1e-9.
+    res = pw.planned_power(n_treated=n1, n_control=n0, sd=1.0, power=0.8, attrition=attrition)
+    ref = TTestIndPower().solve_power(effect_size=None, nobs1=n1 * (1 - attrition),
+                                      ratio=n0 / n1, alpha=0.05, power=0.8)
+    assert res["mde"] == pytest.approx(ref, rel=1e-5)
+    at_mde = TTestIndPower().power(effect_size=res["mde"], nobs1=n1 * (1 - attrition), ratio=n0 / n1,
+                                   alpha=0.05)
+    assert at_mde == pytest.approx(0.8, abs=1e-9)
+    assert res["n_treated_analysed"] == pytest.approx(n1 * (1 - attrition))
+
+
+def test_planned_mde_of_cace_is_itt_mde_over_takeup_difference():
+    # Bloom (1984): the complier effect is the ITT divided by the take-up difference, so
+    # the smallest detectable complier effect is MDE_ITT / (c1 - c0); 0.7 - 0.1 = 0.6.
+    res = pw.planned_power(n_treated=100, n_control=100, sd=1.0, takeup_treated=0.7, takeup_control=0.1)
+    ref = TTestIndPower().solve_power(effect_size=None, nobs1=100, ratio=1.0, alpha=0.05, power=0.8)
+    assert res["mde"] == pytest.approx(ref, rel=1e-5)           # solve_power's tolerance
+    assert res["mde_cace"] == pytest.approx(res["mde"] / 0.6, rel=1e-12)
+    with pytest.raises(ValueError, match="go together"):
+        pw.planned_power(n_treated=100, n_control=100, takeup_treated=0.7)
+    with pytest.raises(ValueError, match="must exceed"):
+        pw.planned_power(n_treated=100, n_control=100, takeup_treated=0.2, takeup_control=0.3)
+
+
+def test_cluster_attrition_shrinks_cluster_size_not_clusters():
+    # Donner & Klar (2000): with m (1 - a) units observed per cluster the design effect is
+    # 1 + (m (1 - a) - 1) rho and the df stay J - 2; written out here.
+    m, rho, a, J = 20, 0.1, 0.25, 30
+    res = pw.planned_power(n_treated=J / 2 * m, n_control=J / 2 * m, sd=1.0, icc=rho, cluster_size=m,
+                           attrition=a)
+    deff = 1 + (m * (1 - a) - 1) * rho
+    n_arm = J / 2 * m * (1 - a)
+    assert res["df"] == J - 2
+    assert res["std_error"] == pytest.approx(np.sqrt(deff * 2 / n_arm), rel=1e-12)
 
 
 def test_cli_power_missing_or_conflicting_options(tmp_path):
@@ -309,23 +370,23 @@ def test_cli_power_missing_or_conflicting_options(tmp_path):
 
 def test_plan_power_library_messages(tmp_path):
     quiet = copy_project("quiet-hours", tmp_path)
-    with pytest.raises(UsageError, match=r"`sd` is required"):
+    with pytest.raises(ValueError, match=r"`sd` is required"):
         pw.plan_power(quiet)
-    with pytest.raises(UsageError, match=r"`sd` must be a positive number; got 0"):
+    with pytest.raises(ValueError, match=r"`sd` must be a positive number; got 0"):
         pw.plan_power(quiet, sd=0)
-    with pytest.raises(UsageError, match=r"`simulate` must be a whole number >= 0; got -1"):
+    with pytest.raises(ValueError, match=r"`simulate` must be a whole number >= 0; got -1"):
         pw.plan_power(quiet, sd=1, simulate=-1)
-    with pytest.raises(UsageError, match=r"`n_clusters` applies to cluster designs only"):
+    with pytest.raises(ValueError, match=r"`n_clusters` applies to cluster designs only"):
         pw.plan_power(quiet, sd=1, n_clusters=10)
     clubs = copy_project("tutoring-clubs", tmp_path)
-    with pytest.raises(UsageError, match=r"cannot simulate: a blocked cluster design needs its blocks"):
+    with pytest.raises(ValueError, match=r"cannot simulate: a blocked cluster design needs its blocks"):
         pw.plan_power(without_data(clubs), sd=1, icc=0.1, n_clusters=20, cluster_size=10, simulate=5)
     def complete_at_one_half(design):
         design.update(mechanism="complete", probability=0.5)
         del design["block"]
 
     share = edit_design(without_data(copy_project("arrival-signs", tmp_path / "b")), complete_at_one_half)
-    with pytest.raises(UsageError, match=r"design.probability 0.5 treats 5 of 10 units; the planned sizes treat 4"):
+    with pytest.raises(ValueError, match=r"design.probability 0.5 treats 5 of 10 units; the planned sizes treat 4"):
         pw.plan_power(share, sd=1, n_treated=4, n_control=6)
 
 
@@ -395,3 +456,19 @@ def test_plan_power_matched_pairs_from_data(tmp_path):
     assert less.simulation["effect"] == pytest.approx(-less.analytic["mde"])
     # 2**14 = 16384 assignments > 10 000: random draws
     assert less.simulation["test_method"] == "monte_carlo" and less.simulation["alternative"] == "less"
+
+
+def test_plan_power_uses_the_share_treated_in_the_data(tmp_path):
+    """3 of 8 units treated in the data: the plan uses 3 and 5, not 4 and 4 (counted by hand).
+
+    Analytic power checked against statsmodels' two-sample t-test power with ratio 5/3.
+    """
+    from tests.bad_inputs.builder import Case, units_with
+
+    units = units_with(("S7,1,", "S7,0,"))   # S1, S3, S5 treated
+    project = Case(name="p", code=0, words=(), units=units).build(tmp_path)
+    plan = pw.plan_power(project, sd=10.0, effect=12.0)
+    assert (plan.analytic["n_treated"], plan.analytic["n_control"]) == (3, 5)
+    # statsmodels TTestIndPower (outside reference): nobs1 = 3 treated, ratio = 5/3
+    expected = TTestIndPower().power(effect_size=1.2, nobs1=3, ratio=5 / 3, alpha=0.05)
+    assert plan.analytic["power"] == pytest.approx(expected, rel=1e-6)

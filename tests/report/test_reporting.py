@@ -39,14 +39,36 @@ def test_cautions_state_the_plan_lock():
     assert any("not proof of benefit or of safety" in c for c in cautions({"locked": False}))
 
 
-def test_estimate_roles():
-    from report_kit.report.view import estimate_role
+def test_run_view_selects_what_the_analysis_stored(tmp_path):
+    """The view only selects rows by the stored ``role``; it never decides a role itself."""
+    from report_kit.inputs.spec import load_spec
+    from report_kit.report import RunView
+    from tests.conftest import copy_project
 
-    seen: set = set()
-    rows = [
-        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "unadjusted", "method": "cr2"},
-        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "unadjusted", "method": "horvitz_thompson"},
-        {"outcome": "y", "estimand": "ITT", "subgroup": None, "estimator": "adjusted", "method": "lin_cr2"},
-        {"outcome": "y", "estimand": "CACE", "subgroup": None, "estimator": "unadjusted", "method": "wald_delta"},
-    ]
-    assert [estimate_role(r, seen) for r in rows] == ["lead", "check", "adjusted", ""]
+    spec = load_spec(copy_project("tutoring-clubs", tmp_path))
+    first, second = spec.outcomes[0].column, spec.outcomes[1].column
+
+    def row(outcome, estimand, role, subgroup=None):
+        return {"outcome": outcome, "estimand": estimand, "subgroup": subgroup, "role": role, "estimate": 1.0}
+
+    results = {"estimates": [
+        row(second, "ITT", "lead"), row(first, "ITT", "check"), row(first, "ITT", "adjusted"),
+        row(first, "ITT", "lead"), row("attended", "ITT", "take_up"), row(first, "CACE", ""),
+        row(first, "subgroup ATE", "lead", subgroup="g=a"),
+    ]}
+    view = RunView(run_dir=tmp_path, project_dir=tmp_path, results=results, spec=spec)
+    main = view.main_estimates()
+    assert list(zip(main["outcome"], main["role"])) == [
+        (first, "lead"), (first, "adjusted"), (first, "check"), (second, "lead")]
+    assert list(view.lead_estimates()["outcome"]) == [first, second]
+    assert list(zip(view.take_up()["outcome"], view.take_up()["estimand"])) == [("attended", "ITT"), (first, "CACE")]
+    assert view.plan == {"locked": False, "changes": []} and view.changes is None
+    assert view.level == round(100 * (1 - spec.analysis.alpha))
+
+
+def test_fmt_count_short_and_huge():
+    from report_kit.report.view import fmt_count
+
+    assert fmt_count("924", 2.9656) == "924"
+    assert fmt_count(None, 4301.3) == "≈ 2.0 × 10^4,301"
+    assert fmt_count(None, 6.99999) == "≈ 1.0 × 10^7"
