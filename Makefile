@@ -29,6 +29,7 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/sampler.py
 	$(BIN)/python benchmarks/engine_pass.py
 	$(BIN)/python benchmarks/floor.py
+	$(BIN)/python benchmarks/exact.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info

@@ -140,12 +140,66 @@ def renewal_nudges(rng: np.random.Generator) -> None:
                       visits_after=visits)).to_csv(ROOT / "renewal-nudges" / "data" / "members.csv", index=False)
 
 
+#: ``design.seed`` of projects/collection-postcards: the seed that drew its assignment.
+COLLECTION_POSTCARDS_SEED = 20261202
+
+
+def collection_postcards(rng: np.random.Generator) -> None:
+    """Large complete randomization with a 0/1 outcome: 8,000 households, half sent a postcard.
+
+    An invented town's postcard announcing a free bulky-waste collection; the
+    primary outcome is whether the household booked a collection (0/1), the
+    secondary one the number of items it set out (0..8). With C(8000, 4000)
+    assignments nothing can be listed; the tests are exact through their
+    lattice laws (hypergeometric for the 0/1 outcome, the FFT law for the counts).
+    """
+    from report_kit.design.mechanism import draw_assignment
+
+    n = 8000
+    ids = [f"H{k:05d}" for k in range(1, n + 1)]
+    z = draw_assignment("complete", ids, seed=COLLECTION_POSTCARDS_SEED).astype(int)
+    size = rng.integers(1, 7, size=n)
+    booked = (rng.random(n) < 0.17 + 0.015 * z + 0.01 * (size - 3)).astype(int)
+    items = np.where(booked == 1, np.clip(rng.poisson(2.5 + 0.2 * z + 0.3 * size), 1, 8), 0)
+    pd.DataFrame(dict(household=ids, postcard=z, household_size=size, booked=booked,
+                      items_set_out=items)).to_csv(ROOT / "collection-postcards" / "data" / "households.csv",
+                                                   index=False)
+
+
+#: ``design.seed`` of projects/rooftop-shade: the seed that drew its (rerandomized) assignment.
+ROOFTOP_SHADE_SEED = 20261203
+
+
+def rooftop_shade(rng: np.random.Generator) -> None:
+    """Rerandomized trial: 20 invented apartment blocks, 10 given rooftop shade sails.
+
+    The assignment was redrawn from ``ROOFTOP_SHADE_SEED`` until the
+    Mahalanobis distance of the means of last summer's electricity use and the
+    number of floors was at most 0.5 (``design.rerandomization`` in the spec),
+    with report-kit's own documented algorithm, so ``report-kit check``
+    reproduces it.
+    """
+    from report_kit.design.rerandomization import Rerandomization, draw_rerandomized
+
+    names = [f"Block {c}" for c in "ABCDEFGHIJKLMNOPQRST"]
+    floors = rng.integers(3, 13, size=20)
+    last_summer = (180 + 22 * floors + rng.normal(0, 40, size=20)).round()
+    criterion = Rerandomization.from_arrays(np.column_stack([last_summer, floors]), 0.5)
+    z = draw_rerandomized("complete", names, criterion, seed=ROOFTOP_SHADE_SEED)[0].astype(int)
+    this_summer = (last_summer * 1.04 - 18 * z + rng.normal(0, 15, size=20)).round()
+    pd.DataFrame(dict(building=names, shade=z, floors=floors, kwh_last_summer=last_summer,
+                      kwh_this_summer=this_summer)).to_csv(ROOT / "rooftop-shade" / "data" / "buildings.csv",
+                                                           index=False)
+
+
 GENERATORS = {
     "tutoring-clubs": lambda: tutoring_clubs(np.random.default_rng(20261201)),
     "quiet-hours": lambda: quiet_hours(np.random.default_rng(7)),
     "arrival-signs": lambda: arrival_signs(np.random.default_rng(11)),
     "water-letters": lambda: water_letters(np.random.default_rng(31)),
     "renewal-nudges": lambda: renewal_nudges(np.random.default_rng(47)),
+    "collection-postcards": lambda: collection_postcards(np.random.default_rng(23)),
+    "rooftop-shade": lambda: rooftop_shade(np.random.default_rng(29)),
 }
 
 

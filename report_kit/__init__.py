@@ -29,16 +29,20 @@ _PUBLIC = {
     # design
     "Mechanism": "design.mechanism", "AssignmentSource": "design.mechanism",
     "mechanism_from_arrays": "design.mechanism", "draw_assignment": "design.mechanism",
+    "Rerandomization": "design.rerandomization", "draw_rerandomized": "design.rerandomization",
+    "mahalanobis_imbalance": "design.rerandomization", "rerandomized_assignments": "design.rerandomization",
     # inference
     "randomization_test": "inference.randomization", "null_distribution": "inference.randomization",
     "invert_test": "inference.inversion",
     "holm": "inference.multiplicity", "benjamini_hochberg": "inference.multiplicity",
     "westfall_young": "inference.multiplicity", "inference_scope": "inference.scope",
     "ChunkMap": "inference.engine", "serial_chunk_map": "inference.engine",
+    "treated_sum_law": "inference.exact", "weighted_block_law": "inference.exact",
+    "exact_law_test": "inference.exact_tests",
     # estimation
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",
-    "estimate_subgroups": "estimation.subgroups",
+    "estimate_subgroups": "estimation.subgroups", "rerandomized_interval": "estimation.rerandomized",
     # checks
     "covariate_balance": "checks.balance", "mahalanobis_balance_test": "checks.balance",
     "participant_flow": "checks.flow",

@@ -11,6 +11,7 @@ Deterministic: the same study gives the same dict, whatever the machine.
 from __future__ import annotations
 
 import logging
+import math
 import warnings
 from dataclasses import dataclass, field
 
@@ -25,6 +26,7 @@ from report_kit.inference.scope import inference_scope
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inference.engine import ChunkMap
+from report_kit.estimation.rerandomized import study_rerandomized_intervals
 from report_kit.inputs.model import Study
 from report_kit.estimation.roles import estimate_roles
 from report_kit.inference.multiplicity import SharedNull, multiplicity_table, study_multiplicity
@@ -49,7 +51,7 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
     """The ``design`` section: counts of units, arms, blocks, clusters and assignments."""
     z = study.z
     block, cluster = study.block, study.cluster
-    return {
+    summary = {
         "mechanism": study.spec.design.mechanism,
         "n_units": int(z.size),
         "n_treated": int(z.sum()),
@@ -62,6 +64,12 @@ def design_summary(study: Study, rand: StudyRandomization | None = None, *,
         "inference_method": None if rand is None else rand.method,
         "draws": None if rand is None else int(rand.draws),
     }
+    if rand is not None and rand.rerandomization is not None:
+        summary["rerandomization"] = rand.rerandomization
+        # the acceptable assignments: their size is known only when they were all listed
+        listed = rand.n_assignments
+        summary["n_assignments_log10"] = None if listed is None else round(math.log10(int(listed)), 6)
+    return summary
 
 
 def shared_nulls(study: Study, rand: StudyRandomization) -> dict[str, SharedNull]:
@@ -151,4 +159,6 @@ def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -
     }
     if study.handling:  # only when design.yaml declares a data-handling option
         results["data_handling"] = list(study.handling)
+    if study.spec.design.rerandomization is not None:
+        results["rerandomization_intervals"] = study_rerandomized_intervals(study)
     return results, plot_arrays(study, rand)

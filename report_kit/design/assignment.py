@@ -69,6 +69,7 @@ def redraw(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
         units, or a share that treats nobody); the message names design.yaml.
     """
     from report_kit.design.mechanism import draw_assignment
+    from report_kit.design.rerandomization import draw_rerandomized
 
     design = spec.design
     if design.seed is None:
@@ -76,13 +77,15 @@ def redraw(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
                         "such as `seed: 20261201` under design:")
     if design.multi_arm:
         return _redraw_arms(spec, frame)
+    labels = dict(block=None if design.block is None else frame[design.block].to_numpy(),
+                  cluster=None if design.cluster is None else frame[design.cluster].to_numpy(),
+                  probability=design.probability)
+    ids = frame[spec.data.id].to_numpy()
     try:
-        return draw_assignment(
-            design.mechanism, frame[spec.data.id].to_numpy(), seed=design.seed,
-            block=None if design.block is None else frame[design.block].to_numpy(),
-            cluster=None if design.cluster is None else frame[design.cluster].to_numpy(),
-            probability=design.probability,
-        )
+        if design.rerandomization is not None:
+            return draw_rerandomized(design.mechanism, ids, study_criterion(spec, frame), seed=design.seed,
+                                     **labels)[0]
+        return draw_assignment(design.mechanism, ids, seed=design.seed, **labels)
     except ReportKitError as err:
         share = "" if design.probability is None else f" with design.probability {design.probability:g}"
         raise DesignError(f"{spec.path}: design.seed {design.seed}: cannot draw a {design.mechanism} "
@@ -101,6 +104,18 @@ def _redraw_arms(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
     except DesignError as err:
         raise DesignError(f"{spec.path}: design.seed {design.seed}: cannot draw a {design.mechanism} assignment "
                           f"of {len(design.arms)} arms for {spec.project_dir / spec.data.units}: {err}") from err
+def study_criterion(spec: Spec, frame: pd.DataFrame):
+    """The :class:`~report_kit.design.rerandomization.Rerandomization` of ``design.rerandomization``, or None.
+
+    Covariates are taken from ``frame`` in its row order.
+    """
+    from report_kit.design.rerandomization import Rerandomization
+
+    rer = spec.design.rerandomization
+    if rer is None:
+        return None
+    x = np.column_stack([pd.to_numeric(frame[c]).to_numpy(dtype=float) for c in rer.covariates])
+    return Rerandomization.from_arrays(x, rer.max_distance, rer.covariates)
 
 
 def check_assignment(study: Study) -> AssignmentCheck:

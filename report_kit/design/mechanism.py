@@ -459,6 +459,16 @@ class AssignmentSource:
         """Exact total number of assignments of the mechanism."""
         return self.mechanism.count()
 
+    @property
+    def by_chunk_index(self) -> bool:
+        """Whether any chunk can be rebuilt from the mechanism alone (enumeration order or seed stream).
+
+        False for sources that filter the mechanism's assignments (e.g. a
+        rerandomized design's acceptable ones): the engine then reads
+        :meth:`chunks` once and keeps the draws.
+        """
+        return type(self).chunks is AssignmentSource.chunks
+
     def chunks(self) -> Iterator[np.ndarray]:
         """A fresh iterator over the assignments, as ``(k, n)`` ``uint8`` chunks."""
         if self.method == "exact":
@@ -917,8 +927,18 @@ def draw_assignment(kind: str, ids, *, seed: int, block=None, cluster=None, prob
     ndarray of uint8, shape (n,)
         0/1 in the order of the given ``ids``.
     """
-    kind = _check_kind(kind)
     seed = _check_seed(seed)
+    draw = _draw_plan(kind, ids, block=block, cluster=cluster, probability=probability)
+    return draw(np.random.default_rng(seed))
+
+
+def _draw_plan(kind: str, ids, *, block=None, cluster=None, probability=None):
+    """Validate the units once; return ``draw(rng)``: one assignment (steps 2-3 above) in ``ids`` order.
+
+    Each call consumes ``rng`` as one draw of :func:`draw_assignment` does, so
+    repeated calls continue one documented stream (used by rerandomization).
+    """
+    kind = _check_kind(kind)
     p = _check_probability(probability)
     p = 0.5 if p is None else p
     ids = np.asarray(ids)
@@ -934,11 +954,13 @@ def draw_assignment(kind: str, ids, *, seed: int, block=None, cluster=None, prob
     ccodes = _codes(cluster, "cluster", n)[0][order] if kind in _NEEDS_CLUSTER else None
     clabels = np.asarray(cluster)[order] if kind in _NEEDS_CLUSTER else None
     _check_draw_structure(kind, bcodes, ccodes)
-    rng = np.random.default_rng(seed)
-    z_sorted = _DRAWS[kind](rng, n, p, bcodes, clabels)
-    out = np.empty(n, dtype=np.uint8)
-    out[order] = z_sorted
-    return out
+
+    def draw(rng: np.random.Generator) -> np.ndarray:
+        out = np.empty(n, dtype=np.uint8)
+        out[order] = _DRAWS[kind](rng, n, p, bcodes, clabels)
+        return out
+
+    return draw
 
 
 def _id_order(ids: np.ndarray) -> np.ndarray:

@@ -461,7 +461,11 @@ class _Request:
 
 
 def _draws_of(source) -> _Draws:
-    return source if isinstance(source, _Draws) else MechanismDraws(source)
+    if isinstance(source, _Draws):
+        return source
+    if isinstance(source, AssignmentSource) and not source.by_chunk_index:
+        return StoredDraws.from_arrays(source.chunks, source.mechanism.n, source.method, source.weights)
+    return MechanismDraws(source)
 
 
 def _run(requests: Sequence[_Request], mechanism: Mechanism, source, null_effect: float, *,

@@ -48,8 +48,11 @@ from report_kit.inference.engine import (
     _Request,
     _run,
 )
+from report_kit.design.assignment import study_criterion
 from report_kit.design.mechanism import AssignmentSource, Mechanism, mechanism_from_arrays
+from report_kit.design.rerandomization import RerandomizedSource, rerandomized_assignments
 from report_kit.errors import ReportKitWarning, UsageError
+from report_kit.inference.exact_tests import upgrade_tests
 from report_kit.inference.inversion import Interval, _interval, _LinearInversion, invert_test
 from report_kit.inference.kernels import Kernel  # noqa: F401
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics
@@ -263,6 +266,8 @@ class StudyRandomization:
     alternatives : dict of str to str
     extra : tuple of DrawnStatistics
         The ``extra`` statistics of :func:`study_randomization`, on the same draws.
+    rerandomization : dict or None
+        Criterion, observed distance and acceptance rate of a rerandomized design.
     """
 
     tests: list
@@ -273,6 +278,7 @@ class StudyRandomization:
     distributions: dict
     alternatives: dict
     extra: tuple[DrawnStatistics, ...] = ()
+    rerandomization: dict | None = None
 
     def joint_null(self, outcomes: Sequence[str] | None = None, rtol: float = DEFAULT_RTOL) -> JointNull:
         """Oriented ``(B, m)`` null matrix of ``outcomes`` (default: all), each by its own alternative."""
@@ -301,13 +307,19 @@ def study_assignments(study) -> tuple[Mechanism, AssignmentSource]:
 
     Built from ``study.spec.design`` and the observed assignment; enumerated
     when there are at most ``analysis.max_exact`` assignments, otherwise
-    ``analysis.randomizations`` draws seeded by ``analysis.seed``.
+    ``analysis.randomizations`` draws seeded by ``analysis.seed``. A
+    rerandomized design (``design.rerandomization``) keeps only the acceptable
+    assignments (:func:`~report_kit.design.rerandomization.rerandomized_assignments`).
     """
     design, analysis = study.spec.design, study.spec.analysis
     mechanism = mechanism_from_arrays(
         design.mechanism, study.z, block=study.block, cluster=study.cluster,
         probability=design.probability if design.mechanism == "bernoulli" else None,
     )
+    criterion = study_criterion(study.spec, study.frame)
+    if criterion is not None:
+        return mechanism, rerandomized_assignments(mechanism, criterion, max_exact=analysis.max_exact,
+                                                   draws=analysis.randomizations, seed=analysis.seed)
     source = mechanism.assignments(max_exact=analysis.max_exact, draws=analysis.randomizations,
                                    seed=analysis.seed)
     return mechanism, source
@@ -356,10 +368,33 @@ def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] |
             centre=dists[0].centre[[k, len(names) + k]], method=source.method, weights=dists[0].weights)
         inv = _LinearInversion(pair, DEFAULT_RTOL, mechanism.fixed_arms_within_blocks)
         intervals.append(_interval(inv, inv.hodges_lehmann(), inv.scale(), "two-sided", level, name).to_dict())
+    rerandomized = isinstance(source, RerandomizedSource)
+    if source.method != "exact" and not rerandomized:
+        tests = upgrade_tests(tests, y, names, mechanism,
+                              resolutions={o.column: o.resolution for o in spec.outcomes})
+    if rerandomized:  # the acceptable assignments: counted only when they were all listed
+        n_text = str(source.draws) if source.method == "exact" else None
+    else:
+        n_text = mechanism.count_text()
     return StudyRandomization(
-        tests=tests, intervals=intervals, n_assignments=mechanism.count_text(),
+        tests=tests, intervals=intervals, n_assignments=n_text,
         method=source.method, draws=source.draws, distributions=per_outcome, alternatives=alts, extra=drawn,
+        rerandomization=_rerandomization_summary(source, mechanism) if rerandomized else None,
     )
+
+
+def _rerandomization_summary(source: RerandomizedSource, mechanism: Mechanism) -> dict:
+    """``design.rerandomization`` of ``results.json``; also notes that Neyman intervals are conservative."""
+    warnings.warn("the assignment was rerandomized: the randomization tests and test-inversion intervals "
+                  "condition on acceptance, while the Neyman standard errors and intervals ignore it and are "
+                  "conservative (Li, Ding & Rubin 2018)", ReportKitWarning, stacklevel=3)
+    crit = source.criterion
+    return {
+        "covariates": list(crit.covariates), "max_distance": crit.max_distance,
+        "observed_distance": _num(float(crit.distances(mechanism.z[None, :])[0])),
+        "acceptance_rate": source.acceptance_rate, "acceptance_rate_method": source.method,
+        "candidates": str(int(source.candidates)),
+    }
 
 
 def _study_requests(y, names, stats, alts, mechanism):

@@ -60,6 +60,9 @@ def arm_spec_problems(design: dict) -> list[str]:
     if design.get("single_arm_blocks", "error") != "error":
         problems.append(f"design.single_arm_blocks: '{design['single_arm_blocks']}' is for 0/1 treatment columns; "
                         "with design.arms every block must hold every arm (remove the key)")
+    if "rerandomization" in design and (len(labels) > 2 or "factors" in design):
+        problems.append("design.rerandomization: given for a multi-arm design; rerandomized designs have two "
+                        "arms (remove the key or list two arms)")
     for key in design.get("arm_labels", {}):
         if arm_text(key) not in first:
             problems.append(f"design.arm_labels.{key}: '{key}' is not one of design.arms ({', '.join(labels)})")

@@ -132,6 +132,7 @@ def _required_columns(spec: Spec) -> dict[str, str]:
         need.setdefault(o.column, f"outcomes[{i}].column")
     for i, c in enumerate(spec.analysis.covariates):
         need.setdefault(c, f"analysis.covariates[{i}]")
+    need.update((c, k) for c, k in rerandomization_columns(spec).items() if c not in need)
     if spec.compliance:
         need.setdefault(spec.compliance.received, "compliance.received")
     for i, g in enumerate(spec.subgroups):
@@ -139,9 +140,19 @@ def _required_columns(spec: Spec) -> dict[str, str]:
     return need
 
 
+def rerandomization_columns(spec: Spec) -> dict[str, str]:
+    """Covariates of ``design.rerandomization`` and their key paths (numeric, a value for every unit)."""
+    rer = spec.design.rerandomization
+    if rer is None:
+        return {}
+    return {c: f"design.rerandomization.covariates[{i}]" for i, c in enumerate(rer.covariates)}
+
+
 def _every_unit_columns(spec: Spec) -> dict[str, str]:
     """Columns that need a value for every unit (no missing values allowed)."""
     need = {spec.design.treatment: "design.treatment"}
+    for col, key in rerandomization_columns(spec).items():
+        need.setdefault(col, key)
     if spec.compliance:
         need.setdefault(spec.compliance.received, "compliance.received")
     if spec.design.block:
@@ -172,6 +183,8 @@ def _check_columns(problems: _Problems, spec: Spec, origin: dict[str, Table]) ->
     numeric = {o.column: f"outcomes[{i}].column" for i, o in enumerate(spec.outcomes)}
     for i, c in enumerate(spec.analysis.covariates):
         numeric.setdefault(c, f"analysis.covariates[{i}]")
+    for col, key in rerandomization_columns(spec).items():
+        numeric.setdefault(col, key)
     for col, key in numeric.items():
         _check_numeric(problems, origin[col], col, id_col, key)
     for col, key in _every_unit_columns(spec).items():

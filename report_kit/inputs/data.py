@@ -28,7 +28,7 @@ from report_kit.errors import DataError
 from report_kit.inputs.checks import (
     _Locator, _Problems, _check_adjustment_covariates, _check_columns, _check_design, _check_drawable, _check_id,
     _check_merge_gaps, _check_no_missing, _check_ranges, _close_hint, _is_missing, _plain,
-    _require_id_column, _rows,
+    _check_numeric, _require_id_column, _rows, rerandomization_columns,
 )
 from report_kit.inputs.handling import apply_handling, handled_missing_columns
 from report_kit.inputs.model import InputFile, Spec, Study
@@ -115,6 +115,14 @@ def load_units_for_assignment(spec: Spec) -> pd.DataFrame:
             continue
         _check_no_missing(problems, units, col, key, id_col)
         labels.append(col)
+    for col, key in rerandomization_columns(spec).items():
+        if col not in units.frame.columns:
+            problems.add(f"{units.path}: column '{col}' (named by {key} in design.yaml) not found"
+                         f"{_close_hint(col, list(units.frame.columns))}; the rerandomized draw needs it "
+                         "in the units table")
+            continue
+        _check_numeric(problems, units, col, id_col, key)
+        _check_no_missing(problems, units, col, key, id_col)
     problems.raise_if_any()
     frame = _normalise_labels(units.frame, labels)
     _check_drawable(problems, spec, frame, units)
@@ -241,7 +249,8 @@ def _coerce(spec: Spec, frame: pd.DataFrame) -> pd.DataFrame:
         frame = normalise_arm_column(frame, spec.design.treatment)
     if spec.compliance:
         frame[spec.compliance.received] = pd.to_numeric(frame[spec.compliance.received]).astype(int)
-    for col in [o.column for o in spec.outcomes] + list(spec.analysis.covariates):
+    columns = [o.column for o in spec.outcomes] + list(spec.analysis.covariates) + list(rerandomization_columns(spec))
+    for col in columns:
         frame[col] = pd.to_numeric(frame[col], errors="coerce").astype(float)
     return frame
 

@@ -27,6 +27,12 @@ class DataSpec:
 
 
 @dataclass(frozen=True, kw_only=True)
+class RerandomizationSpec:
+    covariates: tuple[str, ...]
+    max_distance: float
+
+
+@dataclass(frozen=True, kw_only=True)
 class DesignSpec:
     mechanism: str
     treatment: str
@@ -39,6 +45,7 @@ class DesignSpec:
     factors: tuple[tuple[str, tuple[str, ...]], ...] | None = None  # factorial: (factor, arms where on)
     arm_labels: tuple[tuple[str, str], ...] = ()  # display label of each arm (optional)
     single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
+    rerandomization: RerandomizationSpec | None = None
 
     @property
     def multi_arm(self) -> bool:
@@ -71,6 +78,7 @@ class OutcomeSpec:
     alternative: str = "two-sided"
     statistic: str = "mean_difference"
     range: tuple[float, float] | None = None
+    resolution: float | None = None
 
 
 @dataclass(frozen=True, kw_only=True)

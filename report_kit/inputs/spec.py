@@ -29,6 +29,7 @@ from report_kit.inputs.model import (
     DataSpec,
     DesignSpec,
     OutcomeSpec,
+    RerandomizationSpec,
     Spec,
 )
 
@@ -296,6 +297,9 @@ def cross_field_problems(doc: dict) -> list[str]:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
     problems += arm_spec_problems(design)
+    if "rerandomization" in design and mech == "bernoulli":
+        problems.append("design.rerandomization: a bernoulli design treats a random number of units; "
+                        "rerandomization needs complete, blocked, cluster or matched_pairs")
     problems += _role_problems(doc)
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
@@ -395,6 +399,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             family=o.get("family", "primary"), alternative=o.get("alternative", "two-sided"),
             statistic=o.get("statistic", "mean_difference"),
             range=tuple(float(v) for v in o["range"]) if "range" in o else None,
+            resolution=float(o["resolution"]) if "resolution" in o else None,
         )
         for o in doc["outcomes"]
     )
@@ -413,6 +418,9 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             seed=None if design.get("seed") is None else int(design["seed"]),
             **_arm_keys(design),
             single_arm_blocks=design.get("single_arm_blocks", "error"),
+            rerandomization=None if "rerandomization" not in design else RerandomizationSpec(
+                covariates=tuple(design["rerandomization"]["covariates"]),
+                max_distance=float(design["rerandomization"]["max_distance"])),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),

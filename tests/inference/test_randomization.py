@@ -23,6 +23,7 @@ from scipy import stats
 from report_kit.design.mechanism import mechanism_from_arrays
 from report_kit.errors import DataError, ReportKitWarning, UsageError
 from report_kit.inputs.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
+from report_kit.inference.exact_tests import exact_law_test
 from report_kit.inference.randomization import (
     Interval,
     JointNull,
@@ -555,7 +556,9 @@ def test_study_randomization_sections():
     assert res.method == "monte_carlo" and res.draws == 300
     assert res.n_assignments == str(math.comb(24, 12))  # C(n, k)
     assert [t["outcome"] for t in res.tests] == ["y_a", "y_b", "y_c"]
-    assert all(t.keys() == TEST_KEYS for t in res.tests)
+    # Monte Carlo rows say why no exact law applied; the rank sum has one (inference/exact_tests.py)
+    assert all(t.keys() == TEST_KEYS | {"detail"} for t in res.tests)
+    assert [t["method"] for t in res.tests] == ["monte_carlo", "monte_carlo", "exact"]
     assert [t["statistic"] for t in res.tests] == ["mean_difference", "mean_difference", "rank_sum"]
     assert [i["outcome"] for i in res.intervals] == ["y_a", "y_b", "y_c"]
     assert all(i.keys() == INTERVAL_KEYS and i["level"] == pytest.approx(0.9) for i in res.intervals)
@@ -565,7 +568,12 @@ def test_study_randomization_sections():
     src = mech.assignments(max_exact=100, draws=300, seed=5150)
     direct = randomization_test(study.outcome("y_c"), mech, source=src, statistic="rank_sum",
                                 alternative="greater", outcomes=["y_c"])[0]
-    assert res.tests[2] == direct.to_dict()
+    lattice = exact_law_test(study.outcome("y_c"), mech, statistic="rank_sum", alternative="greater")
+    assert res.tests[2] == {**direct.to_dict(), "p_value": lattice.p_value, "method": "exact", "draws": 0,
+                            "mc_std_error": None, "detail": lattice.detail}
+    assert abs(lattice.p_value - direct.p_value) <= 4 * direct.mc_std_error
+    assert {k: v for k, v in res.tests[0].items() if k != "detail"} == randomization_test(
+        study.outcome("y_a"), mech, source=src, outcomes=["y_a"])[0].to_dict()
     iv = invert_test(study.outcome("y_a"), mech, source=src, level=0.9, outcome="y_a")
     for key, value in iv.to_dict().items():  # same draws; the matrix products differ only in shape
         assert res.intervals[0][key] == (pytest.approx(value, rel=1e-12) if isinstance(value, float) else value)

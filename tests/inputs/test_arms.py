@@ -169,3 +169,11 @@ def test_arm_lists_are_bounded(tmp_path):
     assert "design.arms" in message and "at most 50" in message
     message = spec_error(project(tmp_path, {"arms": ["usual", "x" * 201]}, THREE * 2))
     assert "at most 200" in message
+
+
+def test_rerandomization_is_refused_for_more_than_two_arms(tmp_path):
+    # Rerandomized designs (Morgan & Rubin 2012) are drawn for two arms; the multi-arm draw has no acceptance rule.
+    path = project(tmp_path, {"arms": THREE, "rerandomization": {"covariates": ["y"], "max_distance": 1.0}},
+                   THREE * 2)
+    message = spec_error(path)
+    assert "design.rerandomization" in message and "multi-arm" in message
