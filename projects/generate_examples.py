@@ -94,6 +94,52 @@ def arrival_signs(rng: np.random.Generator) -> None:
     pd.DataFrame(rows).to_csv(ROOT / "arrival-signs" / "data" / "routes.csv", index=False)
 
 
+#: ``design.seed`` of projects/water-letters: the seed that drew its three-arm assignment.
+WATER_LETTERS_SEED = 20261202
+
+
+def water_letters(rng: np.random.Generator) -> None:
+    """Three arms, blocked: 96 households in four neighbourhoods get no letter, a plain letter,
+    or a letter comparing their use with similar homes; the arms are drawn from ``WATER_LETTERS_SEED``."""
+    from report_kit.design.arms import draw_arms
+
+    arms = np.array(["none", "plain", "compare"], dtype=object)
+    areas = ["Eastfold", "Millbrook", "Northcote", "Wyndham"]
+    ids = [f"H{k:03d}" for k in range(1, 97)]
+    area = [areas[k // 24] for k in range(96)]
+    arm = arms[draw_arms("blocked", 3, ids, seed=WATER_LETTERS_SEED, block=area)]
+    shift = {"none": 0.0, "plain": -6.0, "compare": -14.0}
+    prior = rng.normal(310, 55, size=96).round()
+    use = prior * 0.9 + 25 + np.array([shift[a] for a in arm]) + rng.normal(0, 20, size=96)
+    lost = rng.random(96) < np.where(arm == "none", 0.06, 0.04)
+    signup = (rng.random(96) < np.where(arm == "compare", 0.30, np.where(arm == "plain", 0.2, 0.12))).astype(float)
+    frame = pd.DataFrame(dict(household=ids, area=area, letter=arm, use_before=prior,
+                              use_after=np.where(lost, np.nan, use.round(1)), tips_signup=signup))
+    frame.to_csv(ROOT / "water-letters" / "data" / "households.csv", index=False)
+
+
+#: ``design.seed`` of projects/renewal-nudges: the seed that drew its 2x2 factorial assignment.
+RENEWAL_NUDGES_SEED = 20261203
+
+
+def renewal_nudges(rng: np.random.Generator) -> None:
+    """A 2x2 factorial: 160 lapsed members of a (fictional) science museum get a text reminder,
+    a phone call, both, or neither; arms drawn by complete randomization from ``RENEWAL_NUDGES_SEED``."""
+    from report_kit.design.arms import draw_arms
+
+    arms = np.array(["neither", "text", "call", "both"], dtype=object)
+    ids = [f"M{k:04d}" for k in range(1, 161)]
+    arm = arms[draw_arms("complete", 4, ids, seed=RENEWAL_NUDGES_SEED)]
+    text = np.isin(arm, ["text", "both"])
+    call = np.isin(arm, ["call", "both"])
+    visits_before = rng.poisson(3, size=160).astype(float)
+    propensity = -0.8 + 0.5 * text + 0.9 * call - 0.3 * (text & call) + 0.15 * visits_before
+    renewed = (rng.random(160) < 1 / (1 + np.exp(-propensity))).astype(float)
+    visits = rng.poisson(np.clip(1.5 + 0.4 * text + 0.8 * call + 0.5 * visits_before, 0.1, None)).astype(float)
+    pd.DataFrame(dict(member=ids, nudge=arm, visits_before=visits_before, renewed=renewed,
+                      visits_after=visits)).to_csv(ROOT / "renewal-nudges" / "data" / "members.csv", index=False)
+
+
 #: ``design.seed`` of projects/collection-postcards: the seed that drew its assignment.
 COLLECTION_POSTCARDS_SEED = 20261202
 
@@ -150,6 +196,8 @@ GENERATORS = {
     "tutoring-clubs": lambda: tutoring_clubs(np.random.default_rng(20261201)),
     "quiet-hours": lambda: quiet_hours(np.random.default_rng(7)),
     "arrival-signs": lambda: arrival_signs(np.random.default_rng(11)),
+    "water-letters": lambda: water_letters(np.random.default_rng(31)),
+    "renewal-nudges": lambda: renewal_nudges(np.random.default_rng(47)),
     "collection-postcards": lambda: collection_postcards(np.random.default_rng(23)),
     "rooftop-shade": lambda: rooftop_shade(np.random.default_rng(29)),
 }

@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from report_kit.analysis_arms import arm_sections
 from report_kit.checks.attrition import study_attrition_check
 from report_kit.checks.balance import study_balance_check
 from report_kit.checks.flow import participant_flow
@@ -124,6 +125,8 @@ def analyse(study: Study, *, assignment_check: str = "not_checked", chunk_map: C
 
 def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -> tuple[dict, dict]:
     spec = study.spec
+    if spec.design.multi_arm:
+        return {"schema": SCHEMA, **arm_sections(study, assignment_check, chunk_map=chunk_map)}, {}
     log.info("estimates")
     estimates = study_estimates(study)
     log.info("randomization tests, balance and attrition: one pass over the draws")

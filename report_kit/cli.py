@@ -102,8 +102,11 @@ def check(path: Path) -> None:
         raise ReportKitError(f"{study.spec.path}: design.seed does not reproduce column "
                              f"'{d.treatment}' ({len(result.differing_ids)} unit(s) differ)")
     click.echo(f"ok: {study.spec.path}")
-    click.echo(f"  {len(z)} units ({int(z.sum())} treated, {len(z) - int(z.sum())} control), "
-               f"mechanism {d.mechanism}, {len(study.spec.outcomes)} outcome(s)")
+    if d.arms is None:
+        sizes = f"{int(z.sum())} treated, {len(z) - int(z.sum())} control"
+    else:
+        sizes = ", ".join(f"{int((z == k).sum())} {arm}" for k, arm in enumerate(d.arms))
+    click.echo(f"  {len(z)} units ({sizes}), mechanism {d.mechanism}, {len(study.spec.outcomes)} outcome(s)")
     for f in study.inputs:
         click.echo(f"  input {f.path}: {f.rows} rows, sha256 {f.sha256[:16]}…")
     click.echo(f"  {result.describe()}")

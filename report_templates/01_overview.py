@@ -1,3 +1,4 @@
+# report-kit: two-arm
 # %% [markdown]
 # ## About this study
 
@@ -9,8 +10,8 @@ project_dir = ""
 import pandas as pd
 
 from report_kit.report import (
-    RunView, callout, cautions, decimals_for, esc, fmt, fmt_at, fmt_count, headline_cards, p_phrase, points_box,
-    registration_line, say, show_table,
+    ASSIGNMENT_CHECK_WORDS, RunView, callout, decimals_for, esc, fmt_at, fmt_count, headline_cards, p_phrase,
+    points_box, show_opening, show_outcomes, show_table,
 )
 
 view = RunView.open(run_dir, project_dir)
@@ -19,11 +20,7 @@ spec = view.spec
 d = res["design"]
 
 # %%
-if spec.summary:
-    say(esc(spec.summary.strip()))
-if registration_line(spec):
-    callout(registration_line(spec), "info")
-callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(view.plan)) + "</ul>", "caution")
+show_opening(view)
 
 # %% [markdown]
 # ## Main results
@@ -87,17 +84,8 @@ if d.get("n_clusters") is not None:
     rows.append(("Clusters", f"{d['n_clusters']:,}"))
 if d.get("n_assignments") is not None or d.get("n_assignments_log10") is not None:
     rows.append(("Possible assignments", fmt_count(d["n_assignments"], d.get("n_assignments_log10"))))
-check_words = {
-    "reproduced": "re-drawn from the recorded seed: identical",
-    "mismatch": "re-drawn from the recorded seed: DIFFERENT (see check output)",
-    "not_checked": "not checked (no assignment seed recorded)",
-}
-rows.append(("Assignment check", check_words.get(d["assignment_check"], d["assignment_check"])))
+rows.append(("Assignment check", ASSIGNMENT_CHECK_WORDS.get(d["assignment_check"], d["assignment_check"])))
 show_table(view, pd.DataFrame(rows, columns=["Item", "Value"]), "design", caption="The design as randomized")
 
 # %%
-outs = pd.DataFrame(
-    [(o.label, o.column, o.family, o.alternative, o.statistic.replace("_", " ")) for o in spec.outcomes],
-    columns=["Outcome", "Column", "Family", "Alternative", "Test statistic"],
-)
-show_table(view, outs, "outcomes", caption="Pre-specified outcomes")
+show_outcomes(view)

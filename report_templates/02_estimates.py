@@ -1,3 +1,4 @@
+# report-kit: two-arm
 # %% [markdown]
 # ## Average effects
 

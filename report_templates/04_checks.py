@@ -1,3 +1,4 @@
+# report-kit: two-arm
 # %% [markdown]
 # ## Balance on baseline covariates
 

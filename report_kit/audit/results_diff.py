@@ -34,6 +34,9 @@ RECORD_KEYS = {
     "inputs": ("path",),
 }
 
+#: Fields that also identify an entry of a multi-arm run, when set (contrast, factorial effect).
+ARM_KEYS = ("arm", "reference", "factor")
+
 #: Conclusion rules: p-values compared with alpha, intervals compared with zero, signs.
 P_VALUE_FIELDS = {"tests": "p_value", "multiplicity": "p_adjusted",
                   "balance.omnibus": "p_value", "attrition": "p_value"}
@@ -91,6 +94,8 @@ def _walk_list(items: list, section: str, out: dict) -> None:
         if not isinstance(item, dict):
             item = {"value": item}
         key = tuple((k, _hashable(item.get(k))) for k in key_fields) if key_fields else (("#", i),)
+        if key_fields:
+            key += tuple((k, _hashable(item[k])) for k in ARM_KEYS if item.get(k) is not None)
         seen[key] += 1
         if seen[key] > 1:
             key = key + (("#", seen[key]),)

@@ -75,6 +75,8 @@ def redraw(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
     if design.seed is None:
         raise SpecError(f"{spec.path}: design.seed: not set; the assignment is drawn from it — add a line "
                         "such as `seed: 20261201` under design:")
+    if design.multi_arm:
+        return _redraw_arms(spec, frame)
     labels = dict(block=None if design.block is None else frame[design.block].to_numpy(),
                   cluster=None if design.cluster is None else frame[design.cluster].to_numpy(),
                   probability=design.probability)
@@ -90,6 +92,18 @@ def redraw(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
                           f"assignment{share} for {spec.project_dir / spec.data.units}: {err}") from err
 
 
+def _redraw_arms(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
+    """Arm codes (positions in design.arms) drawn from design.seed (``docs/methods/arms.md``)."""
+    from report_kit.design.arms import draw_arms
+
+    design = spec.design
+    try:
+        return draw_arms(design.mechanism, len(design.arms), frame[spec.data.id].to_numpy(), seed=design.seed,
+                         block=None if design.block is None else frame[design.block].to_numpy(),
+                         cluster=None if design.cluster is None else frame[design.cluster].to_numpy())
+    except DesignError as err:
+        raise DesignError(f"{spec.path}: design.seed {design.seed}: cannot draw a {design.mechanism} assignment "
+                          f"of {len(design.arms)} arms for {spec.project_dir / spec.data.units}: {err}") from err
 def study_criterion(spec: Spec, frame: pd.DataFrame):
     """The :class:`~report_kit.design.rerandomization.Rerandomization` of ``design.rerandomization``, or None.
 
@@ -112,7 +126,7 @@ def check_assignment(study: Study) -> AssignmentCheck:
         return AssignmentCheck(status="not_checked", treatment=treatment)
     frame = study.randomized_frame  # every unit as randomized, before any declared data handling
     drawn = redraw(spec, frame).astype(int)
-    z = frame[treatment].to_numpy(dtype=int)
+    z = study.arm_codes(frame)
     differ = np.flatnonzero(drawn != z)
     if differ.size == 0:
         return AssignmentCheck(status="reproduced", seed=seed, treatment=treatment)
@@ -159,7 +173,8 @@ def write_assignment(spec: Spec, frame: pd.DataFrame, *, out: Path | None = None
     if out is not None and not target.parent.is_dir():
         raise UsageError(f"{drawn_target.parent}: no such folder")
     drawn = redraw(spec, frame)
-    table = pd.DataFrame({spec.data.id: frame[spec.data.id].to_numpy(), spec.design.treatment: drawn.astype(int)})
+    values = drawn.astype(int) if spec.design.arms is None else np.asarray(spec.design.arms, dtype=object)[drawn]
+    table = pd.DataFrame({spec.data.id: frame[spec.data.id].to_numpy(), spec.design.treatment: values})
     _write_atomically(table, target, drawn_target)
     return target
 

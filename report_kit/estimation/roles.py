@@ -14,8 +14,9 @@ from collections.abc import Mapping, Sequence
 __all__ = ["LEAD_METHODS", "ROLES", "estimate_roles"]
 
 #: Design-based unadjusted estimators that the assignment mechanism implies:
-#: Neyman difference in means, block-weighted, paired, and CR2 for clusters.
-LEAD_METHODS = ("neyman", "blocked_neyman", "paired", "cr2")
+#: Neyman difference in means, block-weighted, paired, and CR2 for clusters;
+#: for the main effects and interactions of a factorial, the contrast of cell means.
+LEAD_METHODS = ("neyman", "blocked_neyman", "paired", "cr2", "factorial_neyman")
 
 #: Every value ``role`` can take ("" for a row with no special role).
 ROLES = ("lead", "adjusted", "check", "take_up", "")
@@ -24,7 +25,8 @@ ROLES = ("lead", "adjusted", "check", "take_up", "")
 def _role(row: Mapping, seen: set, take_up_column: str | None) -> str:
     if take_up_column is not None and row.get("outcome") == take_up_column and row.get("estimand") == "ITT":
         return "take_up"
-    key = (row.get("outcome"), row.get("estimand"), row.get("subgroup"))
+    key = (row.get("outcome"), row.get("estimand"), row.get("subgroup"),
+           row.get("arm"), row.get("reference"), row.get("factor"))  # the last three: multi-arm rows only
     if row.get("method") in LEAD_METHODS and row.get("estimator") == "unadjusted" and key not in seen:
         seen.add(key)
         return "lead"
@@ -40,7 +42,9 @@ def estimate_roles(rows: Sequence[Mapping], *, take_up_column: str | None = None
     ----------
     rows : sequence of mappings
         Estimate rows with ``outcome``, ``estimand``, ``estimator``,
-        ``subgroup`` and ``method``.
+        ``subgroup`` and ``method`` (multi-arm rows also ``arm``,
+        ``reference`` and ``factor``: each contrast and factorial effect has
+        its own lead).
     take_up_column : str, optional
         The column recording treatment received (``compliance.received``);
         its ITT rows are the first stage and get the role ``"take_up"``.
@@ -49,7 +53,8 @@ def estimate_roles(rows: Sequence[Mapping], *, take_up_column: str | None = None
     -------
     list of str
         ``"lead"`` for the first design-based unadjusted row (method in
-        :data:`LEAD_METHODS`) of each (outcome, estimand, subgroup);
+        :data:`LEAD_METHODS`) of each (outcome, estimand, subgroup[, arm,
+        reference, factor]);
         ``"adjusted"`` for Lin-adjusted rows; ``"check"`` for Horvitz–Thompson;
         ``"take_up"`` for the first stage; ``""`` otherwise.
     """

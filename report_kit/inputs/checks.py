@@ -176,7 +176,8 @@ def _check_columns(problems: _Problems, spec: Spec, origin: dict[str, Table]) ->
     if any(col not in origin for col in _required_columns(spec)):
         return
     id_col = spec.data.id
-    _check_binary(problems, origin[spec.design.treatment], spec.design.treatment, id_col, "design.treatment")
+    if spec.design.arms is None:
+        _check_binary(problems, origin[spec.design.treatment], spec.design.treatment, id_col, "design.treatment")
     if spec.compliance:
         _check_binary(problems, origin[spec.compliance.received], spec.compliance.received, id_col, "compliance.received")
     numeric = {o.column: f"outcomes[{i}].column" for i, o in enumerate(spec.outcomes)}
@@ -357,7 +358,7 @@ def _check_drawable(problems: _Problems, spec: Spec, frame: pd.DataFrame, units:
             problems.add(f"{units.path}: clusters must sit inside one block; cluster(s) spanning blocks: "
                          f"{_label_list(crossing)}; cluster {_show(crossing[0])} is in blocks "
                          f"{_label_list(sorted(members[block].unique().tolist(), key=str))}")
-    if mech == "bernoulli" or problems.items:
+    if mech == "bernoulli" or design.multi_arm or problems.items:
         return
     share = 0.5 if mech == "matched_pairs" or design.probability is None else float(design.probability)
     strata = frame.groupby(block, sort=True) if block else [(None, frame)]

@@ -79,8 +79,12 @@ def load_study(spec: Spec) -> Study:
     frame = _normalise_labels(frame, list(handled_missing_columns(spec)))
     _check_ranges(problems, spec, frame, origin, locate)
     _check_adjustment_covariates(problems, spec, frame, origin, locate)
-    _check_design(problems, spec, frame, units, locate)
+    if spec.design.arms is None:
+        _check_design(problems, spec, frame, units, locate)
     problems.raise_if_any()
+    if spec.design.arms is not None:
+        from report_kit.inputs.arms import check_arms
+        check_arms(spec, frame, origin[spec.design.treatment])
     inputs = tuple(InputFile(path=t.relpath, sha256=t.sha256, rows=len(t.frame)) for t in tables)
     return Study(spec=spec, frame=frame, inputs=inputs, handling=handling,
                  as_randomized=as_randomized if handling else None)
@@ -238,7 +242,11 @@ def _merge(problems: _Problems, units: Table, merged: list[Table], id_col: str) 
 
 def _coerce(spec: Spec, frame: pd.DataFrame) -> pd.DataFrame:
     frame = frame.copy()
-    frame[spec.design.treatment] = pd.to_numeric(frame[spec.design.treatment]).astype(int)
+    if spec.design.arms is None:
+        frame[spec.design.treatment] = pd.to_numeric(frame[spec.design.treatment]).astype(int)
+    else:
+        from report_kit.inputs.arms import normalise_arm_column
+        frame = normalise_arm_column(frame, spec.design.treatment)
     if spec.compliance:
         frame[spec.compliance.received] = pd.to_numeric(frame[spec.compliance.received]).astype(int)
     columns = [o.column for o in spec.outcomes] + list(spec.analysis.covariates) + list(rerandomization_columns(spec))

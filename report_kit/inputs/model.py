@@ -41,9 +41,22 @@ class DesignSpec:
     cluster: str | None = None
     probability: float | None = None
     seed: int | None = None
+    arms: tuple[str, ...] | None = None          # multi-arm: arm labels, reference first
+    contrasts: str = "reference"                 # reference | pairwise
+    factors: tuple[tuple[str, tuple[str, ...]], ...] | None = None  # factorial: (factor, arms where on)
+    arm_display: tuple[tuple[str, str], ...] = ()  # multi-arm: display label of each arm (optional)
     single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
     rerandomization: RerandomizationSpec | None = None
     arm_labels: tuple[str, str] = DEFAULT_ARM_LABELS   # (label of 0, label of 1)
+
+    @property
+    def multi_arm(self) -> bool:
+        """True when the study needs the multi-arm analysis (more than two arms, or a factorial)."""
+        return self.arms is not None and (len(self.arms) > 2 or self.factors is not None)
+
+    def arm_label(self, arm: str) -> str:
+        """The display label of an arm (the arm itself when none is given)."""
+        return dict(self.arm_display).get(arm, arm)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -127,8 +140,11 @@ class InputFile:
 class Study:
     """A validated study: the spec plus one merged row per unit, sorted by id.
 
-    ``frame`` has a fresh RangeIndex. The treatment column holds int 0/1;
-    outcome and covariate columns are float (NaN = missing).
+    ``frame`` has a fresh RangeIndex. The treatment column holds int 0/1, or,
+    when ``design.arms`` is given, the arm labels as text; :attr:`z` then holds
+    each unit's arm position in ``design.arms`` (0 = reference), so a two-arm
+    labelled study reads exactly like a 0/1 one. Outcome and covariate columns
+    are float (NaN = missing).
     """
 
     spec: Spec
@@ -144,7 +160,16 @@ class Study:
 
     @property
     def z(self):
-        return self.frame[self.spec.design.treatment].to_numpy(dtype=int)
+        return self.arm_codes(self.frame)
+
+    def arm_codes(self, frame: pd.DataFrame):
+        """The treatment column of ``frame`` as int codes: 0/1, or positions in ``design.arms``."""
+        arms = self.spec.design.arms
+        column = frame[self.spec.design.treatment]
+        if arms is None:
+            return column.to_numpy(dtype=int)
+        position = {arm: k for k, arm in enumerate(arms)}
+        return column.map(position).to_numpy(dtype=int)
 
     @property
     def block(self):

@@ -28,6 +28,11 @@ design:
   # cluster: household         # cluster, blocked_cluster
   # seed: 1234                 # seed that drew the assignment (checked by `report-kit check`)
   # arm_labels: {{control: "usual service", treated: "new service"}}   # words for the arms coded 0 and 1
+  # arms: [usual, text, call, both]  # more than two arms: the labels in the treatment column, reference first
+  # contrasts: reference       # reference (each arm vs the first) | pairwise
+  # factors:                   # a factorial design: each factor and the arms where it is on
+  #   text: [text, both]
+  #   call: [call, both]
 analysis:
   alpha: 0.05
   covariates: [baseline]       # pre-specified baseline covariates

@@ -22,6 +22,7 @@ import jsonschema
 import yaml
 
 from report_kit.errors import SpecError
+from report_kit.inputs.arms import arm_spec_problems, arm_text
 from report_kit.inputs.model import (
     DEFAULT_ARM_LABELS,
     AnalysisSpec,
@@ -246,6 +247,10 @@ def _translate(err: jsonschema.ValidationError) -> list[str]:
         return [f"{where}: found {_describe(inst)}; expected {_TYPE_WORDS.get(value, value)}"]
     if kind in ("minLength", "minItems"):
         return [f"{where}: found an empty value; expected at least {value} {'character' if kind == 'minLength' else 'item'}(s)"]
+    if kind == "minProperties":
+        return [f"{where}: found {len(inst)} key(s); expected at least {value}"]
+    if kind == "maxProperties":
+        return [f"{where}: found {len(inst)} key(s); expected at most {value}"]
     if kind == "maxItems":
         return [f"{where}: found {len(inst)} items; expected at most {value}"]
     if kind == "maxLength":
@@ -294,14 +299,21 @@ def cross_field_problems(doc: dict) -> list[str]:
     if "cluster" in design and mech not in _NEEDS_CLUSTER:
         problems.append(f"design.cluster: given, but mechanism '{mech}' has no clusters; "
                         f"use one of {', '.join(_NEEDS_CLUSTER)} or remove the key")
+    problems += arm_spec_problems(design)
     if "rerandomization" in design and mech == "bernoulli":
         problems.append("design.rerandomization: a bernoulli design treats a random number of units; "
                         "rerandomization needs complete, blocked, cluster or matched_pairs")
     problems += _role_problems(doc)
     problems += _enrolment_problems(doc.get("enrolment"))
     labels = design.get("arm_labels")
-    if labels and labels["control"] == labels["treated"]:
-        problems.append(f"design.arm_labels: both arms are called {labels['control']!r}; give each arm its own label")
+    if labels and "arms" not in design:
+        if set(labels) != {"control", "treated"}:
+            problems.append("design.arm_labels: for a 0/1 treatment column give exactly the keys `control` and "
+                            f"`treated`; found {', '.join(sorted(map(str, labels)))} (with design.arms, key the "
+                            "labels by arm)")
+        elif labels["control"] == labels["treated"]:
+            problems.append(f"design.arm_labels: both arms are called {labels['control']!r}; "
+                            "give each arm its own label")
     seen: dict[str, int] = {}
     for i, outcome in enumerate(doc["outcomes"]):
         col = outcome["column"]
@@ -390,6 +402,31 @@ def _role_problems(doc: dict) -> list[str]:
 # --------------------------------------------------------------------------- building the Spec
 
 
+def _arm_keys(design: dict) -> dict:
+    if "arms" not in design:
+        return {}
+    factors = design.get("factors")
+    return {
+        "arms": tuple(arm_text(a) for a in design["arms"]),
+        "contrasts": design.get("contrasts", "reference"),
+        "factors": None if factors is None else tuple(
+            (str(name), tuple(arm_text(a) for a in on)) for name, on in factors.items()),
+        "arm_display": tuple((arm_text(k), v) for k, v in design.get("arm_labels", {}).items()),
+    }
+
+
+def _two_arm_labels(design: dict) -> tuple[str, str]:
+    """Words for the control and treated arm: ``design.arm_labels`` of 0/1 data, or the two ``design.arms``."""
+    labels = design.get("arm_labels") or {}
+    if "arms" in design and len(design["arms"]) == 2:
+        control, treated = (arm_text(a) for a in design["arms"])
+        shown = {arm_text(k): v for k, v in labels.items()}
+        return shown.get(control, control), shown.get(treated, treated)
+    if "arms" not in design and labels:
+        return labels["control"], labels["treated"]
+    return DEFAULT_ARM_LABELS
+
+
 def _build_spec(path: Path, doc: dict) -> Spec:
     data, design, analysis = doc["data"], doc["design"], doc.get("analysis", {})
     outcomes = tuple(
@@ -416,12 +453,12 @@ def _build_spec(path: Path, doc: dict) -> Spec:
             block=design.get("block"), cluster=design.get("cluster"),
             probability=design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
+            **_arm_keys(design),
             single_arm_blocks=design.get("single_arm_blocks", "error"),
             rerandomization=None if "rerandomization" not in design else RerandomizationSpec(
                 covariates=tuple(design["rerandomization"]["covariates"]),
                 max_distance=float(design["rerandomization"]["max_distance"])),
-            arm_labels=(design["arm_labels"]["control"], design["arm_labels"]["treated"])
-            if "arm_labels" in design else DEFAULT_ARM_LABELS,
+            arm_labels=_two_arm_labels(design),
         ),
         analysis=AnalysisSpec(
             alpha=float(analysis.get("alpha", defaults.alpha)),

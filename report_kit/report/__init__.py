@@ -17,7 +17,9 @@ _PUBLIC = {
     "show_figure": "view", "show_table": "view", "table_html": "view",
     "decimals_for": "headline", "fmt_at": "headline", "headline_cards": "headline", "points_box": "headline",
     "registration_line": "headline", "flow_diagram": "flow",
+    "show_opening": "view", "show_outcomes": "view", "ASSIGNMENT_CHECK_WORDS": "view",
     "effect_plot": "figures", "randomization_plot": "figures", "plot_balance": "figures_checks",
+    "cell_means_plot": "figures_arms", "contrast_plot": "figures_arms",
 }
 
 __all__ = sorted(_PUBLIC)

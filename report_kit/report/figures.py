@@ -45,8 +45,17 @@ METHOD_SHORT = {
 }
 
 
-def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, level: int = 95):
-    """One panel per outcome (each on its own scale); a line per estimate, a square at the point estimate."""
+def _method_ticks(part: pd.DataFrame) -> list[str]:
+    return [METHOD_SHORT.get(m, m) for m in part.get("method", part["estimator"])]
+
+
+def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, level: int = 95,
+                ticks: Callable[[pd.DataFrame], list[str]] = _method_ticks, what: str = "Effect"):
+    """One panel per outcome (each on its own scale); a line per estimate, a square at the point estimate.
+
+    ``ticks`` names the rows of one outcome's panel (default: the estimator);
+    ``what`` starts the axis label.
+    """
     rows = rows.reset_index(drop=True)
     outcomes = list(dict.fromkeys(rows["outcome"]))
     sizes = [int((rows["outcome"] == o).sum()) for o in outcomes]
@@ -60,14 +69,14 @@ def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, leve
             if r["ci_low"] is not None and r["ci_high"] is not None and np.isfinite([r["ci_low"], r["ci_high"]]).all():
                 ax.plot([r["ci_low"], r["ci_high"]], [y, y], color=colour, linewidth=2.2, solid_capstyle="butt")
             ax.plot([r["estimate"]], [y], marker="s", markersize=6.5, color=colour)
-        ax.set_yticks(ypos, [METHOD_SHORT.get(m, m) for m in part.get("method", part["estimator"])], fontsize=8)
+        ax.set_yticks(ypos, ticks(part), fontsize=8, parse_math=False)  # arm labels are user text
         ax.set_ylim(-0.7, len(part) - 0.3)
         ax.axvline(0, color=MUTED, linestyle="--", linewidth=1)
         _tidy(ax)
         ax.tick_params(axis="y", length=0)
         ax.tick_params(axis="x", labelsize=8)
         ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold", parse_math=False)  # user text
-    axes[-1, 0].set_xlabel(f"Effect with {level}% confidence interval, in each outcome's own units", fontsize=8)
+    axes[-1, 0].set_xlabel(f"{what} with {level}% confidence interval, in each outcome's own units", fontsize=8)
     handles = [Line2D([], [], color=INK, marker="s", linewidth=2.2, label="unadjusted"),
                Line2D([], [], color=ACCENT, marker="s", linewidth=2.2, label="covariate-adjusted")]
     axes[0, 0].legend(handles=handles, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, frameon=False,

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import json
 import logging
 import os
 import shutil
@@ -55,6 +56,29 @@ REPORT_NOTEBOOK = "notebooks/report.ipynb"
 #: Cell metadata key naming the template a cell of the assembled notebook came from.
 SECTION_KEY = "report_kit_section"
 
+_KIND_MARK = "# report-kit:"
+
+
+def template_kind(template: Path) -> str | None:
+    """The kind of run a template is for (``two-arm`` or ``multi-arm``), or None for every run.
+
+    Declared by a first-lines comment ``# report-kit: multi-arm``.
+    """
+    with open(template, encoding="utf-8") as fh:
+        for _, line in zip(range(5), fh):
+            if line.startswith(_KIND_MARK):
+                return line[len(_KIND_MARK):].strip()
+    return None
+
+
+def run_kind(run_dir: Path) -> str:
+    """``multi-arm`` when the run's ``results.json`` describes arms, else ``two-arm``."""
+    path = Path(run_dir) / "results.json"
+    if not path.is_file():
+        return "two-arm"
+    results = json.loads(path.read_text(encoding="utf-8"))
+    return "multi-arm" if results.get("design", {}).get("arms") else "two-arm"
+
 
 def assemble(templates: list[Path], params: dict):
     """One notebook from the templates, section by section, the parameters injected once.
@@ -87,6 +111,9 @@ def execute_all(run_dir: Path, project_dir: Path, *, progress: Callable[[str], N
                 template_dir: Path = TEMPLATE_DIR, kernel: ReportKernel | None = None) -> list[Path]:
     """Assemble the templates into ``notebooks/report.ipynb`` and execute it in one kernel.
 
+    Only the templates for this kind of run are assembled: those marked
+    ``# report-kit: two-arm`` or ``# report-kit: multi-arm`` (see
+    :func:`template_kind`, :func:`run_kind`) and the unmarked ones.
     ``kernel``: a :class:`ReportKernel` started earlier (its start-up and imports
     overlap the analysis); without one, papermill starts a kernel now. Returns
     the executed notebook's path in a list (the renderers take a list).
@@ -94,7 +121,8 @@ def execute_all(run_dir: Path, project_dir: Path, *, progress: Callable[[str], N
     out_dir = run_dir / "notebooks"
     out_dir.mkdir(exist_ok=True)
     params = {"run_dir": str(run_dir), "project_dir": str(project_dir)}
-    templates = template_paths(template_dir)
+    kind = run_kind(run_dir)
+    templates = [t for t in template_paths(template_dir) if template_kind(t) in (None, kind)]
     progress(f"  one kernel, {len(templates)} sections: " + ", ".join(t.stem for t in templates))
     notebook = assemble(templates, params)
     _kernel_manager_class()  # imports papermill's kernel stack here, before the warm-up thread starts

@@ -257,3 +257,31 @@ def callout(text: str, kind: str = "info") -> None:
     from IPython.display import HTML, display
 
     display(HTML(f'<div class="rk-box rk-{kind}">{text}</div>'))
+
+
+def show_opening(view: RunView) -> None:
+    """Open a report: the study summary (escaped), then the standing cautions with the plan-lock status."""
+    from report_kit.report.headline import registration_line
+
+    if view.spec.summary:
+        say(esc(view.spec.summary.strip()))
+    if registration_line(view.spec):
+        callout(registration_line(view.spec), "info")
+    callout("<b>Read this first.</b><ul>" + "".join(f"<li>{c}</li>" for c in cautions(view.plan)) + "</ul>",
+            "caution")
+
+
+ASSIGNMENT_CHECK_WORDS = {
+    "reproduced": "re-drawn from the recorded seed: identical",
+    "mismatch": "re-drawn from the recorded seed: DIFFERENT (see check output)",
+    "not_checked": "not checked (no assignment seed recorded)",
+}
+
+
+def show_outcomes(view: RunView) -> None:
+    """The table of pre-specified outcomes (label, column, family, alternative, statistic)."""
+    outs = pd.DataFrame(
+        [(o.label, o.column, o.family, o.alternative, o.statistic.replace("_", " ")) for o in view.spec.outcomes],
+        columns=["Outcome", "Column", "Family", "Alternative", "Test statistic"],
+    )
+    show_table(view, outs, "outcomes", caption="Pre-specified outcomes")

@@ -35,3 +35,18 @@ def test_misuse_is_a_type_error():
         estimate_roles([1])
     with pytest.raises(TypeError, match="`take_up_column`"):
         estimate_roles([], take_up_column=3)
+
+
+def test_each_contrast_and_factorial_effect_has_its_own_lead():
+    def arm_row(arm, estimator, method, *, reference="none", factor=None, estimand="ATE"):
+        return {**_row("y", estimand, estimator, method), "arm": arm, "reference": reference, "factor": factor}
+
+    rows = [
+        arm_row("plain", "unadjusted", "neyman"),
+        arm_row("compare", "unadjusted", "neyman"),
+        arm_row("plain", "adjusted", "lin_arms"),
+        arm_row("plain", "unadjusted", "horvitz_thompson"),
+        arm_row(None, "unadjusted", "factorial_neyman", reference=None, factor="text", estimand="main effect"),
+        arm_row(None, "unadjusted", "factorial_neyman", reference=None, factor="call", estimand="main effect"),
+    ]
+    assert estimate_roles(rows) == ["lead", "lead", "adjusted", "check", "lead", "lead"]

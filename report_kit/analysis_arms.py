@@ -1,0 +1,310 @@
+"""The analysis of a multi-arm or factorial study: a validated :class:`Study` in, ``results.json`` sections out.
+
+Owns the order of the multi-arm steps (``analysis.py`` calls :func:`arm_sections`
+when ``design.multi_arm``): the arm table, the contrasts (unadjusted, Lin,
+CACE), factorial effects, contrast tests and intervals, the omnibus tests, per-arm
+balance, flow and attrition (each with the omnibus randomization test over the
+full multi-arm mechanism), multiplicity and the MDE of each contrast as run.
+Field names: ``docs/results.md`` ("Multi-arm and factorial runs").
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import warnings
+
+import numpy as np
+
+from report_kit.design.arms import ArmSource, multi_arm_mechanism
+from report_kit.errors import DesignError, ReportKitWarning
+from report_kit.estimation.arms import (
+    contrast_pairs,
+    estimate_arm_cace,
+    estimate_contrasts,
+    estimate_contrasts_adjusted,
+)
+from report_kit.estimation.core import BLOCKED, CLUSTERED
+from report_kit.estimation.factorial import FACTORIAL_MECHANISMS, estimate_factorial
+from report_kit.estimation.roles import estimate_roles
+from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
+from report_kit.inference.engine import ChunkMap
+from report_kit.inputs.model import Study
+from report_kit.planning.power import mde
+
+log = logging.getLogger(__name__)
+
+ESTIMATE_KEYS = ("outcome", "estimand", "estimator", "subgroup", "arm", "reference", "factor", "estimate",
+                 "std_error", "ci_low", "ci_high", "df", "n_treated", "n_control", "method", "mean_treated",
+                 "mean_control")
+
+
+def _num(value):
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _design_kw(study: Study) -> dict:
+    mech = study.spec.design.mechanism
+    return {"mechanism": mech, "block": study.block if mech in BLOCKED else None,
+            "cluster": study.cluster if mech in CLUSTERED else None}
+
+
+def arm_labels(study: Study) -> np.ndarray:
+    """Each unit's arm label (text)."""
+    return study.frame[study.spec.design.treatment].to_numpy(dtype=object)
+
+
+def arm_source(study: Study) -> ArmSource:
+    """The full multi-arm mechanism of the study and its assignments (enumerated when few)."""
+    design, analysis = study.spec.design, study.spec.analysis
+    mech = multi_arm_mechanism(design.mechanism, study.z, n_arms=len(design.arms), block=study.block,
+                               cluster=study.cluster)
+    return ArmSource.choose(mech, max_exact=analysis.max_exact, draws=analysis.randomizations, seed=analysis.seed)
+
+
+def arm_table(study: Study) -> list[dict]:
+    """Per outcome and arm: label, units randomized, outcomes observed, mean and SD."""
+    labels = arm_labels(study)
+    rows = []
+    for outcome in study.spec.outcomes:
+        y = study.outcome(outcome.column)
+        for arm in study.spec.design.arms:
+            vals = y[(labels == arm) & ~np.isnan(y)]
+            rows.append({"outcome": outcome.column, "arm": arm, "label": study.spec.design.arm_label(arm),
+                         "n_units": int((labels == arm).sum()), "n_observed": int(vals.size),
+                         "mean": _num(vals.mean()) if vals.size else None,
+                         "sd": _num(vals.std(ddof=1)) if vals.size > 1 else None})
+    return rows
+
+
+def _estimate_row(outcome: str, estimand: str, item: dict, *, factor=None) -> dict:
+    row = {key: item.get(key) for key in ESTIMATE_KEYS}
+    row.update(outcome=outcome, estimand=estimand, factor=factor, subgroup=None,
+               mean_treated=item.get("mean_arm"), mean_control=item.get("mean_reference"))
+    if factor is not None:
+        row["arm"] = row["reference"] = None
+    return row
+
+
+def arm_estimates(study: Study) -> list[dict]:
+    """The ``estimates`` rows: each contrast (unadjusted, adjusted, CACE), then factorial effects."""
+    spec = study.spec
+    design = spec.design
+    labels = arm_labels(study)
+    kw = dict(arms=design.arms, contrasts=design.contrasts, alpha=spec.analysis.alpha, **_design_kw(study))
+    effect = "ITT" if spec.compliance is not None else "ATE"
+    covariates = spec.analysis.covariates if spec.analysis.adjust else ()
+    X = study.frame[list(covariates)].to_numpy(dtype=float) if covariates else None
+    rows: list[dict] = []
+    for outcome in spec.outcomes:
+        y = study.outcome(outcome.column)
+        rows += [_estimate_row(outcome.column, effect, c.to_dict()) for c in estimate_contrasts(y, labels, **kw)]
+        if X is not None:
+            rows += [_estimate_row(outcome.column, effect, c.to_dict()) for c in _adjusted(outcome.column, y,
+                                                                                           labels, X, kw)]
+        if spec.compliance is not None:
+            d = study.frame[spec.compliance.received].to_numpy(dtype=float)
+            rows += [_estimate_row(outcome.column, "CACE", c.to_dict())
+                     for c in estimate_arm_cace(y, labels, d, **kw)]
+        if design.factors is not None and design.mechanism in FACTORIAL_MECHANISMS:
+            for effect_row in estimate_factorial(y, labels, arms=design.arms, factors=design.factors,
+                                                 alpha=spec.analysis.alpha):
+                item = effect_row.to_dict()
+                rows.append(_estimate_row(outcome.column, item["estimand"], item, factor=effect_row.factor))
+    if design.factors is not None and design.mechanism not in FACTORIAL_MECHANISMS:
+        warnings.warn(f"factorial main effects and interactions are computed for "
+                      f"{' and '.join(FACTORIAL_MECHANISMS)} designs; this '{design.mechanism}' design reports "
+                      "the arm contrasts only", ReportKitWarning, stacklevel=2)
+    return rows
+
+
+def _adjusted(column: str, y, labels, X, kw: dict):
+    try:
+        return estimate_contrasts_adjusted(y, labels, X, **kw)
+    except DesignError as err:
+        warnings.warn(f"outcome '{column}': no covariate-adjusted contrasts ({err})", ReportKitWarning, stacklevel=3)
+        return []
+
+
+def arm_tests(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> tuple[list[dict], list[dict]]:
+    """``tests`` (each contrast, then one omnibus row per outcome) and ``intervals`` rows."""
+    spec = study.spec
+    design, analysis = spec.design, spec.analysis
+    labels = arm_labels(study)
+    pairs = contrast_pairs(design.arms, design.contrasts)
+    tests, intervals = [], []
+    for outcome in spec.outcomes:
+        y = study.outcome(outcome.column)
+        results = contrast_tests(
+            y, labels, pairs, kind=design.mechanism, block=study.block, cluster=study.cluster,
+            statistic=outcome.statistic, alternative=outcome.alternative, level=1 - analysis.alpha,
+            max_exact=analysis.max_exact, draws=analysis.randomizations, seed=analysis.seed,
+            outcome=outcome.column)
+        tests += [r.test_row() for r in results]
+        intervals += [r.interval_row() for r in results]
+    names = [o.column for o in spec.outcomes]
+    Y = np.column_stack([study.outcome(c) for c in names])
+    tests += [r.test_row() for r in omnibus_test(Y, source, outcomes=names, chunk_map=chunk_map)]
+    return tests, intervals
+
+
+def shared_contrast_nulls(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
+    """Per family whose outcomes all use ``mean_difference``: the contrasts on the shared multi-arm draws."""
+    spec = study.spec
+    design = spec.design
+    position = {arm: k for k, arm in enumerate(design.arms)}
+    pairs = contrast_pairs(design.arms, design.contrasts)
+    block = study.block if design.mechanism in BLOCKED else None
+    out = {}
+    for family in dict.fromkeys(o.family for o in spec.outcomes):
+        members = [o for o in spec.outcomes if o.family == family]
+        if any(o.statistic != "mean_difference" for o in members):
+            continue
+        Y = np.column_stack([study.outcome(o.column) for o in members])
+        columns = [(j, position[a], position[r]) for j in range(len(members)) for a, r in pairs]
+        alternatives = [members[j].alternative for j, _, _ in columns]
+        observed, null = contrast_joint_null(Y, columns, source, alternatives=alternatives, block=block,
+                                             chunk_map=chunk_map)
+        keys = [(members[j].column, a, r) for j in range(len(members)) for a, r in pairs]
+        out[family] = (keys, observed, null, source.method)
+    return out
+
+
+def arm_flow(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
+    """Participant flow and attrition per arm, with the omnibus test of differential attrition.
+
+    The attrition test applies the ``between_arms`` randomization test to the
+    missing-outcome indicator (1 = any outcome missing) under the full mechanism.
+    """
+    labels = arm_labels(study)
+    spec = study.spec
+    flow = []
+    for outcome in spec.outcomes:
+        y = study.outcome(outcome.column)
+        for arm in spec.design.arms:
+            member = labels == arm
+            seen = int((member & ~np.isnan(y)).sum())
+            flow.append({"outcome": outcome.column, "arm": arm, "randomized": int(member.sum()),
+                         "outcome_observed": seen, "lost": int(member.sum()) - seen, "analysed": seen})
+    lost = np.zeros(len(labels))
+    for outcome in spec.outcomes:
+        lost = np.maximum(lost, np.isnan(study.outcome(outcome.column)).astype(float))
+    rates = [{"arm": arm, "rate": _num(lost[labels == arm].mean())} for arm in spec.design.arms]
+    test = None
+    if lost.any() and not lost.all():
+        (result,) = omnibus_test(lost, source, outcomes=["any outcome missing"], chunk_map=chunk_map)
+        test = {k: result.test.to_dict()[k] for k in ("statistic", "observed", "p_value", "method", "draws",
+                                                       "mc_std_error")}
+    return {"flow": flow, "attrition": {"rates": rates, "test": test}}
+
+
+def arm_balance(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
+    """Covariate means per arm and the omnibus randomization test of each covariate."""
+    labels = arm_labels(study)
+    covariates = list(study.spec.analysis.covariates)
+    rows = []
+    if covariates:
+        X = study.frame[covariates].to_numpy(dtype=float)
+        tests = omnibus_test(X, source, outcomes=covariates, chunk_map=chunk_map)
+        for j, name in enumerate(covariates):
+            means = {}
+            for arm in study.spec.design.arms:
+                vals = X[(labels == arm) & ~np.isnan(X[:, j]), j]
+                means[arm] = _num(vals.mean()) if vals.size else None
+            rows.append({"name": name, "means": means, "statistic": "between_arms",
+                         "observed": tests[j].test.observed, "p_value": tests[j].test.p_value,
+                         "method": tests[j].test.method})
+    return {"covariates": rows}
+
+
+def arm_power(study: Study, estimates: list[dict], *, power: float = 0.8) -> dict:
+    """MDE of each unadjusted contrast as run, from its standard error (Bloom 1995)."""
+    alpha = float(study.spec.analysis.alpha)
+    alternative = {o.column: o.alternative for o in study.spec.outcomes}
+    rows, seen = [], set()
+    for e in estimates:
+        key = (e["outcome"], e["arm"], e["reference"])
+        if e["estimator"] != "unadjusted" or e["estimand"] not in ("ATE", "ITT") or key in seen:
+            continue
+        seen.add(key)
+        se, df = e["std_error"], e["df"]
+        size = mde(se, alpha, power, df if df and df > 0 else None, alternative=alternative[e["outcome"]]) \
+            if se else None
+        rows.append({"outcome": e["outcome"], "arm": e["arm"], "reference": e["reference"], "std_error": se,
+                     "df": df, "mde": size})
+    return {"alpha": alpha, "target_power": power, "as_run": rows, "planned": []}
+
+
+def arm_compliance(study: Study) -> dict | None:
+    """Take-up by arm: share of each arm's units (with known take-up) that received a programme."""
+    if study.spec.compliance is None:
+        return None
+    column = study.spec.compliance.received
+    d = study.frame[column].to_numpy(dtype=float)
+    labels = arm_labels(study)
+    rates = []
+    for arm in study.spec.design.arms:
+        known = (labels == arm) & ~np.isnan(d)
+        rates.append({"arm": arm, "rate": _num(d[known].mean()) if known.any() else None, "n": int(known.sum())})
+    return {"received": column, "rates": rates}
+
+
+def arm_design(study: Study, source: ArmSource, assignment_check: str) -> dict:
+    """The ``design`` section of a multi-arm run."""
+    design = study.spec.design
+    labels = arm_labels(study)
+    block, cluster = study.block, study.cluster
+    return {
+        "mechanism": design.mechanism, "n_units": int(labels.size), "n_treated": None, "n_control": None,
+        "n_blocks": None if block is None else len(set(block.tolist())),
+        "n_clusters": None if cluster is None else len(set(cluster.tolist())),
+        "n_assignments": source.mechanism.count_text(),
+        "n_assignments_log10": round(source.mechanism.log10_count(), 6), "assignment_check": assignment_check,
+        "inference_method": source.method, "draws": int(source.draws),
+        "arms": [{"arm": a, "label": design.arm_label(a), "n_units": int((labels == a).sum()),
+                  "reference": k == 0} for k, a in enumerate(design.arms)],
+        "contrasts": design.contrasts,
+        "factors": None if design.factors is None else {name: list(on) for name, on in design.factors},
+    }
+
+
+def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | None = None) -> dict:
+    """Every section of ``results.json`` for a multi-arm or factorial study (``schema`` added by the caller).
+
+    ``chunk_map`` runs the chunks of the engine's passes over the multi-arm draws
+    (see :func:`report_kit.inference.engine.run_pass`); results do not depend on it.
+    """
+    spec = study.spec
+    if spec.subgroups:
+        warnings.warn("subgroup analyses are not computed for multi-arm designs yet; the subgroups listed in "
+                      "design.yaml are left out", ReportKitWarning, stacklevel=2)
+    log.info("arm contrasts")
+    estimates = arm_estimates(study)
+    received = None if spec.compliance is None else spec.compliance.received
+    for row, role in zip(estimates, estimate_roles(estimates, take_up_column=received)):
+        row["role"] = role
+    source = arm_source(study)
+    log.info("randomization tests (%s, %d assignments)", source.method, source.draws)
+    tests, intervals = arm_tests(study, source, chunk_map)
+    log.info("balance, flow, attrition")
+    flow = arm_flow(study, source, chunk_map)
+    return {
+        "design": arm_design(study, source, assignment_check),
+        "arms": arm_table(study),
+        "estimates": estimates,
+        "subgroup_differences": [],
+        "compliance": arm_compliance(study),
+        "tests": tests,
+        "intervals": intervals,
+        "balance": arm_balance(study, source, chunk_map),
+        "flow": flow["flow"],
+        "attrition": flow["attrition"],
+        "multiplicity": arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity,
+                                         joint=shared_contrast_nulls(study, source, chunk_map)),
+        "power": arm_power(study, estimates),
+        "inputs": [f.to_dict() for f in study.inputs],
+        **({"data_handling": list(study.handling)} if study.handling else {}),
+    }
