@@ -21,6 +21,7 @@ from report_kit.checks.balance import participant_flow, study_balance
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inputs.model import Study
+from report_kit.inference.distributed import ChunkMap
 from report_kit.inference.multiplicity import SharedNull, study_multiplicity
 from report_kit.planning.power import study_power
 from report_kit.inference.randomization import StudyRandomization, study_assignments, study_randomization
@@ -82,11 +83,20 @@ def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]
     return arrays
 
 
-def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
-    """Run every analysis step on a validated study and return the results."""
+def analyse(study: Study, *, assignment_check: str = "not_checked",
+            chunk_map: ChunkMap | None = None) -> Analysis:
+    """Run every analysis step on a validated study and return the results.
+
+    ``chunk_map`` says where the chunks of randomization draws are computed
+    (:mod:`report_kit.inference.distributed`): ``None`` is this process, in
+    order; :func:`~report_kit.inference.distributed.dask_chunk_map` a Dask
+    cluster. The results do not depend on it.
+    """
+    if chunk_map is not None and not callable(chunk_map):
+        raise TypeError(f"`chunk_map` must be a chunk map (callable) or None; got {type(chunk_map).__name__}")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ReportKitWarning)
-        results, arrays = _sections(study, assignment_check)
+        results, arrays = _sections(study, assignment_check, chunk_map)
     notes = sorted({str(w.message) for w in caught if issubclass(w.category, ReportKitWarning)})
     for note in notes:
         log.warning("%s", note)
@@ -94,12 +104,13 @@ def analyse(study: Study, *, assignment_check: str = "not_checked") -> Analysis:
     return Analysis(results=results, arrays=arrays)
 
 
-def _sections(study: Study, assignment_check: str) -> tuple[dict, dict]:
+def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -> tuple[dict, dict]:
     spec = study.spec
     log.info("estimates")
     estimates = study_estimates(study)
     log.info("randomization tests")
     mechanism, source = study_assignments(study)
+    # chunk_map: handed to the engine's pass over the draws once it takes one (issue 10).
     rand = study_randomization(study, (mechanism, source))
     weights = mechanism.weights if source.method == "exact" else None
     log.info("balance, flow, attrition")

@@ -8,6 +8,8 @@ run folder behind and never touches an earlier run or ``data/``.
 
 from __future__ import annotations
 
+import contextlib
+import functools
 import hashlib
 import logging
 import shutil
@@ -22,6 +24,7 @@ import numpy as np
 from report_kit.audit import provenance
 from report_kit.analysis import Analysis, analyse
 from report_kit.inputs.data import load_study
+from report_kit.inference.distributed import ChunkMap, OnChunk, dask_chunk_map, scheduler_address, serial_chunk_map
 from report_kit.errors import SpecError, UsageError
 from report_kit.inputs.model import Study
 from report_kit.audit.planlock import LOCK_NAME
@@ -42,6 +45,8 @@ class RunOptions:
     compare_to: Path | None = None
     argv: tuple[str, ...] = ()
     pdf: bool = True
+    workers: int | None = None          # local Dask cluster of this many worker processes
+    scheduler: str | None = None        # an existing Dask scheduler (else $REPORT_KIT_SCHEDULER)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -76,11 +81,27 @@ def analyse_project(project: Path | str) -> dict:
     return run_analysis(load_project(project)).results
 
 
-def run_analysis(study: Study) -> Analysis:
+def run_analysis(study: Study, *, chunk_map: ChunkMap | None = None) -> Analysis:
     """The deterministic analysis step (the assignment check included)."""
     from report_kit.design.assignment import assignment_check_status
 
-    return analyse(study, assignment_check=assignment_check_status(study))
+    return analyse(study, assignment_check=assignment_check_status(study), chunk_map=chunk_map)
+
+
+@contextlib.contextmanager
+def chunk_map_for(options: RunOptions, on_chunk: OnChunk | None = None):
+    """The chunk map a run uses: Dask when ``workers``/``scheduler`` (or the environment) ask for it.
+
+    Yields ``None`` (the library default) when nothing asks for Dask or for
+    progress, so a plain run imports nothing extra.
+    """
+    if options.workers is not None or scheduler_address(options.scheduler) is not None:
+        with dask_chunk_map(options.scheduler, options.workers, on_chunk=on_chunk) as chunk_map:
+            yield chunk_map
+    elif on_chunk is not None:
+        yield functools.partial(serial_chunk_map, on_chunk=on_chunk)
+    else:
+        yield None
 
 
 def make_run_id(study: Study, now: datetime) -> str:
@@ -92,12 +113,18 @@ def make_run_id(study: Study, now: datetime) -> str:
 
 
 def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
-                progress: Progress = _quiet, on_run_id: Progress = _quiet) -> RunOutcome:
-    """Analyse a project, execute the report notebooks, render, record provenance."""
+                progress: Progress = _quiet, on_run_id: Progress = _quiet,
+                on_chunk: OnChunk | None = None) -> RunOutcome:
+    """Analyse a project, execute the report notebooks, render, record provenance.
+
+    ``on_chunk(done, total)`` is called after each chunk of randomization draws
+    (the command line draws a progress bar with it).
+    """
     from report_kit.report import notebooks
     from report_kit.report import render
 
     started = datetime.now(timezone.utc)
+    render.require_renderer(options.renderer)
     study = load_project(project)
     if options.compare_to is not None:
         _check_previous_run(options.compare_to)
@@ -112,7 +139,8 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
     try:
         log.info("report-kit run of %s (run id %s)", study.spec.project_dir, run_id)
         progress("analysing (estimates, randomization tests, checks)")
-        result = run_analysis(study)
+        with chunk_map_for(options, on_chunk) as chunk_map:
+            result = run_analysis(study, chunk_map=chunk_map)
         write_analysis(tmp, result)
         copy_inputs(study, tmp)
         progress("executing report notebooks")
