@@ -27,6 +27,8 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python benchmarks/randomization.py
 	$(BIN)/python benchmarks/sampler.py
+	$(BIN)/python benchmarks/scale.py
+	$(BIN)/python benchmarks/workers.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info

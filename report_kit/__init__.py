@@ -34,6 +34,7 @@ _PUBLIC = {
     "invert_test": "inference.inversion",
     "holm": "inference.multiplicity", "benjamini_hochberg": "inference.multiplicity",
     "westfall_young": "inference.multiplicity",
+    "serial_chunk_map": "inference.distributed", "dask_chunk_map": "inference.distributed",
     # estimation
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",
