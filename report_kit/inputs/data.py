@@ -18,12 +18,10 @@ is read as text.
 from __future__ import annotations
 
 import csv
-import dataclasses
 import difflib
 import hashlib
 import io
 import math
-import re
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -32,12 +30,11 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DataError
+from report_kit.inputs.ids import _as_text, _is_missing, _plain, normalise_ids
 from report_kit.inputs.model import InputFile, Spec, Study
 
 SUFFIXES = (".csv", ".parquet", ".xlsx", ".dta")
 _SHOW = 5  # offending rows listed per problem
-_INT_TEXT = re.compile(r"-?(0|[1-9][0-9]*)")
-_INT64 = (-(2 ** 63), 2 ** 63 - 1)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -237,6 +234,38 @@ def _decode_csv(path: Path, raw: bytes) -> str:
 
 def _csv_records(path: Path, text: str) -> tuple[list[str], list[int]]:
     """The header and the starting line of every data record; ragged rows are an error."""
+    if '"' not in text and "\r" not in text:
+        header, starts, ragged = _plain_csv_records(text)
+    else:
+        header, starts, ragged = _quoted_csv_records(path, text)
+    if header is None:
+        raise DataError(f"{path}: the file is empty; expected a header line naming the columns, "
+                        "then one row per unit")
+    if ragged:
+        shown = ", ".join(f"line {ln} has {k}" for ln, k in ragged[:_SHOW])
+        more = f" and {len(ragged) - _SHOW} more" if len(ragged) > _SHOW else ""
+        hint = ("; is there a title line above the header? The first line must name the columns"
+                if len(header) == 1 and len(ragged) == len(starts) else " (a comma inside a value needs quotes)")
+        raise DataError(f"{path}: the header (line 1) names {len(header)} column(s) but {shown}{more} "
+                        f"value(s); every line needs one value per column{hint}")
+    return header, starts
+
+
+def _plain_csv_records(text: str) -> tuple[list[str] | None, list[int], list[tuple[int, int]]]:
+    """:func:`_quoted_csv_records` for text without quotes or carriage returns: one record per non-empty line."""
+    lines = text.split("\n")
+    numbers = [i for i, line in enumerate(lines, start=1) if line]
+    if not numbers:
+        return None, [], []
+    header = lines[numbers[0] - 1].split(",")
+    width = len(header) - 1
+    starts = numbers[1:]
+    ragged = [(i, lines[i - 1].count(",") + 1) for i in starts if lines[i - 1].count(",") != width]
+    return header, starts, ragged
+
+
+def _quoted_csv_records(path: Path, text: str) -> tuple[list[str] | None, list[int], list[tuple[int, int]]]:
+    """The header, the starting line of every data record and the ragged records, by the csv module."""
     reader = csv.reader(io.StringIO(text, newline=""))
     header: list[str] | None = None
     starts: list[int] = []
@@ -255,17 +284,7 @@ def _csv_records(path: Path, text: str) -> tuple[list[str], list[int]]:
                 ragged.append((start, len(record)))
     except csv.Error as err:
         raise DataError(f"{path}: not a well-formed CSV file near line {reader.line_num}: {err}") from err
-    if header is None:
-        raise DataError(f"{path}: the file is empty; expected a header line naming the columns, "
-                        "then one row per unit")
-    if ragged:
-        shown = ", ".join(f"line {ln} has {k}" for ln, k in ragged[:_SHOW])
-        more = f" and {len(ragged) - _SHOW} more" if len(ragged) > _SHOW else ""
-        hint = ("; is there a title line above the header? The first line must name the columns"
-                if len(header) == 1 and len(ragged) == len(starts) else " (a comma inside a value needs quotes)")
-        raise DataError(f"{path}: the header (line 1) names {len(header)} column(s) but {shown}{more} "
-                        f"value(s); every line needs one value per column{hint}")
-    return header, starts
+    return header, starts, ragged
 
 
 def _read_csv(path: Path, raw: bytes, id_col: str | None) -> tuple[pd.DataFrame, list, tuple[int, ...]]:
@@ -341,11 +360,6 @@ def _check_header(path: Path, header: list | None, frame: pd.DataFrame) -> None:
 # --------------------------------------------------------------------------- ids and labels
 
 
-def _plain(value):
-    """A numpy scalar as the Python value it holds (for messages and normalising)."""
-    return value.item() if isinstance(value, np.generic) else value
-
-
 def _show(value) -> str:
     return "blank" if _is_missing(value) else repr(_plain(value))
 
@@ -363,74 +377,6 @@ def _require_id_column(table: Table, id_col: str) -> None:
                 "export the table as CSV with commas")
     raise DataError(f"{table.path}: id column '{id_col}' (data.id) not found{hint}; columns are: "
                     f"{', '.join(columns)}")
-
-
-def _id_kind(value) -> str:
-    """'missing', 'int', 'float' or 'text' for one id value."""
-    if _is_missing(value):
-        return "missing"
-    value = _plain(value)
-    if isinstance(value, bool):
-        return "text"
-    if isinstance(value, int):
-        return "int" if _INT64[0] <= value <= _INT64[1] else "text"
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return "text"
-        return "int" if value.is_integer() and abs(value) < 2 ** 53 else "float"
-    if isinstance(value, str):
-        text = value.strip()
-        if _INT_TEXT.fullmatch(text) and _INT64[0] <= int(text) <= _INT64[1]:
-            return "int"
-        return "text"
-    return "text"
-
-
-def _as_text(value) -> str:
-    value = _plain(value)
-    if isinstance(value, float) and value.is_integer():
-        return str(int(value))
-    return str(value).strip()
-
-
-def normalise_ids(tables: list[Table], id_col: str) -> list[Table]:
-    """Give the id column of every table one comparable type.
-
-    Whole numbers when every id in every table is a whole number (written
-    without leading zeros), numbers when they are all numbers, text otherwise
-    (numbers written as text, surrounding spaces removed). Missing ids stay
-    missing (and are reported by the id check).
-    """
-    kinds = set()
-    for table in tables:
-        kinds.update(_id_kind(v) for v in table.frame[id_col].tolist())
-    kinds.discard("missing")
-    if kinds <= {"int"}:
-        convert = lambda v: int(str(_plain(v)).strip()) if isinstance(_plain(v), str) else int(_plain(v))  # noqa: E731
-    elif kinds <= {"int", "float"}:
-        convert = lambda v: float(str(_plain(v)).strip()) if isinstance(_plain(v), str) else float(_plain(v))  # noqa: E731
-    else:
-        convert = _as_text
-    out = []
-    for table in tables:
-        values = [None if _id_kind(v) == "missing" else convert(v) for v in table.frame[id_col].tolist()]
-        if any(v is None for v in values):
-            column = pd.Series(values, index=table.frame.index, dtype=object)
-        elif kinds <= {"int"}:
-            column = pd.Series(values, index=table.frame.index, dtype="int64")
-        elif kinds <= {"int", "float"}:
-            column = pd.Series(values, index=table.frame.index, dtype="float64")
-        else:
-            column = pd.Series(values, index=table.frame.index, dtype=object)
-        frame = table.frame.copy()
-        frame[id_col] = column
-        out.append(dataclasses.replace(table, frame=frame))
-    return out
-
-
-def _is_missing(value) -> bool:
-    value = _plain(value)
-    return value is None or value is pd.NA or (isinstance(value, float) and math.isnan(value))
 
 
 def _normalise_labels(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
