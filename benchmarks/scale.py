@@ -125,6 +125,7 @@ class Steps(logging.Handler):
     def mark(self, name: str) -> None:
         now = time.perf_counter()
         self.rows.append((self._name, now - self._start, _peak_self()))
+        print(f"    done: {self._name} ({now - self._start:.1f} s)", flush=True)
         self._name, self._start = name, now
         _reset_peak()
 
