@@ -294,7 +294,9 @@ def _read_csv(path: Path, raw: bytes, id_col: str | None) -> tuple[pd.DataFrame,
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            frame = pd.read_csv(io.StringIO(text), keep_default_na=True, index_col=False,
+            # From the bytes (already checked to be UTF-8): a StringIO of the text would hold
+            # four bytes per character, 1.4 GB for a 350 MB file of 10 million units.
+            frame = pd.read_csv(io.BytesIO(raw), encoding="utf-8-sig", keep_default_na=True, index_col=False,
                                 skip_blank_lines=True, dtype=dtype or None)
     except Exception as err:  # noqa: BLE001 - any parser failure is a data problem
         raise DataError(f"{path}: cannot read the table as CSV: {err}") from err
