@@ -4,10 +4,11 @@ Not a test; prints figures. Each chunk is the work the engine does per chunk:
 draw ``rows`` complete-design assignments from the chunk's own seed
 (``numpy.random.SeedSequence(seed, spawn_key=(chunk,))``) and compute the
 difference in means of every outcome under each draw, with the public
-:func:`report_kit.inference.randomization.null_distribution`. The outcome
-matrix travels to the workers once (``shared``). The same chunks are run by
-:func:`serial_chunk_map` and by :func:`dask_chunk_map` with 2 worker
-processes; the null statistics must agree bit for bit.
+:func:`report_kit.inference.randomization.null_distribution`. The work object
+holds the outcome matrix, which travels to each worker once. The same chunks
+are run one after another in this process (``map``) and by
+:func:`dask_chunk_map` with 2 worker processes; the null statistics must agree
+bit for bit.
 
     .venv/bin/python benchmarks/workers.py                      # 100,000 units, 3 outcomes, 4,000 draws
     .venv/bin/python benchmarks/workers.py --units 1000000 --draws 2000 --workers 2
@@ -26,17 +27,22 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from report_kit.design.mechanism import mechanism_from_arrays  # noqa: E402
-from report_kit.inference.distributed import dask_chunk_map, serial_chunk_map  # noqa: E402
+from report_kit.inference.distributed import dask_chunk_map  # noqa: E402
 from report_kit.inference.randomization import null_distribution  # noqa: E402
 
 
-def chunk_nulls(task, shared):
-    """Null statistics of one chunk of draws, from the chunk's own seed stream."""
-    index, rows, seed = task
-    mech = mechanism_from_arrays("complete", shared["z"])
-    child = int(np.random.SeedSequence(seed, spawn_key=(index,)).generate_state(1)[0])
-    source = mech.assignments(max_exact=0, draws=rows, seed=child)
-    return null_distribution(shared["y"], mech, statistic="mean_difference", source=source).null
+class ChunkNulls:
+    """Null statistics of one chunk of draws, from the chunk's own seed stream (holds the data)."""
+
+    def __init__(self, z, y):
+        self.z, self.y = z, y
+
+    def __call__(self, task):
+        index, rows, seed = task
+        mech = mechanism_from_arrays("complete", self.z)
+        child = int(np.random.SeedSequence(seed, spawn_key=(index,)).generate_state(1)[0])
+        source = mech.assignments(max_exact=0, draws=rows, seed=child)
+        return null_distribution(self.y, mech, statistic="mean_difference", source=source).null
 
 
 def data(n: int, m: int):
@@ -46,9 +52,9 @@ def data(n: int, m: int):
     return z, rng.normal(size=(n, m))
 
 
-def timed(chunk_map, tasks, shared):
+def timed(chunk_map, tasks, work):
     start = time.perf_counter()
-    null = np.vstack(list(chunk_map(chunk_nulls, tasks, shared=shared)))
+    null = np.vstack(list(chunk_map(work, tasks)))
     return null, time.perf_counter() - start
 
 
@@ -61,15 +67,15 @@ def main() -> None:
     parser.add_argument("--workers", type=int, default=2)
     args = parser.parse_args()
     z, y = data(args.units, args.outcomes)
-    shared = {"z": z, "y": y}
+    work = ChunkNulls(z, y)
     tasks = [(i, min(args.chunk, args.draws - lo), 5150) for i, lo in enumerate(range(0, args.draws, args.chunk))]
     print(f"{args.units:,} units x {args.outcomes} outcomes x {args.draws:,} draws in {len(tasks)} chunks")
-    serial, t1 = timed(serial_chunk_map, tasks, shared)
+    serial, t1 = timed(map, tasks, work)
     print(f"  1 process:            {t1:7.2f} s  {args.draws / t1:9.0f} draws/s")
     start = time.perf_counter()
     with dask_chunk_map(workers=args.workers) as chunk_map:
         started = time.perf_counter() - start
-        spread, t2 = timed(chunk_map, tasks, shared)
+        spread, t2 = timed(chunk_map, tasks, work)
     print(f"  {args.workers} local workers:      {t2:7.2f} s  {args.draws / t2:9.0f} draws/s "
           f"(cluster start {started:.1f} s, not included)")
     print(f"  speed-up: {t1 / t2:.2f}x; null statistics identical: {np.array_equal(serial, spread)}")

@@ -34,7 +34,6 @@ _PUBLIC = {
     "invert_test": "inference.inversion",
     "holm": "inference.multiplicity", "benjamini_hochberg": "inference.multiplicity",
     "westfall_young": "inference.multiplicity",
-    "serial_chunk_map": "inference.distributed", "dask_chunk_map": "inference.distributed",
     # estimation
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",
@@ -47,6 +46,7 @@ _PUBLIC = {
     "mde": "planning.power", "simulated_power": "planning.power", "plan_power": "planning.plan",
     # the recipe and the audit trail
     "analyse": "analysis", "run_project": "pipeline", "analyse_project": "pipeline",
+    "dask_chunk_map": "inference.distributed",
     "compare_runs": "audit.compare", "verify_run": "audit.verify", "archive_run": "audit.archive",
     "lock_plan": "audit.planlock",
 }

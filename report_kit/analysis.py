@@ -21,7 +21,7 @@ from report_kit.checks.balance import participant_flow, study_balance
 from report_kit.errors import ReportKitWarning
 from report_kit.estimation.neyman import study_compliance, study_estimates, study_subgroup_differences
 from report_kit.inputs.model import Study
-from report_kit.inference.distributed import ChunkMap
+from report_kit.inference.distributed import ChunkMapFn
 from report_kit.inference.multiplicity import SharedNull, study_multiplicity
 from report_kit.planning.power import study_power
 from report_kit.inference.randomization import StudyRandomization, study_assignments, study_randomization
@@ -84,7 +84,7 @@ def plot_arrays(study: Study, rand: StudyRandomization) -> dict[str, np.ndarray]
 
 
 def analyse(study: Study, *, assignment_check: str = "not_checked",
-            chunk_map: ChunkMap | None = None) -> Analysis:
+            chunk_map: ChunkMapFn | None = None) -> Analysis:
     """Run every analysis step on a validated study and return the results.
 
     ``chunk_map`` says where the chunks of randomization draws are computed
@@ -104,7 +104,7 @@ def analyse(study: Study, *, assignment_check: str = "not_checked",
     return Analysis(results=results, arrays=arrays)
 
 
-def _sections(study: Study, assignment_check: str, chunk_map: ChunkMap | None) -> tuple[dict, dict]:
+def _sections(study: Study, assignment_check: str, chunk_map: ChunkMapFn | None) -> tuple[dict, dict]:
     spec = study.spec
     log.info("estimates")
     estimates = study_estimates(study)

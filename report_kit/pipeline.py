@@ -9,7 +9,6 @@ run folder behind and never touches an earlier run or ``data/``.
 from __future__ import annotations
 
 import contextlib
-import functools
 import hashlib
 import logging
 import shutil
@@ -24,7 +23,7 @@ import numpy as np
 from report_kit.audit import provenance
 from report_kit.analysis import Analysis, analyse
 from report_kit.inputs.data import load_study
-from report_kit.inference.distributed import ChunkMap, OnChunk, dask_chunk_map, scheduler_address, serial_chunk_map
+from report_kit.inference.distributed import ChunkMapFn, OnChunk, counting_chunk_map, dask_chunk_map, scheduler_address
 from report_kit.errors import SpecError, UsageError
 from report_kit.inputs.model import Study
 from report_kit.audit.planlock import LOCK_NAME
@@ -81,7 +80,7 @@ def analyse_project(project: Path | str) -> dict:
     return run_analysis(load_project(project)).results
 
 
-def run_analysis(study: Study, *, chunk_map: ChunkMap | None = None) -> Analysis:
+def run_analysis(study: Study, *, chunk_map: ChunkMapFn | None = None) -> Analysis:
     """The deterministic analysis step (the assignment check included)."""
     from report_kit.design.assignment import assignment_check_status
 
@@ -99,7 +98,7 @@ def chunk_map_for(options: RunOptions, on_chunk: OnChunk | None = None):
         with dask_chunk_map(options.scheduler, options.workers, on_chunk=on_chunk) as chunk_map:
             yield chunk_map
     elif on_chunk is not None:
-        yield functools.partial(serial_chunk_map, on_chunk=on_chunk)
+        yield counting_chunk_map(on_chunk)
     else:
         yield None
 

@@ -1,68 +1,59 @@
 """Where the chunks of randomization draws are computed: in this process or on Dask.
 
-Owns the *chunk map* seam between the randomization engine and the machines
-that do the work. A chunk map is a callable
+Owns the Dask side of the engine's *chunk map* seam. A chunk map is a callable
 
-    chunk_map(fn, tasks, *, shared=None) -> iterator of results, in task order
+    chunk_map(fn, tasks) -> iterable of fn(task), in task order
 
-* ``tasks`` is an iterable of small picklable chunk descriptions (e.g. chunk
-  index and row range); the engine derives each chunk's random stream from
-  ``numpy.random.SeedSequence(seed)`` spawned by chunk index, so results do not
-  depend on who computes which chunk.
-* ``shared`` is ``None`` or a dict of large read-only objects (the outcome
-  matrix, the observed assignment). Without ``shared`` each result is
-  ``fn(task)``; with it, ``fn(task, shared)``. On Dask the dict is sent to every
-  worker once (:meth:`distributed.Client.scatter` with ``broadcast=True``), not
-  once per task.
-* Results come back in task order whatever order the workers finish in, so a
-  reduction over them is the same floating-point sum as in one process.
+(:data:`report_kit.inference.engine.ChunkMap`; the engine calls
+``partials = chunk_map(work, tasks)``). ``tasks`` are small picklable chunk
+descriptions; ``fn`` is the engine's work object, which holds the large arrays
+(the outcome matrix, the observed assignment). The engine derives each chunk's
+random stream from ``numpy.random.SeedSequence(seed)`` spawned by chunk index,
+so results do not depend on who computes which chunk.
 
-Two implementations: :func:`serial_chunk_map` (the default, no extra imports)
-and :func:`dask_chunk_map` (a context manager that starts a local cluster or
-connects to an existing scheduler). Dask is imported only inside
-:func:`dask_chunk_map`; nothing else in report-kit imports it.
+* :func:`dask_chunk_map` - a context manager that starts a local cluster or
+  connects to an existing scheduler and yields a chunk map. ``fn`` (with the
+  arrays it holds) is sent to every worker **once** per call
+  (:meth:`distributed.Client.scatter` with ``broadcast=True``); each task then
+  carries only its chunk description. Results are collected as they complete
+  and yielded in task order, so a reduction over them is the same
+  floating-point sum as in one process.
+* :func:`counting_chunk_map` - any chunk map (default: one chunk after another
+  in this process) that reports each finished chunk, for the progress bar.
 
-Each chunk map takes an optional ``on_chunk(done, total)`` callback, called
-after each finished chunk (in completion order on Dask), which the command
-line uses for its progress bar. See ``docs/scaling.md``.
+Dask is imported only inside :func:`dask_chunk_map`; nothing else in
+report-kit imports it. Both take ``on_chunk(done, total)``, called after each
+finished chunk (in completion order on Dask). See ``docs/scaling.md``.
 """
 
 from __future__ import annotations
 
 import contextlib
 import os
-from collections.abc import Callable, Iterable, Iterator, Mapping
-from typing import Any, Protocol
+from collections.abc import Callable, Iterable, Iterator
+from typing import Any
 
 from report_kit.errors import UsageError
 
 __all__ = [
     "SCHEDULER_ENV",
-    "ChunkMap",
     "OnChunk",
+    "counting_chunk_map",
     "dask_chunk_map",
     "scheduler_address",
-    "serial_chunk_map",
 ]
 
 #: Environment variable naming an existing Dask scheduler (same as ``--scheduler``).
 SCHEDULER_ENV = "REPORT_KIT_SCHEDULER"
 
 OnChunk = Callable[[int, int], None]
+#: ``chunk_map(fn, tasks)`` (the engine's ``ChunkMap``)
+ChunkMapFn = Callable[[Callable[[Any], Any], Iterable[Any]], Iterable[Any]]
 
 
-class ChunkMap(Protocol):
-    """``chunk_map(fn, tasks, *, shared=None)``: ``fn`` over ``tasks``, results in task order."""
-
-    def __call__(self, fn: Callable[..., Any], tasks: Iterable[Any], *,
-                 shared: Mapping[str, Any] | None = None) -> Iterator[Any]: ...
-
-
-def _check_fn(fn, shared) -> None:
+def _check_fn(fn) -> None:
     if not callable(fn):
         raise TypeError(f"`fn` must be callable; got {type(fn).__name__}")
-    if shared is not None and not isinstance(shared, Mapping):
-        raise TypeError(f"`shared` must be a dict of arrays or None; got {type(shared).__name__}")
 
 
 def _check_on_chunk(on_chunk) -> None:
@@ -70,33 +61,34 @@ def _check_on_chunk(on_chunk) -> None:
         raise TypeError(f"`on_chunk` must be callable or None; got {type(on_chunk).__name__}")
 
 
-def serial_chunk_map(fn: Callable[..., Any], tasks: Iterable[Any], *,
-                     shared: Mapping[str, Any] | None = None,
-                     on_chunk: OnChunk | None = None) -> Iterator[Any]:
-    """The default chunk map: ``fn`` over ``tasks`` in this process, lazily, in order.
+def counting_chunk_map(on_chunk: OnChunk, chunk_map: ChunkMapFn | None = None) -> ChunkMapFn:
+    """A chunk map that calls ``on_chunk(done, total)`` after each chunk of ``chunk_map``.
 
     Parameters
     ----------
-    fn : callable
-        ``fn(task)``, or ``fn(task, shared)`` when ``shared`` is given.
-    tasks : iterable
-        Chunk descriptions.
-    shared : dict or None
-        Large read-only objects every task needs (passed by reference here).
-    on_chunk : callable or None
-        ``on_chunk(done, total)`` after each chunk.
+    on_chunk : callable
+        ``on_chunk(done, total)``.
+    chunk_map : callable or None
+        ``chunk_map(fn, tasks)``; ``None``: the tasks one after another in this
+        process (the engine's default).
 
-    Yields
-    ------
-    The result of each task, in task order.
+    Returns
+    -------
+    callable
+        ``chunk_map(fn, tasks)`` yielding the same results in the same order.
     """
-    _check_fn(fn, shared)
-    _check_on_chunk(on_chunk)
-    tasks = list(tasks)
-    for done, task in enumerate(tasks, start=1):
-        yield fn(task) if shared is None else fn(task, shared)
-        if on_chunk is not None:
+    if not callable(on_chunk):
+        raise TypeError(f"`on_chunk` must be callable; got {type(on_chunk).__name__}")
+    inner = map if chunk_map is None else chunk_map
+
+    def counted(fn: Callable[[Any], Any], tasks: Iterable[Any]) -> Iterator[Any]:
+        _check_fn(fn)
+        tasks = list(tasks)
+        for done, result in enumerate(inner(fn, tasks), start=1):
             on_chunk(done, len(tasks))
+            yield result
+
+    return counted
 
 
 def scheduler_address(address: str | None) -> str | None:
@@ -119,7 +111,7 @@ def _check_workers(workers) -> int | None:
 
 @contextlib.contextmanager
 def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
-                   processes: bool = True, on_chunk: OnChunk | None = None) -> Iterator[ChunkMap]:
+                   processes: bool = True, on_chunk: OnChunk | None = None) -> Iterator[ChunkMapFn]:
     """A chunk map that runs the chunks on a Dask cluster (imports ``dask.distributed`` here only).
 
     Parameters
@@ -139,11 +131,10 @@ def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
 
     Yields
     ------
-    ChunkMap
-        ``chunk_map(fn, tasks, *, shared=None)``: submits one task per chunk,
-        collects them as they complete and yields results in task order.
-        ``shared`` is scattered to every worker once per call; ``fn`` receives
-        the worker's copy.
+    callable
+        ``chunk_map(fn, tasks)``: sends ``fn`` to every worker once, submits
+        one task per chunk, collects them as they complete and yields the
+        results in task order.
 
     Raises
     ------
@@ -174,6 +165,11 @@ def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
         yield _DaskChunkMap(client, on_chunk)
 
 
+def _call(fn: Callable[[Any], Any], task: Any) -> Any:
+    """What a Dask task runs: the worker's copy of ``fn`` on one chunk description."""
+    return fn(task)
+
+
 class _DaskChunkMap:
     """The chunk map of one Dask client (see :func:`dask_chunk_map`)."""
 
@@ -181,21 +177,17 @@ class _DaskChunkMap:
         self._client = client
         self._on_chunk = on_chunk
 
-    def __call__(self, fn: Callable[..., Any], tasks: Iterable[Any], *,
-                 shared: Mapping[str, Any] | None = None) -> Iterator[Any]:
-        _check_fn(fn, shared)
-        return self._run(fn, list(tasks), shared)
+    def __call__(self, fn: Callable[[Any], Any], tasks: Iterable[Any]) -> Iterator[Any]:
+        _check_fn(fn)
+        return self._run(fn, list(tasks))
 
-    def _run(self, fn, tasks: list, shared) -> Iterator[Any]:
+    def _run(self, fn, tasks: list) -> Iterator[Any]:
         from distributed import as_completed
 
         client = self._client
-        extra = ()
-        if shared is not None:
-            # One future for the whole dict, copied to every worker once.
-            (handle,) = client.scatter([dict(shared)], broadcast=True, hash=False)
-            extra = (handle,)
-        futures = [client.submit(fn, task, *extra, pure=False) for task in tasks]
+        # The work object holds the large arrays: one copy per worker, not one per task.
+        (handle,) = client.scatter([fn], broadcast=True, hash=False)
+        futures = [client.submit(_call, handle, task, pure=False) for task in tasks]
         index = {f.key: i for i, f in enumerate(futures)}
         ready: dict[int, Any] = {}
         following = 0
@@ -211,5 +203,4 @@ class _DaskChunkMap:
         finally:
             for future in futures:
                 future.release()
-            for handle in extra:
-                handle.release()
+            handle.release()

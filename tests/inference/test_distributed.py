@@ -19,18 +19,24 @@ from report_kit.audit.provenance import canonical_json_bytes
 from report_kit.errors import UsageError
 from report_kit.inference.distributed import (
     SCHEDULER_ENV,
+    counting_chunk_map,
     dask_chunk_map,
     scheduler_address,
-    serial_chunk_map,
 )
 from report_kit.pipeline import RunOptions, chunk_map_for, load_project, run_analysis
 
 from tests.conftest import ROOT
 
 
-def sum_of_squares(task, shared):
-    lo, hi = task
-    return float(np.sum(shared["y"][lo:hi] ** 2))
+class SumOfSquares:
+    """A work object holding a large array, as the engine's is: ``fn(task)`` for a slice."""
+
+    def __init__(self, y):
+        self.y = y
+
+    def __call__(self, task):
+        lo, hi = task
+        return float(np.sum(self.y[lo:hi] ** 2))
 
 
 def late_first(task):
@@ -46,17 +52,14 @@ def cluster_map():
         yield chunk_map, calls
 
 
-def test_serial_map_applies_fn_in_order_with_and_without_shared():
-    y = np.arange(10.0)
-    # Reference: the sums of squares written out by hand (0+1+4+9+16, 25+36+49+64+81).
-    assert list(serial_chunk_map(sum_of_squares, [(0, 5), (5, 10)], shared={"y": y})) == [30.0, 255.0]
-    assert list(serial_chunk_map(lambda t: t + 1, [3, 1, 2])) == [4, 2, 3]
-
-
-def test_serial_map_reports_each_chunk():
+def test_counting_map_reports_each_chunk_and_keeps_results():
     calls = []
-    list(serial_chunk_map(lambda t: t, range(3), on_chunk=lambda d, t: calls.append((d, t))))
-    assert calls == [(1, 3), (2, 3), (3, 3)]
+    chunk_map = counting_chunk_map(lambda d, t: calls.append((d, t)))
+    # Reference: the sums of squares written out by hand (0+1+4+9+16, 25+36+49+64+81).
+    assert list(chunk_map(SumOfSquares(np.arange(10.0)), [(0, 5), (5, 10)])) == [30.0, 255.0]
+    assert calls == [(1, 2), (2, 2)]
+    reversed_map = counting_chunk_map(lambda d, t: None, lambda fn, tasks: [fn(t) for t in tasks])
+    assert list(reversed_map(lambda t: t + 1, [3, 1, 2])) == [4, 2, 3]
 
 
 def test_dask_toy_computation_matches_one_process(cluster_map):
@@ -64,7 +67,7 @@ def test_dask_toy_computation_matches_one_process(cluster_map):
     calls.clear()
     y = np.random.default_rng(7).normal(size=20_000)
     tasks = [(lo, lo + 1_000) for lo in range(0, 20_000, 1_000)]
-    got = list(chunk_map(sum_of_squares, tasks, shared={"y": y}))
+    got = list(chunk_map(SumOfSquares(y), tasks))
     # Reference: numpy's own sum of squares of each slice, computed here without any chunk map.
     assert got == [float(np.sum(y[lo:hi] ** 2)) for lo, hi in tasks]
     assert [d for d, _ in calls] == list(range(1, 21)) and {t for _, t in calls} == {20}
@@ -90,9 +93,9 @@ def test_dask_option_errors():
         with dask_chunk_map(None, 0):
             pass
     with pytest.raises(TypeError, match="callable"):
-        list(serial_chunk_map("not a function", [1]))
-    with pytest.raises(TypeError, match="shared"):
-        list(serial_chunk_map(sum_of_squares, [1], shared=[1, 2]))
+        list(counting_chunk_map(lambda d, t: None)("not a function", [1]))
+    with pytest.raises(TypeError, match="on_chunk"):
+        counting_chunk_map("not a function")
 
 
 def test_scheduler_address_from_environment(monkeypatch):
