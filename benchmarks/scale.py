@@ -163,8 +163,10 @@ def report(n: int, m: int, draws: int, figures: dict) -> None:
     print(f"\n{n:,} units x {m} outcome(s) x {draws:,} draws, complete design")
     print(f"  {'step':<34} {'seconds':>9} {'peak GB':>8}")
     for name, seconds, peak in rows:
-        print(f"  {name:<34} {seconds:9.2f} {peak:8.2f}")
-    rand = sum(s for name, s, _ in rows if name == "randomization tests")
+        print(f"  {name.split(':')[0]:<34} {seconds:9.2f} {peak:8.2f}")
+    # The pass over the draws: "randomization tests" (then balance and attrition after it,
+    # before the one engine pass) or "randomization tests, balance and attrition: one pass".
+    rand = sum(s for name, s, _ in rows if name.startswith("randomization tests"))
     peak = max(p for _, _, p in rows)
     print(f"  {'whole run':<34} {total:9.2f} {peak:8.2f}  (this process)")
     print(f"  notebook kernel peak (child process): {figures['kernel_peak']:.2f} GB")

@@ -165,9 +165,20 @@ def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
         yield _DaskChunkMap(client, on_chunk)
 
 
-def _call(fn: Callable[[Any], Any], task: Any) -> Any:
-    """What a Dask task runs: the worker's copy of ``fn`` on one chunk description."""
-    return fn(task)
+#: Batches of tasks per worker thread and pass: enough to balance the load, few enough that
+#: Dask's per-task overhead (milliseconds) stays small against the chunks' work.
+BATCHES_PER_THREAD = 4
+
+
+def _call_batch(fn: Callable[[Any], Any], batch: list) -> list:
+    """What a Dask task runs: the worker's copy of ``fn`` on a few consecutive chunk descriptions."""
+    return [fn(task) for task in batch]
+
+
+def _batches(tasks: list, threads: int) -> list[list]:
+    """Consecutive runs of tasks, about ``BATCHES_PER_THREAD`` per worker thread."""
+    size = max(1, -(-len(tasks) // max(1, threads * BATCHES_PER_THREAD)))
+    return [tasks[i:i + size] for i in range(0, len(tasks), size)]
 
 
 class _DaskChunkMap:
@@ -187,18 +198,21 @@ class _DaskChunkMap:
         client = self._client
         # The work object holds the large arrays: one copy per worker, not one per task.
         (handle,) = client.scatter([fn], broadcast=True, hash=False)
-        futures = [client.submit(_call, handle, task, pure=False) for task in tasks]
+        batches = _batches(tasks, sum(client.nthreads().values()))
+        futures = [client.submit(_call_batch, handle, batch, pure=False) for batch in batches]
         index = {f.key: i for i, f in enumerate(futures)}
-        ready: dict[int, Any] = {}
-        following = 0
+        ready: dict[int, list] = {}
+        following = done = 0
         try:
-            for done, future in enumerate(as_completed(futures), start=1):
-                ready[index[future.key]] = future.result()
+            for future in as_completed(futures):
+                i = index[future.key]
+                ready[i] = future.result()
                 future.release()
+                done += len(batches[i])
                 if self._on_chunk is not None:
                     self._on_chunk(done, len(tasks))
                 while following in ready:
-                    yield ready.pop(following)
+                    yield from ready.pop(following)
                     following += 1
         finally:
             for future in futures:

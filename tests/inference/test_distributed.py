@@ -70,7 +70,9 @@ def test_dask_toy_computation_matches_one_process(cluster_map):
     got = list(chunk_map(SumOfSquares(y), tasks))
     # Reference: numpy's own sum of squares of each slice, computed here without any chunk map.
     assert got == [float(np.sum(y[lo:hi] ** 2)) for lo, hi in tasks]
-    assert [d for d, _ in calls] == list(range(1, 21)) and {t for _, t in calls} == {20}
+    # Progress counts chunks (tasks) done, in batches: increasing, ending at the total.
+    done = [d for d, _ in calls]
+    assert done == sorted(done) and done[-1] == 20 and {t for _, t in calls} == {20}
 
 
 def test_dask_results_come_back_in_task_order(cluster_map):
@@ -142,3 +144,12 @@ def test_cli_rejects_both_workers_and_scheduler(project_copy):
     assert "Traceback" not in result.output
     assert not (project / "runs").exists() or not any((project / "runs").iterdir())
     assert CliRunner().invoke(main, ["run", str(project), "--workers", "0"]).exit_code == 2
+
+
+def test_batches_keep_every_task_once_in_order():
+    from report_kit.inference.distributed import _batches
+
+    tasks = list(range(23))
+    for threads in (1, 2, 3, 50):
+        batches = _batches(tasks, threads)
+        assert [t for b in batches for t in b] == tasks and all(batches)
