@@ -153,9 +153,11 @@ def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
         raise UsageError("--workers and --scheduler need Dask: pip install 'report-kit[dask]'") from err
     with contextlib.ExitStack() as stack:
         if address is None:
+            # dashboard_address ":0": any free port; the default 8787 may be held by another
+            # cluster on this machine, and Dask then warns (an error under our test settings).
             cluster = stack.enter_context(LocalCluster(
                 n_workers=workers, threads_per_worker=1, processes=processes,
-                dashboard_address=None, silence_logs=40))
+                dashboard_address=":0", silence_logs=40))
             client = stack.enter_context(Client(cluster))
         else:
             try:

@@ -153,3 +153,19 @@ def test_batches_keep_every_task_once_in_order():
     for threads in (1, 2, 3, 50):
         batches = _batches(tasks, threads)
         assert [t for b in batches for t in b] == tasks and all(batches)
+
+
+def test_local_cluster_starts_quietly_when_the_usual_dashboard_port_is_taken():
+    # Port 8787 is Dask's default; another cluster on this machine may hold it. Starting
+    # ours must not warn (warnings are errors here) nor fail.
+    import socket
+
+    with socket.socket() as held:
+        held.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        try:
+            held.bind(("0.0.0.0", 8787))
+            held.listen()
+        except OSError:
+            pass  # already held by someone else: the situation under test
+        with dask_chunk_map(workers=2, processes=False) as chunk_map:
+            assert list(chunk_map(abs, [-1, -2, 3])) == [1, 2, 3]
