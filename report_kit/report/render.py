@@ -155,9 +155,10 @@ def quarto_available() -> bool:
 
 
 def require_renderer(renderer: str) -> None:
-    """Raise :class:`UsageError` now if ``renderer`` is unknown or cannot run here (before any work)."""
+    """Refuse now, before any work: an unknown ``renderer`` (ValueError: library misuse) or one
+    that cannot run on this machine (:class:`UsageError`)."""
     if renderer not in RENDERERS:
-        raise UsageError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
+        raise ValueError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
     if renderer == "quarto" and not quarto_available():
         raise UsageError("--renderer quarto: `quarto` is not on PATH; install it or use the built-in renderer")
 

@@ -50,3 +50,13 @@ def test_estimate_roles():
         {"outcome": "y", "estimand": "CACE", "subgroup": None, "estimator": "unadjusted", "method": "wald_delta"},
     ]
     assert [estimate_role(r, seen) for r in rows] == ["lead", "check", "adjusted", ""]
+
+
+def test_unknown_renderer_is_refused_before_any_work():
+    import pytest
+
+    from report_kit.report.render import require_renderer
+
+    with pytest.raises(ValueError, match="`renderer` must be one of"):
+        require_renderer("latex")
+    require_renderer("builtin")  # the built-in renderer always runs
