@@ -30,6 +30,8 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/engine_pass.py
 	$(BIN)/python benchmarks/floor.py
 	$(BIN)/python benchmarks/exact.py
+	$(BIN)/python benchmarks/scale.py
+	$(BIN)/python benchmarks/workers.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info

@@ -53,6 +53,7 @@ _PUBLIC = {
     "mde": "planning.power", "simulated_power": "planning.power", "plan_power": "planning.plan",
     # the recipe and the audit trail
     "analyse": "analysis", "run_project": "pipeline", "analyse_project": "pipeline",
+    "dask_chunk_map": "inference.distributed",
     "compare_runs": "audit.compare", "verify_run": "audit.verify", "archive_run": "audit.archive",
     "lock_plan": "audit.planlock",
 }

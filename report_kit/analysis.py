@@ -112,6 +112,8 @@ def analyse(study: Study, *, assignment_check: str = "not_checked", chunk_map: C
     (default: one after another in this process; see
     :func:`report_kit.inference.engine.run_pass`); results do not depend on it.
     """
+    if chunk_map is not None and not callable(chunk_map):
+        raise TypeError(f"`chunk_map` must be a chunk map (callable) or None; got {type(chunk_map).__name__}")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ReportKitWarning)
         results, arrays = _sections(study, assignment_check, chunk_map)

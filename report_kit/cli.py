@@ -42,6 +42,42 @@ def _fail(err: Exception, code: int) -> None:
     sys.exit(code)
 
 
+class _ChunkBar:
+    """A rich progress bar of the chunks of randomization draws done (on stderr; quiet off a terminal)."""
+
+    def __init__(self) -> None:
+        self._progress = None
+        self._task = None
+        self._done = 0
+        self._off = False
+
+    def __enter__(self) -> _ChunkBar:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self._progress is not None:
+            self._progress.stop()
+
+    def update(self, done: int, total: int) -> None:
+        from rich.console import Console
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+        if self._off:
+            return
+        if self._progress is None:
+            console = Console(stderr=True)
+            if not console.is_terminal:
+                self._off = True
+                return
+            self._progress = Progress(TextColumn("  · randomization draws"), BarColumn(), MofNCompleteColumn(),
+                                      TimeElapsedColumn(), console=console, transient=True)
+            self._progress.start()
+        if self._task is None or done < self._done:
+            self._task = self._progress.add_task("chunks", total=total)
+        self._done = done
+        self._progress.update(self._task, completed=done, total=total)
+
+
 class Group(click.Group):
     """Maps every report-kit error to its exit code, without a traceback."""
 
@@ -142,21 +178,29 @@ def assign(path: Path, output: Path | None, force: bool) -> None:
               help="builtin (nbconvert + weasyprint, default) or quarto (when on PATH).")
 @click.option("--compare-to", type=click.Path(path_type=Path), help="A previous run: adds 'Changes since the previous run'.")
 @click.option("--no-pdf", is_flag=True, help="Skip the PDF (HTML only).")
-def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool) -> None:
+@click.option("--workers", type=click.IntRange(min=1),
+              help="Compute the randomization draws on a local Dask cluster of N worker processes.")
+@click.option("--scheduler", metavar="ADDRESS",
+              help="Compute the randomization draws on an existing Dask cluster (e.g. tcp://HOST:8786); "
+                   "default: $REPORT_KIT_SCHEDULER.")
+def run(path: Path, renderer: str | None, compare_to: Path | None, no_pdf: bool,
+        workers: int | None, scheduler: str | None) -> None:
     """Analyse, execute the report notebooks and render to runs/<run-id>/."""
     from report_kit.report.notebooks import ReportKernel
 
-    with ReportKernel() as kernel:  # starts now: its start-up overlaps the imports and the analysis
+    with ReportKernel() as kernel, _ChunkBar() as bar:  # the kernel starts now: overlaps imports and analysis
         from report_kit.pipeline import RunOptions, run_project
 
         options = RunOptions(renderer=renderer or "builtin", compare_to=compare_to,
-                             argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf)
+                             argv=tuple(["report-kit", *sys.argv[1:]]), pdf=not no_pdf,
+                             workers=workers, scheduler=scheduler)
 
         def announce(run_dir: str) -> None:
             click.echo(f"report: {run_dir}/report.html")
             _progress(_plan_line(Path(run_dir).parent.parent))
 
-        outcome = run_project(path, options, progress=_progress, on_run_id=announce, kernel=kernel)
+        outcome = run_project(path, options, progress=_progress, on_run_id=announce, kernel=kernel,
+                              on_chunk=bar.update)
     click.echo(f"done: {outcome.report_html}")
     if outcome.report_pdf:
         click.echo(f"      {outcome.report_pdf}")

@@ -8,6 +8,7 @@ run folder behind and never touches an earlier run or ``data/``.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import logging
 import shutil
@@ -21,6 +22,7 @@ import numpy as np
 from report_kit.audit import provenance
 from report_kit.analysis import Analysis, add_points_to_weigh, analyse
 from report_kit.inputs.data import load_study
+from report_kit.inference.distributed import ChunkMapFn, OnChunk, counting_chunk_map, dask_chunk_map, scheduler_address
 from report_kit.errors import SpecError, UsageError
 from report_kit.inputs.model import Study
 from report_kit.audit.planlock import LOCK_NAME
@@ -44,6 +46,8 @@ class RunOptions:
     compare_to: Path | None = None
     argv: tuple[str, ...] = ()
     pdf: bool = True
+    workers: int | None = None          # local Dask cluster of this many worker processes
+    scheduler: str | None = None        # an existing Dask scheduler (else $REPORT_KIT_SCHEDULER)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -78,12 +82,12 @@ def analyse_project(project: Path | str) -> dict:
     return run_analysis(load_project(project)).results
 
 
-def run_analysis(study: Study) -> Analysis:
+def run_analysis(study: Study, *, chunk_map: ChunkMapFn | None = None) -> Analysis:
     """The deterministic analysis step (the assignment check and the plan-lock status included)."""
     from report_kit.audit.planlock import plan_deviations
     from report_kit.design.assignment import assignment_check_status
 
-    result = analyse(study, assignment_check=assignment_check_status(study))
+    result = analyse(study, assignment_check=assignment_check_status(study), chunk_map=chunk_map)
     plan = plan_deviations(study.spec.project_dir)
     result.results["plan"] = plan
     add_points_to_weigh(study, result.results, plan=plan)
@@ -105,6 +109,22 @@ def write_changes(run_dir: Path, compare_to: Path, run_id: str) -> dict:
     return changes
 
 
+@contextlib.contextmanager
+def chunk_map_for(options: RunOptions, on_chunk: OnChunk | None = None):
+    """The chunk map a run uses: Dask when ``workers``/``scheduler`` (or the environment) ask for it.
+
+    Yields ``None`` (the library default) when nothing asks for Dask or for
+    progress, so a plain run imports nothing extra.
+    """
+    if options.workers is not None or scheduler_address(options.scheduler) is not None:
+        with dask_chunk_map(options.scheduler, options.workers, on_chunk=on_chunk) as chunk_map:
+            yield chunk_map
+    elif on_chunk is not None:
+        yield counting_chunk_map(on_chunk)
+    else:
+        yield None
+
+
 def make_run_id(study: Study, now: datetime) -> str:
     """UTC timestamp plus a short hash of the spec and input fingerprints."""
     h = hashlib.sha256(provenance.sha256_file(study.spec.path).encode())
@@ -114,8 +134,12 @@ def make_run_id(study: Study, now: datetime) -> str:
 
 
 def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
-                progress: Progress = _quiet, on_run_id: Progress = _quiet, kernel=None) -> RunOutcome:
+                progress: Progress = _quiet, on_run_id: Progress = _quiet, kernel=None,
+                on_chunk: OnChunk | None = None) -> RunOutcome:
     """Analyse a project, execute the report notebook, render, record provenance.
+
+    ``on_chunk(done, total)`` is called after each chunk of randomization draws
+    (the command line draws a progress bar with it).
 
     ``kernel``: an entered :class:`report_kit.report.notebooks.ReportKernel`
     started before this call (the command line does), or None to start one
@@ -123,14 +147,17 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
     ``OSError`` while writing becomes :class:`report_kit.errors.OutputError`
     (see :mod:`report_kit.runfolder`).
     """
+    from report_kit.report import render
+
     started = datetime.now(timezone.utc)
+    render.require_renderer(options.renderer)
     study = load_project(project)
     if options.compare_to is not None:
         _check_previous_run(options.compare_to)
     runs = study.spec.project_dir / "runs"
     with stop_on_signals():
         try:
-            run_dir, result = _build_run(study, options, started, runs, progress, on_run_id, kernel)
+            run_dir, result = _build_run(study, options, started, runs, progress, on_run_id, kernel, on_chunk)
         except OSError as err:
             raise output_error(err, runs) from err
     pdf = run_dir / "report.pdf"
@@ -139,7 +166,7 @@ def run_project(project: Path | str, options: RunOptions = RunOptions(), *,
 
 
 def _build_run(study: Study, options: RunOptions, started: datetime, runs: Path, progress: Progress,
-               on_run_id: Progress, kernel=None) -> tuple[Path, Analysis]:
+               on_run_id: Progress, kernel=None, on_chunk: OnChunk | None = None) -> tuple[Path, Analysis]:
     """Reserve a run id, build the run in its partial folder, rename it into place."""
     from report_kit.report import notebooks
     from report_kit.report import render
@@ -155,7 +182,8 @@ def _build_run(study: Study, options: RunOptions, started: datetime, runs: Path,
         handler = _log_to(tmp / "run.log")
         log.info("report-kit run of %s (run id %s)", study.spec.project_dir, run_id)
         progress("analysing (estimates, randomization tests, checks)")
-        result = run_analysis(study)
+        with chunk_map_for(options, on_chunk) as chunk_map:
+            result = run_analysis(study, chunk_map=chunk_map)
         write_analysis(tmp, result)
         copy_inputs(study, tmp)
         if options.compare_to is not None:

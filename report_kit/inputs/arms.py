@@ -42,7 +42,7 @@ def arm_spec_problems(design: dict) -> list[str]:
     arms = design.get("arms")
     if arms is None:
         return [f"design.{key}: given without design.arms; list the arm labels (reference first) in "
-                "design.arms" for key in ("contrasts", "factors", "arm_labels") if key in design]
+                "design.arms" for key in ("contrasts", "factors") if key in design]
     labels = [arm_text(a) for a in arms]
     problems = []
     first: dict[str, int] = {}

@@ -17,9 +17,6 @@ is read as text.
 
 from __future__ import annotations
 
-import dataclasses
-import math
-import re
 
 import numpy as np
 import pandas as pd
@@ -31,14 +28,13 @@ from report_kit.inputs.checks import (
     _check_numeric, _require_id_column, _rows, rerandomization_columns,
 )
 from report_kit.inputs.handling import apply_handling, handled_missing_columns
+from report_kit.inputs.ids import _as_text, normalise_ids
 from report_kit.inputs.model import InputFile, Spec, Study
 from report_kit.inputs.readers import SUFFIXES, Table, read_table, resolve_inside
 
 __all__ = ["SUFFIXES", "Table", "load_study", "load_units_for_assignment", "normalise_ids", "read_table",
            "resolve_inside"]
 
-_INT_TEXT = re.compile(r"-?(0|[1-9][0-9]*)")
-_INT64 = (-(2 ** 63), 2 ** 63 - 1)
 
 
 def load_study(spec: Spec) -> Study:
@@ -128,69 +124,6 @@ def load_units_for_assignment(spec: Spec) -> pd.DataFrame:
     _check_drawable(problems, spec, frame, units)
     problems.raise_if_any()
     return frame.sort_values(id_col, kind="mergesort").reset_index(drop=True)
-
-
-def _id_kind(value) -> str:
-    """'missing', 'int', 'float' or 'text' for one id value."""
-    if _is_missing(value):
-        return "missing"
-    value = _plain(value)
-    if isinstance(value, bool):
-        return "text"
-    if isinstance(value, int):
-        return "int" if _INT64[0] <= value <= _INT64[1] else "text"
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return "text"
-        return "int" if value.is_integer() and abs(value) < 2 ** 53 else "float"
-    if isinstance(value, str):
-        text = value.strip()
-        if _INT_TEXT.fullmatch(text) and _INT64[0] <= int(text) <= _INT64[1]:
-            return "int"
-        return "text"
-    return "text"
-
-
-def _as_text(value) -> str:
-    value = _plain(value)
-    if isinstance(value, float) and value.is_integer():
-        return str(int(value))
-    return str(value).strip()
-
-
-def normalise_ids(tables: list[Table], id_col: str) -> list[Table]:
-    """Give the id column of every table one comparable type.
-
-    Whole numbers when every id in every table is a whole number (written
-    without leading zeros), numbers when they are all numbers, text otherwise
-    (numbers written as text, surrounding spaces removed). Missing ids stay
-    missing (and are reported by the id check).
-    """
-    kinds = set()
-    for table in tables:
-        kinds.update(_id_kind(v) for v in table.frame[id_col].tolist())
-    kinds.discard("missing")
-    if kinds <= {"int"}:
-        convert = lambda v: int(str(_plain(v)).strip()) if isinstance(_plain(v), str) else int(_plain(v))  # noqa: E731
-    elif kinds <= {"int", "float"}:
-        convert = lambda v: float(str(_plain(v)).strip()) if isinstance(_plain(v), str) else float(_plain(v))  # noqa: E731
-    else:
-        convert = _as_text
-    out = []
-    for table in tables:
-        values = [None if _id_kind(v) == "missing" else convert(v) for v in table.frame[id_col].tolist()]
-        if any(v is None for v in values):
-            column = pd.Series(values, index=table.frame.index, dtype=object)
-        elif kinds <= {"int"}:
-            column = pd.Series(values, index=table.frame.index, dtype="int64")
-        elif kinds <= {"int", "float"}:
-            column = pd.Series(values, index=table.frame.index, dtype="float64")
-        else:
-            column = pd.Series(values, index=table.frame.index, dtype=object)
-        frame = table.frame.copy()
-        frame[id_col] = column
-        out.append(dataclasses.replace(table, frame=frame))
-    return out
 
 
 def _normalise_labels(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:

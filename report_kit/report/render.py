@@ -235,14 +235,22 @@ def quarto_available() -> bool:
     return shutil.which("quarto") is not None
 
 
+def require_renderer(renderer: str) -> None:
+    """Refuse now, before any work: an unknown ``renderer`` (ValueError: library misuse) or one
+    that cannot run on this machine (:class:`UsageError`)."""
+    if renderer not in RENDERERS:
+        raise ValueError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
+    if renderer == "quarto" and not quarto_available():
+        raise UsageError("--renderer quarto: `quarto` is not on PATH; install it or use the built-in renderer")
+
+
 def render_quarto(notebooks: list[Path], run_dir: Path, *, title: str, pdf: bool) -> None:
     """Render the combined notebook with ``quarto render`` (HTML; PDF via weasyprint of it)."""
     import nbformat
 
     from report_kit.report.view import esc
 
-    if not quarto_available():
-        raise UsageError("--renderer quarto: `quarto` is not on PATH; install it or use the built-in renderer")
+    require_renderer("quarto")
     nb = combine(notebooks)
     # the title as a JSON string (valid YAML) of entities: quarto reads it as Markdown, shows it as text
     nb.cells.insert(0, nbformat.v4.new_raw_cell(f"---\ntitle: {json.dumps(esc(title))}\nexecute:\n  enabled: false\n"
@@ -266,6 +274,5 @@ RENDERERS = {"builtin": render_builtin, "quarto": render_quarto}
 def render_report(notebooks: list[Path], run_dir: Path, *, title: str, renderer: str = "builtin",
                   pdf: bool = True) -> None:
     """Render with the named renderer; ``renderer`` must be one of :data:`RENDERERS`."""
-    if renderer not in RENDERERS:
-        raise ValueError(f"`renderer` must be one of {set(RENDERERS)}; got {renderer!r}")
+    require_renderer(renderer)
     RENDERERS[renderer](notebooks, run_dir, title=title, pdf=pdf)

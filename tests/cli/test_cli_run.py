@@ -15,7 +15,7 @@ from click.testing import CliRunner
 from report_kit.cli import main
 from report_kit.report.render import quarto_available
 
-from tests.conftest import EXAMPLES
+from tests.conftest import EXAMPLES, ROOT
 
 
 def invoke(*args):
@@ -63,30 +63,32 @@ def test_run_estimate_matches_direct_computation(example_runs):
     assert row["estimate"] == pytest.approx(means[1] - means[0], rel=1e-12)
 
 
-def test_data_folder_untouched(project_copy):
-    project = project_copy("quiet-hours")
-    before = tree_digest(project / "data")
-    assert invoke("run", project, "--no-pdf").exit_code == 0
-    assert tree_digest(project / "data") == before
+@pytest.mark.parametrize("name", EXAMPLES)
+def test_data_folder_untouched(example_runs, name):
+    project, _, _ = example_runs[name]
+    assert tree_digest(project / "data") == tree_digest(ROOT / "projects" / name / "data")
 
 
 def test_failed_run_leaves_no_run_folder(project_copy, monkeypatch):
     project = project_copy("quiet-hours")
-    from report_kit.report import render
+    from report_kit.report import notebooks, render
 
     def broken(*args, **kwargs):
         raise render.ReportError("renderer exploded on purpose")
 
     monkeypatch.setitem(render.RENDERERS, "builtin", broken)
+    # The failure comes after the analysis; the notebooks add nothing to what is tested here.
+    monkeypatch.setattr(notebooks, "execute_all", lambda *args, **kwargs: [])
     result = invoke("run", project)
     assert result.exit_code == 1 and "renderer exploded on purpose" in result.output
     assert list((project / "runs").iterdir()) == []
 
 
-def test_failed_run_keeps_earlier_run(project_copy):
-    project = project_copy("quiet-hours")
-    assert invoke("run", project, "--no-pdf").exit_code == 0
-    (first,) = (project / "runs").iterdir()
+def test_failed_run_keeps_earlier_run(example_runs, tmp_path):
+    source, run_dir, _ = example_runs["quiet-hours"]
+    project = tmp_path / "quiet-hours"
+    shutil.copytree(source, project)  # the project with its finished run, shared by the session
+    first = project / "runs" / run_dir.name
     before = tree_digest(first)
     data = project / "data" / "branches.csv"
     data.write_text(data.read_text().replace("Alder,0,", "Alder,7,"))
@@ -142,4 +144,5 @@ def test_quarto_missing_is_a_usage_error(project_copy, monkeypatch):
     monkeypatch.setattr(shutil, "which", lambda name: None)
     project = project_copy("quiet-hours")
     result = invoke("run", project, "--renderer", "quarto")
-    assert result.exit_code == 2 and "quarto" in result.output and not list((project / "runs").iterdir())
+    # Refused before any work: no run folder, not even the runs/ folder.
+    assert result.exit_code == 2 and "quarto" in result.output and not (project / "runs").exists()

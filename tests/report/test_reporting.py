@@ -72,3 +72,14 @@ def test_fmt_count_short_and_huge():
     assert fmt_count("924", 2.9656) == "924"
     assert fmt_count(None, 4301.3) == "≈ 2.0 × 10^4,301"
     assert fmt_count(None, 6.99999) == "≈ 1.0 × 10^7"
+
+
+
+def test_unknown_renderer_is_refused_before_any_work():
+    import pytest
+
+    from report_kit.report.render import require_renderer
+
+    with pytest.raises(ValueError, match="`renderer` must be one of"):
+        require_renderer("latex")
+    require_renderer("builtin")  # the built-in renderer always runs
