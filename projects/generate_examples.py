@@ -66,7 +66,7 @@ def quiet_hours(rng: np.random.Generator) -> None:
     ``QUIET_HOURS_SEED`` (``design.seed`` in the spec), so ``report-kit check``
     re-draws it and finds the ``quiet_hour`` column reproduced.
     """
-    from report_kit.design.mechanism import draw_assignment
+    from report_kit.design.draw import draw_assignment
 
     names = ["Alder", "Birchgate", "Cobble", "Dovecote", "Elmstead", "Fennick",
              "Gorse", "Hollin", "Ivybank", "Juniper", "Kestrel", "Larchmont"]
@@ -153,7 +153,7 @@ def collection_postcards(rng: np.random.Generator) -> None:
     assignments nothing can be listed; the tests are exact through their
     lattice laws (hypergeometric for the 0/1 outcome, the FFT law for the counts).
     """
-    from report_kit.design.mechanism import draw_assignment
+    from report_kit.design.draw import draw_assignment
 
     n = 8000
     ids = [f"H{k:05d}" for k in range(1, n + 1)]

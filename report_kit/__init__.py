@@ -28,7 +28,7 @@ _PUBLIC = {
     "Spec": "inputs.model", "Study": "inputs.model",
     # design
     "Mechanism": "design.mechanism", "AssignmentSource": "design.mechanism",
-    "mechanism_from_arrays": "design.mechanism", "draw_assignment": "design.mechanism",
+    "mechanism_from_arrays": "design.mechanism", "draw_assignment": "design.draw",
     "Rerandomization": "design.rerandomization", "draw_rerandomized": "design.rerandomization",
     "mahalanobis_imbalance": "design.rerandomization", "rerandomized_assignments": "design.rerandomization",
     # inference

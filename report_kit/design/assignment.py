@@ -2,7 +2,7 @@
 
 Owns: ``report-kit assign`` (write the drawn assignment beside the data) and
 the assignment check of ``check``/``run`` (re-draw it and list the ids that
-differ). The drawing algorithm itself lives in :func:`report_kit.design.mechanism.draw_assignment`
+differ). The drawing algorithm itself lives in :func:`report_kit.design.draw.draw_assignment`
 (documented in ``docs/methods/randomization.md``); this module only feeds it
 the units sorted and normalised exactly as :mod:`report_kit.inputs.data` reads them,
 so ``assign`` and ``check`` always see the same ids in the same order.
@@ -68,7 +68,7 @@ def redraw(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
         The units cannot carry the drawn design (e.g. a pair that is not two
         units, or a share that treats nobody); the message names design.yaml.
     """
-    from report_kit.design.mechanism import draw_assignment
+    from report_kit.design.draw import draw_assignment
     from report_kit.design.rerandomization import draw_rerandomized
 
     design = spec.design

@@ -11,9 +11,9 @@ Owns the one abstraction every randomization-based step relies on: a
   does not depend on the chunk size (:meth:`Mechanism.sample_chunks`);
 * choose between the two given ``max_exact`` (:meth:`Mechanism.assignments`).
 
-:func:`draw_assignment` draws the one real assignment of a study from
-``design.seed`` with a fixed, documented algorithm (units sorted by id,
-blocks and clusters sorted by label); see ``docs/methods/randomization.md``.
+The one real assignment of a study is drawn from ``design.seed`` by
+:func:`report_kit.design.draw.draw_assignment`; the sampling algorithms behind
+:meth:`Mechanism.sample_chunks` live in :mod:`report_kit.design.sampling`.
 
 Internally every mechanism except ``bernoulli`` is described the same way:
 *randomization units* (the units themselves, or the clusters) are grouped
@@ -31,16 +31,18 @@ from dataclasses import dataclass, field
 from fractions import Fraction
 
 import numpy as np
-import pandas as pd
 
-from report_kit.errors import DataError, DesignError, UsageError
-from report_kit.validate import MECHANISMS, METHODS, check_choice  # noqa: F401  (METHODS re-exported)
+from report_kit.errors import DesignError, UsageError
+from report_kit.validate import MECHANISMS
+from report_kit.design.arguments import (
+    _check_assignment, _check_kind, _check_positive_int, _check_probability, _check_seed, _codes,
+)
+from report_kit.design.sampling import _IndexStream, _threshold_and_adjust, _unrank_combinations
 
 __all__ = [
     "KINDS",
     "AssignmentSource",
     "Mechanism",
-    "draw_assignment",
     "mechanism_from_arrays",
     "number_treated",
 ]
@@ -52,66 +54,6 @@ _NEEDS_BLOCK = frozenset({"blocked", "blocked_cluster", "matched_pairs"})
 _NEEDS_CLUSTER = frozenset({"cluster", "blocked_cluster"})
 #: Target number of assignment cells (draws x units) held in one chunk.
 CHUNK_CELLS = 1 << 22
-
-
-# --------------------------------------------------------------------------- validation
-
-
-def _check_kind(kind: str) -> str:
-    return check_choice("kind", kind, KINDS)
-
-
-def _check_positive_int(name: str, value, *, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-        raise UsageError(f"`{name}` must be an integer >= {minimum}; got {value!r}")
-    return int(value)
-
-
-def _check_seed(value) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
-        raise UsageError(f"`seed` must be a non-negative integer; got {value!r}")
-    return int(value)
-
-
-def _check_probability(value, *, name: str = "probability") -> float | None:
-    if value is None:
-        return None
-    try:
-        p = float(value)
-    except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}") from err
-    if not 0.0 < p < 1.0:
-        raise UsageError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}")
-    return p
-
-
-def _check_assignment(z, n: int | None = None) -> np.ndarray:
-    arr = np.asarray(z)
-    if arr.ndim != 1:
-        raise DataError(f"the treatment assignment must be one-dimensional; got shape {arr.shape}")
-    if n is not None and arr.size != n:
-        raise DataError(f"the treatment assignment has {arr.size} entries; expected {n}")
-    if arr.dtype.kind == "f" and not np.all(np.isfinite(arr)):
-        raise DataError("the treatment assignment has missing values; every unit needs 0 or 1")
-    if arr.dtype.kind not in "biuf" or not np.all((arr == 0) | (arr == 1)):
-        bad = arr[~np.isin(arr, (0, 1))][:3] if arr.dtype.kind in "biuf" else arr[:3]
-        raise DataError(f"the treatment assignment must hold only 0 and 1; found {np.asarray(bad).tolist()!r}")
-    return arr.astype(np.uint8)
-
-
-def _codes(labels, name: str, n: int) -> tuple[np.ndarray, tuple]:
-    """Sorted distinct labels and the code of every unit (index into them)."""
-    arr = np.asarray(labels)
-    if arr.ndim != 1 or arr.size != n:
-        raise DataError(f"`{name}` must have one label per unit ({n}); got shape {arr.shape}")
-    missing = pd.isna(arr)
-    if np.any(missing):
-        raise DataError(f"`{name}` has {int(missing.sum())} missing label(s); every unit needs a {name}")
-    try:
-        uniq, codes = np.unique(arr, return_inverse=True)
-    except TypeError as err:
-        raise DataError(f"`{name}` labels must be all numbers or all text; got a mixture") from err
-    return codes.astype(np.intp), tuple(uniq.tolist())
 
 
 #: Counts of assignments with more digits than this are described by their size (10^N) only.
@@ -480,277 +422,6 @@ class AssignmentSource:
         return self.mechanism.weights(chunk) if self.method == "exact" else None
 
 
-# --------------------------------------------------------------------------- algorithms
-
-
-def _unrank_combinations(rank: np.ndarray, size: int, treated: int) -> np.ndarray:
-    """Rows of 0/1 (length ``size``) with ``treated`` ones, from colexicographic ranks.
-
-    Combinatorial number system (Knuth, TAOCP 7.2.1.3): rank
-    ``r = sum_i C(c_i, i)`` with ``c_treated > ... > c_1 >= 0``; each ``c_i``
-    is the largest ``c`` with ``C(c, i) <= r``. Complements are used when
-    more than half are treated.
-    """
-    flip = treated > size - treated
-    k = size - treated if flip else treated
-    out = np.zeros((rank.size, size), dtype=np.uint8)
-    rest = rank.astype(np.int64).copy()
-    rows = np.arange(rank.size)
-    cap = np.iinfo(np.int64).max
-    for i in range(k, 0, -1):
-        table = np.array([min(math.comb(c, i), cap) for c in range(size)], dtype=np.int64)
-        c = np.searchsorted(table, rest, side="right") - 1
-        out[rows, c] = 1
-        rest -= table[c]
-    return 1 - out if flip else out
-
-
-def _threshold_and_adjust(
-    rows: int, size: int, treated: int, keys: np.random.Generator, fixes: _IndexStream
-) -> np.ndarray:
-    """Uniform random subsets of ``treated`` out of ``size``, one per row.
-
-    Each unit first gets an independent 16-bit key (four per 64-bit raw word
-    of ``keys``) and is provisionally treated when ``key < round(65536 *
-    treated / size)``. Each row is then brought to exactly ``treated`` by
-    switching a uniformly random subset of the surplus arm, chosen by
-    sequential rejection sampling from ``fixes`` (:func:`_adjust_rows`). Both
-    steps are equivariant under permutations of the units, so the result is
-    uniform over the ``C(size, treated)`` subsets.
-    """
-    words = -(-size // 4)
-    raw = keys.bit_generator.random_raw((rows, words)).astype("<u8", copy=False)
-    key16 = raw.view("<u2")[:, :size]
-    threshold = min(65535, max(1, round(65536 * treated / size)))
-    provisional = key16 < threshold
-    counts = np.count_nonzero(provisional, axis=1)
-    out = provisional.view(np.uint8)
-    off = np.flatnonzero(counts != treated)
-    if off.size:
-        _adjust_rows(out, off, counts[off].astype(np.int64), treated, fixes)
-    return out
-
-
-class _IndexStream:
-    """The values of successive ``rng.integers(0, high, size=m)`` calls, read ahead in blocks.
-
-    numpy draws bounded integers one after another from the bit generator, so
-    one call for ``a + b`` values returns the values of a call for ``a``
-    followed by a call for ``b``. Reading ahead (:meth:`peek`) and consuming
-    later (:meth:`advance`) therefore hands out exactly the values that
-    successive calls would have returned, whatever the block sizes.
-    """
-
-    __slots__ = ("_rng", "_high", "_buffer", "_pos")
-
-    def __init__(self, rng: np.random.Generator, high: int) -> None:
-        self._rng = rng
-        self._high = high
-        self._buffer = np.empty(0, dtype=np.int64)
-        self._pos = 0
-
-    def peek(self, count: int) -> np.ndarray:
-        """The next ``count`` values, without consuming them."""
-        pos = self._pos
-        if pos + count > self._buffer.size:
-            fresh = self._rng.integers(0, self._high, size=max(pos + count - self._buffer.size, _READ_AHEAD))
-            self._buffer = np.concatenate([self._buffer[pos:], fresh])
-            self._pos = pos = 0
-        return self._buffer[pos:pos + count]
-
-    def advance(self, count: int) -> None:
-        """Consume ``count`` values (already peeked)."""
-        self._pos += count
-
-    def take(self, count: int) -> np.ndarray:
-        """The next ``count`` values, consumed."""
-        values = self.peek(count)
-        self._pos += count
-        return values
-
-
-#: Values read ahead at least, per refill of an :class:`_IndexStream`.
-_READ_AHEAD = 4096
-#: Most candidate values examined at once by :func:`_adjust_together` (bounds its memory).
-_WINDOW_VALUES = 1 << 18
-#: Fewest rows tried at once by :func:`_adjust_together` after a row that needed a further batch.
-_MIN_WINDOW = 32
-#: Fewest consecutive rows worth settling together; shorter runs are settled one by one.
-_MIN_RUN = 4
-#: A row is settled on its own when the expected number of distinct surplus-arm candidates in its
-#: first batch exceeds ``need`` by less than this many standard deviations (:func:`_likely_short`).
-_SHORT_MARGIN = 0.5
-
-
-def _adjust_rows(out: np.ndarray, rows: np.ndarray, current: np.ndarray, target: int, fixes: _IndexStream) -> None:
-    """Bring each listed row of ``out`` to exactly ``target`` ones, in place, rows in order.
-
-    For a row with ``c`` provisional ones, ``need = |c - target|`` units of
-    the surplus arm (treated when ``c > target``) are switched. They are found
-    by sequential sampling without replacement: candidates are drawn
-    uniformly with replacement from ``fixes``, in batches of
-    ``ceil(1.3 * need * size / pool) + 16`` (``pool`` the size of the surplus
-    arm), and the first ``need`` distinct candidates that lie in the surplus
-    arm are switched; a row whose batch holds too few takes further batches
-    of the same size. Rows consume ``fixes`` one after another.
-
-    Almost every row is settled by its first batch, so runs of rows are
-    settled together (:func:`_adjust_together`). Rows whose first batch is
-    likely to fall short (:func:`_likely_short`), and runs of fewer than
-    ``_MIN_RUN`` other rows between them, are settled one by one
-    (:func:`_adjust_row`). Either way each row reads the values of ``fixes``
-    that follow those of the row before, so the result is that of settling
-    the rows one by one; the grouping only changes the speed.
-    """
-    size = out.shape[1]
-    surplus = (current > target).astype(np.uint8)
-    need = np.abs(current - target)
-    pool = np.where(surplus == 1, current, size - current)
-    batch = np.ceil(1.3 * need * size / pool).astype(np.int64) + 16
-    alone = _likely_short(need, pool, batch, size)
-    edges = np.flatnonzero(np.diff(alone.view(np.int8))) + 1
-    bounds = [0, *edges.tolist(), rows.size]
-    for lo, hi in zip(bounds[:-1], bounds[1:]):
-        if alone[lo] or hi - lo < _MIN_RUN:
-            _adjust_each(out, rows[lo:hi], surplus[lo:hi], need[lo:hi], batch[lo:hi], fixes)
-        else:
-            _adjust_together(out, rows[lo:hi], surplus[lo:hi], need[lo:hi], batch[lo:hi], fixes)
-
-
-def _likely_short(need: np.ndarray, pool: np.ndarray, batch: np.ndarray, size: int) -> np.ndarray:
-    """Rows whose first batch is likely to hold fewer than ``need`` distinct surplus-arm candidates.
-
-    A guess that only steers the speed of :func:`_adjust_rows`, never the
-    result. With ``B`` uniform draws out of ``size`` units, the number ``D``
-    of distinct units hit among the ``pool`` surplus-arm units is a sum of
-    ``pool`` indicators, each 1 with probability ``1 - a``, any two both 1
-    with probability ``1 - 2a + c``, where ``a = (1 - 1/size)**B`` and
-    ``c = (1 - 2/size)**B``; hence ``E[D] = pool * (1 - a)`` and
-    ``Var[D] = pool * a * (1 - a) + pool * (pool - 1) * (c - a**2)``
-    (the moments of the classical occupancy problem; Feller, *An
-    Introduction to Probability Theory and Its Applications*, vol. 1, from
-    memory). A row is flagged when ``E[D] - need < _SHORT_MARGIN * sqrt(Var[D])``.
-    """
-    a = np.power(1.0 - 1.0 / size, batch)
-    c = np.power(1.0 - 2.0 / size, batch)
-    mean = pool * (1.0 - a)
-    var = np.maximum(pool * a * (1.0 - a) + pool * (pool - 1.0) * (c - a * a), 0.0)
-    return mean - need < _SHORT_MARGIN * np.sqrt(var)
-
-
-def _adjust_each(
-    out: np.ndarray, rows: np.ndarray, surplus: np.ndarray, need: np.ndarray, batch: np.ndarray,
-    fixes: _IndexStream,
-) -> None:
-    """Settle the given rows one by one (:func:`_adjust_row`)."""
-    for r, s, k, b in zip(rows.tolist(), surplus.tolist(), need.tolist(), batch.tolist()):
-        _adjust_row(out[r], s, k, b, fixes)
-
-
-def _adjust_together(
-    out: np.ndarray, rows: np.ndarray, surplus: np.ndarray, need: np.ndarray, batch: np.ndarray,
-    fixes: _IndexStream,
-) -> None:
-    """Settle the given rows in windows (:func:`_adjust_window`), in order.
-
-    A window ends at the first row that needs a further batch; that row is
-    settled on its own and the next window starts after it. Windows grow
-    while they succeed and shrink after a row that fell short; their values
-    are capped at ``_WINDOW_VALUES``.
-    """
-    ends = np.cumsum(batch)
-    start, window = 0, rows.size
-    while start < rows.size:
-        base = int(ends[start - 1]) if start else 0
-        budget = max(int(np.searchsorted(ends, base + _WINDOW_VALUES, side="right")), start + 1)
-        stop = min(rows.size, start + window, budget)
-        part = slice(start, stop)
-        settled = _adjust_window(out, rows[part], surplus[part], need[part], batch[part], fixes)
-        start += settled
-        if start < stop:
-            _adjust_row(out[rows[start]], int(surplus[start]), int(need[start]), int(batch[start]), fixes)
-            start += 1
-            window = max(_MIN_WINDOW, 2 * settled)
-        else:
-            window *= 2
-
-
-def _adjust_window(
-    out: np.ndarray, rows: np.ndarray, surplus: np.ndarray, need: np.ndarray, batch: np.ndarray,
-    fixes: _IndexStream,
-) -> int:
-    """Settle the leading rows that one batch each suffices for; return how many were settled.
-
-    Row ``i`` reads the ``batch[i]`` values of ``fixes`` that follow those of
-    row ``i - 1``. The rows settled are switched in ``out`` (C-contiguous)
-    and their values consumed; the first row whose batch holds fewer than
-    ``need`` distinct surplus-arm candidates, and every row after it, are
-    left untouched.
-    """
-    size = out.shape[1]
-    flat = out.reshape(-1)  # a view: ``out`` is C-contiguous
-    values = fixes.peek(int(batch.sum()))
-    owner = np.repeat(np.arange(rows.size), batch)
-    cells = np.repeat(rows * size, batch) + values
-    hit = np.flatnonzero(flat[cells] == np.repeat(surplus, batch))
-    owner, cells = owner[hit], cells[hit]
-    fresh = _first_occurrences(owner * size + values[hit], rows.size * size)
-    owner, cells = owner[fresh], cells[fresh]
-    found = np.bincount(owner, minlength=rows.size)
-    short = np.flatnonzero(found < need)
-    settled = int(short[0]) if short.size else rows.size
-    rank = np.arange(owner.size) - (np.cumsum(found) - found)[owner]
-    switch = (rank < need[owner]) & (owner < settled)
-    flat[cells[switch]] = 1 - surplus[owner[switch]]
-    fixes.advance(int(batch[:settled].sum()))
-    return settled
-
-
-def _first_occurrences(keys: np.ndarray, span: int) -> np.ndarray:
-    """Boolean mask of the entries of ``keys`` (integers in ``[0, span)``) whose value does not appear earlier.
-
-    A table of first positions when ``span`` is small next to the number of
-    keys; a stable sort otherwise.
-    """
-    position = np.arange(keys.size)
-    if span <= 4 * keys.size:
-        first = np.full(span, keys.size, dtype=position.dtype)
-        np.minimum.at(first, keys, position)
-        return first[keys] == position
-    order = np.argsort(keys, kind="stable")
-    ordered = keys[order]
-    lead = np.ones(keys.size, dtype=bool)
-    lead[1:] = ordered[1:] != ordered[:-1]
-    mask = np.zeros(keys.size, dtype=bool)
-    mask[order[lead]] = True
-    return mask
-
-
-def _adjust_row(row: np.ndarray, surplus: int, need: int, batch: int, fixes: _IndexStream) -> None:
-    """Switch ``need`` uniformly chosen units of the surplus arm of one row, in place.
-
-    Batches of ``batch`` candidates are read from ``fixes`` until ``need``
-    distinct ones in the surplus arm are found (first appearances, in order).
-    """
-    cand = fixes.take(batch)
-    cand = cand[row[cand] == surplus]
-    ordered = np.sort(cand)
-    if cand.size >= need and not np.any(ordered[1:] == ordered[:-1]):
-        row[cand[:need]] = 1 - surplus
-        return
-    picked = _first_distinct(cand, need)
-    while picked.size < need:
-        more = fixes.take(batch)
-        picked = _first_distinct(np.concatenate([picked, more[row[more] == surplus]]), need)
-    row[picked] = 1 - surplus
-
-
-def _first_distinct(values: np.ndarray, limit: int) -> np.ndarray:
-    """The first ``limit`` distinct values, in order of first appearance."""
-    _, first = np.unique(values, return_index=True)
-    return values[np.sort(first)][:limit]
-
-
 # --------------------------------------------------------------------------- construction
 
 
@@ -900,145 +571,11 @@ _BUILDERS = {
 }
 
 
-# --------------------------------------------------------------------------- the real draw
+def __getattr__(name: str):
+    # draw_assignment lived here before 2026-12; it is now in report_kit.design.draw (loaded on first use,
+    # since that module imports this one)
+    if name == "draw_assignment":
+        from report_kit.design.draw import draw_assignment
 
-
-def draw_assignment(kind: str, ids, *, seed: int, block=None, cluster=None, probability=None) -> np.ndarray:
-    """Draw the real assignment of a study from ``design.seed``.
-
-    The algorithm is fixed so that anyone can reproduce the assignment from the
-    spec alone (``docs/methods/randomization.md``):
-
-    1. ``rng = numpy.random.default_rng(seed)``; units are sorted by id
-       (ascending); blocks and clusters are taken in ascending label order,
-       and within a block units (or clusters) keep id (label) order.
-    2. ``p = probability`` (default 0.5); the number treated among ``m``
-       randomization units is :func:`number_treated` ``(p, m)``.
-    3. ``complete``: ``perm = rng.permutation(n)``; the sorted units at
-       positions ``perm[:k]`` are treated. ``blocked``: the same within each
-       block in turn. ``matched_pairs``: ``blocked`` with ``p = 0.5`` (one
-       unit of each pair). ``cluster``: the same over the sorted clusters;
-       units follow their cluster. ``blocked_cluster``: ``cluster`` within
-       each block in turn. ``bernoulli``: unit ``i`` (sorted) is treated
-       when ``rng.random(n)[i] < p``.
-
-    Returns
-    -------
-    ndarray of uint8, shape (n,)
-        0/1 in the order of the given ``ids``.
-    """
-    seed = _check_seed(seed)
-    draw = _draw_plan(kind, ids, block=block, cluster=cluster, probability=probability)
-    return draw(np.random.default_rng(seed))
-
-
-def _draw_plan(kind: str, ids, *, block=None, cluster=None, probability=None):
-    """Validate the units once; return ``draw(rng)``: one assignment (steps 2-3 above) in ``ids`` order.
-
-    Each call consumes ``rng`` as one draw of :func:`draw_assignment` does, so
-    repeated calls continue one documented stream (used by rerandomization).
-    """
-    kind = _check_kind(kind)
-    p = _check_probability(probability)
-    p = 0.5 if p is None else p
-    ids = np.asarray(ids)
-    n = ids.size
-    order = _id_order(ids)
-    if kind in _NEEDS_BLOCK and block is None:
-        raise UsageError(f"`block` is required for mechanism {kind!r}")
-    if kind in _NEEDS_CLUSTER and cluster is None:
-        raise UsageError(f"`cluster` is required for mechanism {kind!r}")
-    if kind == "matched_pairs":
-        p = 0.5
-    bcodes = _codes(block, "block", n)[0][order] if kind in _NEEDS_BLOCK else np.zeros(n, np.intp)
-    ccodes = _codes(cluster, "cluster", n)[0][order] if kind in _NEEDS_CLUSTER else None
-    clabels = np.asarray(cluster)[order] if kind in _NEEDS_CLUSTER else None
-    _check_draw_structure(kind, bcodes, ccodes)
-
-    def draw(rng: np.random.Generator) -> np.ndarray:
-        out = np.empty(n, dtype=np.uint8)
-        out[order] = _DRAWS[kind](rng, n, p, bcodes, clabels)
-        return out
-
-    return draw
-
-
-def _id_order(ids: np.ndarray) -> np.ndarray:
-    if ids.ndim != 1 or ids.size == 0:
-        raise DataError(f"`ids` must be a non-empty one-dimensional array; got shape {ids.shape}")
-    if np.any(pd.isna(ids)):
-        raise DataError("`ids` has missing values; every unit needs an id")
-    try:
-        order = np.argsort(ids, kind="stable")
-    except TypeError as err:
-        raise DataError("`ids` must be all numbers or all text; got a mixture") from err
-    sorted_ids = ids[order]
-    dup = sorted_ids[1:] == sorted_ids[:-1]
-    if np.any(dup):
-        raise DataError(f"`ids` must be unique; {sorted_ids[1:][dup].tolist()[0]!r} appears more than once")
-    return order
-
-
-def _check_draw_structure(kind: str, bcodes: np.ndarray, ccodes: np.ndarray | None) -> None:
-    if kind == "matched_pairs":
-        sizes = np.bincount(bcodes)
-        if np.any(sizes != 2):
-            raise DesignError(f"each pair needs exactly two units; pair number {int(np.argmax(sizes != 2)) + 1} "
-                              f"(in label order) has {int(sizes[sizes != 2][0])}")
-    if kind == "blocked_cluster":
-        first = np.full(int(ccodes.max()) + 1, -1, np.intp)
-        first[ccodes] = bcodes
-        if np.any(first[ccodes] != bcodes):
-            raise DesignError("a cluster spans more than one block; clusters must be nested in blocks")
-
-
-def _split(rng: np.random.Generator, size: int, p: float, where: str) -> np.ndarray:
-    k = number_treated(p, size)
-    _both_arms(k, size, where)
-    z = np.zeros(size, dtype=np.uint8)
-    z[rng.permutation(size)[:k]] = 1
-    return z
-
-
-def _draw_complete(rng, n, p, bcodes, cluster) -> np.ndarray:
-    return _split(rng, n, p, "the study")
-
-
-def _draw_bernoulli(rng, n, p, bcodes, cluster) -> np.ndarray:
-    return (rng.random(n) < p).astype(np.uint8)
-
-
-def _draw_blocked(rng, n, p, bcodes, cluster) -> np.ndarray:
-    z = np.zeros(n, dtype=np.uint8)
-    for b in range(int(bcodes.max()) + 1):
-        members = np.flatnonzero(bcodes == b)
-        z[members] = _split(rng, members.size, p, f"block number {b + 1} (in label order)")
-    return z
-
-
-def _draw_cluster_within(rng, p, clabels: np.ndarray, where: str) -> np.ndarray:
-    ccodes, labels = _codes(clabels, "cluster", clabels.size)
-    return _split(rng, len(labels), p, where)[ccodes]
-
-
-def _draw_cluster(rng, n, p, bcodes, cluster) -> np.ndarray:
-    return _draw_cluster_within(rng, p, cluster, "the study (counting clusters)")
-
-
-def _draw_blocked_cluster(rng, n, p, bcodes, cluster) -> np.ndarray:
-    z = np.zeros(n, dtype=np.uint8)
-    for b in range(int(bcodes.max()) + 1):
-        members = np.flatnonzero(bcodes == b)
-        z[members] = _draw_cluster_within(rng, p, cluster[members], f"block number {b + 1} (in label order)")
-    return z
-
-
-_DRAWS = {
-    "complete": _draw_complete,
-    "bernoulli": _draw_bernoulli,
-    "blocked": _draw_blocked,
-    "cluster": _draw_cluster,
-    "blocked_cluster": _draw_blocked_cluster,
-    "matched_pairs": _draw_blocked,
-}
-
+        return draw_assignment
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

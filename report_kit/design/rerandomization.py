@@ -16,7 +16,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from report_kit.design.mechanism import AssignmentSource, Mechanism, _check_seed, _draw_plan
+from report_kit.design.arguments import _check_seed
+from report_kit.design.draw import _draw_plan
+from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DesignError
 
 __all__ = ["ACCEPT_RTOL", "Rerandomization", "RerandomizedSource", "draw_rerandomized",
@@ -127,7 +129,7 @@ def draw_rerandomized(kind: str, ids, criterion: Rerandomization, *, seed: int, 
 
     Algorithm (reproducible from the spec alone): ``rng =
     numpy.random.default_rng(seed)``; draw a candidate exactly as
-    :func:`~report_kit.design.mechanism.draw_assignment` does (units sorted by
+    :func:`~report_kit.design.draw.draw_assignment` does (units sorted by
     id, blocks and clusters by label), continuing the same ``rng`` for each
     further candidate; return the first candidate with ``M <= max_distance``
     (Morgan & Rubin 2012). The first candidate is the plain draw of

@@ -1,7 +1,7 @@
 """`report-kit assign` and the assignment check of `check` and `run`.
 
 The drawn assignment is checked against a direct call of
-``report_kit.design.mechanism.draw_assignment`` and, for ``complete`` and ``blocked``,
+``report_kit.design.draw.draw_assignment`` and, for ``complete`` and ``blocked``,
 against the algorithm as written in docs/methods/randomization.md, computed
 here with ``numpy.random.default_rng`` alone (units sorted by id; ``perm =
 rng.permutation(n)``; the units at ``perm[:k]`` treated; blocks in label order).
@@ -20,7 +20,7 @@ from click.testing import CliRunner
 from report_kit.design.assignment import check_assignment, write_assignment
 from report_kit.cli import main
 from report_kit.inputs.data import load_study, load_units_for_assignment
-from report_kit.design.mechanism import draw_assignment
+from report_kit.design.draw import draw_assignment
 from report_kit.errors import DataError, DesignError, SpecError, UsageError
 from report_kit.inputs.spec import load_spec
 

@@ -19,9 +19,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from report_kit.design.draw import draw_assignment
 from report_kit.design.mechanism import (
     AssignmentSource,
-    draw_assignment,
     mechanism_from_arrays,
     number_treated,
 )
@@ -539,7 +539,7 @@ def test_identity_grid_reaches_every_path_of_the_current_correction(monkeypatch)
     # the current correction groups rows in several ways (one by one, windows that succeed, windows
     # cut short by a row that needs a further batch; duplicates found by a table or by sorting); the
     # identity grid must run each of them, or the identity test would not cover them
-    from report_kit.design import mechanism as designs
+    from report_kit.design import sampling as designs
 
     seen = Counter()
     window, each, first = designs._adjust_window, designs._adjust_each, designs._first_occurrences

@@ -17,7 +17,8 @@ import pytest
 from scipy import stats
 from scipy.spatial.distance import mahalanobis
 
-from report_kit.design.mechanism import draw_assignment, mechanism_from_arrays
+from report_kit.design.draw import draw_assignment
+from report_kit.design.mechanism import mechanism_from_arrays
 from report_kit.design.rerandomization import (
     Rerandomization,
     RerandomizedSource,

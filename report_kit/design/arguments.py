@@ -1,0 +1,71 @@
+"""Argument checks shared by the modules of ``design/`` (private to the folder).
+
+Each normalises one argument of a mechanism or a draw (kind, counts, seed,
+probability, a 0/1 assignment, block or cluster labels) or raises the error
+that names it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from report_kit.errors import DataError, UsageError
+from report_kit.validate import MECHANISMS, check_choice
+
+
+def _check_kind(kind: str) -> str:
+    return check_choice("kind", kind, MECHANISMS)
+
+
+def _check_positive_int(name: str, value, *, minimum: int = 1) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
+        raise UsageError(f"`{name}` must be an integer >= {minimum}; got {value!r}")
+    return int(value)
+
+
+def _check_seed(value) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
+        raise UsageError(f"`seed` must be a non-negative integer; got {value!r}")
+    return int(value)
+
+
+def _check_probability(value, *, name: str = "probability") -> float | None:
+    if value is None:
+        return None
+    try:
+        p = float(value)
+    except (TypeError, ValueError) as err:
+        raise UsageError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}") from err
+    if not 0.0 < p < 1.0:
+        raise UsageError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}")
+    return p
+
+
+def _check_assignment(z, n: int | None = None) -> np.ndarray:
+    arr = np.asarray(z)
+    if arr.ndim != 1:
+        raise DataError(f"the treatment assignment must be one-dimensional; got shape {arr.shape}")
+    if n is not None and arr.size != n:
+        raise DataError(f"the treatment assignment has {arr.size} entries; expected {n}")
+    if arr.dtype.kind == "f" and not np.all(np.isfinite(arr)):
+        raise DataError("the treatment assignment has missing values; every unit needs 0 or 1")
+    if arr.dtype.kind not in "biuf" or not np.all((arr == 0) | (arr == 1)):
+        bad = arr[~np.isin(arr, (0, 1))][:3] if arr.dtype.kind in "biuf" else arr[:3]
+        raise DataError(f"the treatment assignment must hold only 0 and 1; found {np.asarray(bad).tolist()!r}")
+    return arr.astype(np.uint8)
+
+
+def _codes(labels, name: str, n: int) -> tuple[np.ndarray, tuple]:
+    """Sorted distinct labels and the code of every unit (index into them)."""
+    arr = np.asarray(labels)
+    if arr.ndim != 1 or arr.size != n:
+        raise DataError(f"`{name}` must have one label per unit ({n}); got shape {arr.shape}")
+    missing = pd.isna(arr)
+    if np.any(missing):
+        raise DataError(f"`{name}` has {int(missing.sum())} missing label(s); every unit needs a {name}")
+    try:
+        uniq, codes = np.unique(arr, return_inverse=True)
+    except TypeError as err:
+        raise DataError(f"`{name}` labels must be all numbers or all text; got a mixture") from err
+    return codes.astype(np.intp), tuple(uniq.tolist())
