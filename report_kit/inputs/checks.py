@@ -257,7 +257,7 @@ def _check_ranges(problems: _Problems, spec: Spec, frame: pd.DataFrame, origin: 
 def _check_adjustment_covariates(problems: _Problems, spec: Spec, frame: pd.DataFrame, origin: dict[str, Table],
                                  locate: _Locator) -> None:
     """The covariate-adjusted estimate needs every covariate of every unit with an observed outcome."""
-    if not (spec.analysis.adjust and spec.analysis.covariates):
+    if not (spec.analysis.adjust and spec.analysis.covariates) or spec.analysis.missing_covariates == "mean_indicator":
         return
     observed = np.zeros(len(frame), dtype=bool)
     for o in spec.outcomes:
@@ -270,7 +270,7 @@ def _check_adjustment_covariates(problems: _Problems, spec: Spec, frame: pd.Data
                          f"{gaps.size} unit(s) with an observed outcome: {locate.rows(ids)}; the "
                          "covariate-adjusted estimate (analysis.adjust: true) needs complete baseline "
                          "covariates — fill them in, remove the covariate, set analysis.adjust: false, or "
-                         "declare analysis.missing_covariates: drop_units")
+                         "declare analysis.missing_covariates: mean_indicator or drop_units")
 
 
 def _check_design(problems: _Problems, spec: Spec, frame: pd.DataFrame, units: Table, locate: _Locator) -> None:

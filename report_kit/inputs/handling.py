@@ -4,8 +4,10 @@ Owns the three pre-specifiable options of the spec and what they do to the
 merged frame before the design checks run:
 
 * ``analysis.missing_covariates``: ``error`` (default: a unit without a
-  baseline covariate stops the covariate-adjusted analysis) or ``drop_units``
-  (such units are left out of every analysis);
+  baseline covariate stops the covariate-adjusted analysis), ``drop_units``
+  (such units are left out of every analysis) or ``mean_indicator`` (every unit
+  stays; the balance check and the Lin adjustment fill a gap with the
+  covariate's mean and add a missingness indicator);
 * ``analysis.subgroup_missing``: ``error`` (default), ``own_level`` (the unit
   joins a subgroup level named ``(missing)``) or ``drop`` (the unit is left out
   of that subgroup analysis only);
@@ -50,8 +52,10 @@ def apply_handling(spec: Spec, frame: pd.DataFrame) -> tuple[pd.DataFrame, tuple
 
 def _record(key: str, value: str, ids, statement: str, **extra) -> dict:
     ids = [v.item() if isinstance(v, np.generic) else v for v in ids]
-    return {"key": key, "value": value, "n_units": len(ids), "ids": ids[:_IDS_KEPT], **extra,
-            "changes_plan": bool(ids), "statement": statement}
+    record = {"key": key, "value": value, "n_units": len(ids), "ids": ids[:_IDS_KEPT], **extra,
+              "changes_plan": bool(ids), "statement": statement}
+    record.update(extra)
+    return record
 
 
 def _missing_covariates(spec: Spec, frame: pd.DataFrame):
@@ -60,6 +64,11 @@ def _missing_covariates(spec: Spec, frame: pd.DataFrame):
         return frame, None
     gaps = frame[covariates].isna().any(axis=1).to_numpy()
     ids = frame[spec.data.id][gaps].tolist()
+    if option == "mean_indicator":   # every unit stays; the balance check and Lin adjustment fill the gaps
+        statement = (f"As the plan declares (analysis.missing_covariates: mean_indicator), a missing baseline "
+                     f"covariate is replaced by the covariate's mean and a missingness indicator is added, in the "
+                     f"balance check and the covariate-adjusted estimate: {len(ids)} unit(s) have a gap.")
+        return frame, _record("analysis.missing_covariates", option, ids, statement, changes_plan=False)
     statement = (f"As the plan declares (analysis.missing_covariates: drop_units), units without a value of a "
                  f"baseline covariate are left out of every analysis: {len(ids)} unit(s).")
     return frame[~gaps], _record("analysis.missing_covariates", option, ids, statement)

@@ -70,7 +70,7 @@ def test_nothing_handled_means_no_record_and_a_plan_unchanged(tmp_path):
 
 def test_missing_covariates_drop_units(tmp_path):
     units = units_with(("S3,1,9,", "S3,1,,"), ("S4,0,11,", "S4,0,,"))
-    with pytest.raises(DataError, match="analysis.missing_covariates: drop_units"):
+    with pytest.raises(DataError, match="analysis.missing_covariates: mean_indicator or drop_units"):
         _load(tmp_path / "a", units=units)
     study = _load(tmp_path / "b", spec={"analysis.missing_covariates": "drop_units"}, units=units)
     assert sorted(study.frame["school"]) == ["S1", "S2", "S5", "S6", "S7", "S8"]
@@ -136,3 +136,33 @@ def test_the_assignment_check_sees_every_unit_as_randomized(tmp_path):
     result = runner.invoke(main, ["check", str(project)])
     assert result.exit_code == 0, result.output
     assert "7 units" in result.output and "assignment reproduced from design.seed 2026" in result.output
+
+
+def test_missing_covariates_mean_indicator_keeps_units_and_adjusts(tmp_path):
+    # Reference: Lin (2013) regression y ~ 1 + z + Xc + z:Xc with statsmodels OLS, where X is the
+    # covariate filled with its mean plus a 0/1 missingness indicator (common practice), Xc centred.
+    import numpy as np
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(7)
+    n = 24
+    corner = np.tile([1, 0], n // 2)
+    books = rng.integers(5, 20, n).astype(float)
+    minutes = np.round(150 + 6 * books + 40 * corner + rng.normal(0, 15, n))
+    text = [f"S{i},{corner[i]},{'' if i in (0, 1, 2, 3, 4, 5) else int(books[i])},{int(minutes[i])},north"
+            for i in range(n)]                                       # three gaps in each arm
+    units = "school,corner,books_before,minutes,district\n" + "\n".join(text) + "\n"
+    study = _load(tmp_path, spec={"analysis.missing_covariates": "mean_indicator"}, units=units)
+    assert len(study.frame) == n                                    # every unit stays
+    (record,) = study.handling
+    assert (record["value"], record["n_units"], record["changes_plan"]) == ("mean_indicator", 6, False)
+    results = run_analysis(study).results
+    (row,) = [e for e in results["estimates"] if e["estimator"] == "adjusted" and e["subgroup"] is None]
+    books = study.frame["books_before"].to_numpy(dtype=float)
+    gap = np.isnan(books)
+    X = np.column_stack([np.where(gap, np.nanmean(books), books), gap.astype(float)])
+    Xc = X - X.mean(axis=0)
+    z = study.frame["corner"].to_numpy(dtype=float)
+    design = np.column_stack([np.ones(n), z, Xc, z[:, None] * Xc])
+    fit = sm.OLS(study.frame["minutes"].to_numpy(dtype=float), design).fit()
+    assert row["estimate"] == pytest.approx(fit.params[1], rel=1e-10)
