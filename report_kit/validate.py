@@ -14,7 +14,7 @@ import warnings
 
 import numpy as np
 
-from report_kit.errors import ReportKitWarning, UsageError
+from report_kit.errors import ReportKitWarning
 
 
 def finite_number(name: str, value) -> float:
@@ -75,7 +75,7 @@ def braces(choices) -> str:
 def check_choice(name: str, value, choices) -> str:
     """``value`` when it is one of ``choices`` (strings); UsageError naming the allowed values otherwise."""
     if not isinstance(value, str) or value not in choices:
-        raise UsageError(f"`{name}` must be one of {braces(choices)}; got {value!r}")
+        raise ValueError(f"`{name}` must be one of {braces(choices)}; got {value!r}")
     return value
 
 

@@ -18,7 +18,7 @@ from report_kit.checks.balance import ChunkSource, WeightFn, _check_assignment, 
 from report_kit.checks.bounds import (  # noqa: F401  (lee_bounds, manski_bounds re-exported)
     EffectBounds, _check_outcome, _check_range, _lee, _lee_blocked, _manski, lee_bounds, manski_bounds,
 )
-from report_kit.errors import DataError, UsageError
+from report_kit.errors import DataError
 from report_kit.inference.engine import StoredDraws, drawn_statistics
 from report_kit.inference.pvalues import DrawnStatistics
 from report_kit.validate import METHODS, check_choice
@@ -145,7 +145,7 @@ def _check_indicators(missing, zb: np.ndarray, labels) -> tuple[np.ndarray, tupl
         )
     labels = tuple(labels) if labels is not None else tuple(f"indicator {j + 1}" for j in range(R.shape[1]))
     if len(labels) != R.shape[1]:
-        raise UsageError(f"`labels` must have {R.shape[1]} entries; got {len(labels)}")
+        raise ValueError(f"`labels` must have {R.shape[1]} entries; got {len(labels)}")
     return R, labels
 
 

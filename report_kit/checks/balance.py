@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from report_kit.validate import finite_or_none as _num, mean_impute_with_indicators
-from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.inference.engine import StoredDraws, drawn_statistics
 from report_kit.inference.pvalues import DrawnStatistics
 from report_kit.validate import METHODS, check_choice
@@ -145,10 +145,10 @@ def _check_covariates(X, z, names) -> tuple[np.ndarray, np.ndarray, tuple[str, .
         names = [f"x{j + 1}" for j in range(arr.shape[1])]
     names = tuple(str(s) for s in names)
     if len(names) != arr.shape[1]:
-        raise UsageError(f"`names` must have {arr.shape[1]} entries (one per column of X); got {len(names)}")
+        raise ValueError(f"`names` must have {arr.shape[1]} entries (one per column of X); got {len(names)}")
     dup = sorted({s for s in names if names.count(s) > 1})
     if dup:
-        raise UsageError(f"`names` must be unique; repeated: {dup}")
+        raise ValueError(f"`names` must be unique; repeated: {dup}")
     if np.isinf(arr).any():
         raise DataError("`X` must not contain infinite values")
     return arr, zb, names
@@ -224,7 +224,7 @@ def covariate_balance(X, z, names: Sequence[str], *, block=None) -> tuple[Covari
     if block is not None:
         labels = np.asarray(block, dtype=object)
         if labels.shape != zb.shape:
-            raise UsageError(f"`block` must have one label per unit ({zb.size}); got shape {labels.shape}")
+            raise ValueError(f"`block` must have one label per unit ({zb.size}); got shape {labels.shape}")
         codes = np.unique(labels.astype(str), return_inverse=True)[1].ravel()
     return tuple(_one_covariate(name, arr[:, j], zb, codes) for j, name in enumerate(names))
 

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from report_kit.checks.balance import _check_assignment, _num
-from report_kit.errors import DataError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, ReportKitWarning
 
 __all__ = ["EffectBounds", "lee_bounds", "manski_bounds"]
 
@@ -199,7 +199,7 @@ def _lee_blocked(y, zb: np.ndarray, obs: np.ndarray, block) -> EffectBounds:
     """
     labels = np.asarray(block, dtype=object)
     if labels.shape != zb.shape:
-        raise UsageError(f"`block` must have one label per unit ({zb.size}); got shape {labels.shape}")
+        raise ValueError(f"`block` must have one label per unit ({zb.size}); got shape {labels.shape}")
     codes = np.unique(labels.astype(str), return_inverse=True)[1]
     parts, weights = [], []
     for b in range(int(codes.max()) + 1):
@@ -295,9 +295,9 @@ def _check_range(low, high) -> tuple[float, float]:
     try:
         lo, hi = float(low), float(high)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`low` and `high` must be numbers; got {low!r} and {high!r}") from err
+        raise ValueError(f"`low` and `high` must be numbers; got {low!r} and {high!r}") from err
     if not (np.isfinite(lo) and np.isfinite(hi) and lo < hi):
-        raise UsageError(f"`low` must be finite and below `high`; got low={lo!r}, high={hi!r}")
+        raise ValueError(f"`low` must be finite and below `high`; got low={lo!r}, high={hi!r}")
     return lo, hi
 
 

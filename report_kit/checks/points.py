@@ -13,7 +13,6 @@ from __future__ import annotations
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import asdict, dataclass
 
-from report_kit.errors import UsageError
 from report_kit.estimation.noncompliance import WEAK_FIRST_STAGE_F
 
 __all__ = ["ATTRITION_GAP", "Point", "points_to_weigh"]
@@ -194,9 +193,9 @@ def points_to_weigh(results: Mapping, *, alpha: float = 0.05, label: Callable[[s
         subgroup), declared enrolment that does not match the data.
     """
     if not isinstance(results, Mapping):
-        raise UsageError(f"`results` must be a mapping (the results.json dict); got {type(results).__name__}")
+        raise ValueError(f"`results` must be a mapping (the results.json dict); got {type(results).__name__}")
     if len(arm_labels) != 2:
-        raise UsageError(f"`arm_labels` must name two arms (0, 1); got {arm_labels!r}")
+        raise ValueError(f"`arm_labels` must name two arms (0, 1); got {arm_labels!r}")
     ctx = _Context(results=results, label=label, alpha=float(alpha), arm_labels=tuple(arm_labels),
                    plan=plan, enrolled=enrolled)
     return [p.to_dict() for rule in RULES for p in rule(ctx)]

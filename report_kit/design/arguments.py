@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from report_kit.errors import DataError, UsageError
+from report_kit.errors import DataError
 from report_kit.validate import MECHANISMS, check_choice
 
 
@@ -20,13 +20,13 @@ def _check_kind(kind: str) -> str:
 
 def _check_positive_int(name: str, value, *, minimum: int = 1) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-        raise UsageError(f"`{name}` must be an integer >= {minimum}; got {value!r}")
+        raise ValueError(f"`{name}` must be an integer >= {minimum}; got {value!r}")
     return int(value)
 
 
 def _check_seed(value) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
-        raise UsageError(f"`seed` must be a non-negative integer; got {value!r}")
+        raise ValueError(f"`seed` must be a non-negative integer; got {value!r}")
     return int(value)
 
 
@@ -36,9 +36,9 @@ def _check_probability(value, *, name: str = "probability") -> float | None:
     try:
         p = float(value)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}") from err
+        raise ValueError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}") from err
     if not 0.0 < p < 1.0:
-        raise UsageError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}")
+        raise ValueError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}")
     return p
 
 

@@ -12,7 +12,7 @@ import pandas as pd
 
 from report_kit.design.arguments import _check_kind, _check_probability, _check_seed, _codes
 from report_kit.design.mechanism import _NEEDS_BLOCK, _NEEDS_CLUSTER, _both_arms, number_treated
-from report_kit.errors import DataError, DesignError, UsageError
+from report_kit.errors import DataError, DesignError
 
 __all__ = ["draw_assignment"]
 
@@ -59,9 +59,9 @@ def _draw_plan(kind: str, ids, *, block=None, cluster=None, probability=None):
     n = ids.size
     order = _id_order(ids)
     if kind in _NEEDS_BLOCK and block is None:
-        raise UsageError(f"`block` is required for mechanism {kind!r}")
+        raise ValueError(f"`block` is required for mechanism {kind!r}")
     if kind in _NEEDS_CLUSTER and cluster is None:
-        raise UsageError(f"`cluster` is required for mechanism {kind!r}")
+        raise ValueError(f"`cluster` is required for mechanism {kind!r}")
     if kind == "matched_pairs":
         p = 0.5
     bcodes = _codes(block, "block", n)[0][order] if kind in _NEEDS_BLOCK else np.zeros(n, np.intp)

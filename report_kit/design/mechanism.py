@@ -32,7 +32,7 @@ from fractions import Fraction
 
 import numpy as np
 
-from report_kit.errors import DesignError, UsageError
+from report_kit.errors import DesignError
 from report_kit.validate import MECHANISMS
 from report_kit.design.arguments import (
     _check_assignment, _check_kind, _check_positive_int, _check_probability, _check_seed, _codes,
@@ -234,7 +234,7 @@ class Mechanism:
         total = self.count()
         size = self._chunk_size(chunk_size, total)
         if total > np.iinfo(np.int64).max:
-            raise UsageError(f"cannot enumerate {total} assignments; use sample_chunks")
+            raise ValueError(f"cannot enumerate {total} assignments; use sample_chunks")
         return self._enumerate(total, size)
 
     def _enumerate(self, total: int, size: int) -> Iterator[np.ndarray]:
@@ -283,7 +283,7 @@ class Mechanism:
         """
         rows = _check_positive_int("rows", rows)
         if not isinstance(seed_sequence, np.random.SeedSequence):
-            raise UsageError(f"`seed_sequence` must be a numpy.random.SeedSequence; got {type(seed_sequence).__name__}")
+            raise ValueError(f"`seed_sequence` must be a numpy.random.SeedSequence; got {type(seed_sequence).__name__}")
         key_seq, fix_seq = seed_sequence.spawn(2)
         keys = np.random.Generator(np.random.PCG64(key_seq))
         fixes = _IndexStream(np.random.Generator(np.random.PCG64(fix_seq)), self.n_groups)
@@ -293,9 +293,9 @@ class Mechanism:
         """Assignments number ``start`` to ``stop - 1`` of :meth:`enumerate_chunks`, as ``uint8`` rows."""
         total = self.count()
         if total > np.iinfo(np.int64).max:
-            raise UsageError(f"cannot enumerate {total} assignments; use sample_chunks")
+            raise ValueError(f"cannot enumerate {total} assignments; use sample_chunks")
         if not (isinstance(start, int) and isinstance(stop, int) and 0 <= start <= stop <= total):
-            raise UsageError(f"`start` and `stop` must be integers with 0 <= start <= stop <= {total}; "
+            raise ValueError(f"`start` and `stop` must be integers with 0 <= start <= stop <= {total}; "
                              f"got {start!r}, {stop!r}")
         return self._unrank(np.arange(start, stop, dtype=np.int64))
 
@@ -459,9 +459,9 @@ def mechanism_from_arrays(kind: str, z, *, block=None, cluster=None, probability
     z = _check_assignment(z)
     n = z.size
     if kind in _NEEDS_BLOCK and block is None:
-        raise UsageError(f"`block` is required for mechanism {kind!r}")
+        raise ValueError(f"`block` is required for mechanism {kind!r}")
     if kind in _NEEDS_CLUSTER and cluster is None:
-        raise UsageError(f"`cluster` is required for mechanism {kind!r}")
+        raise ValueError(f"`cluster` is required for mechanism {kind!r}")
     probability = _check_probability(probability)
     builder = _BUILDERS[kind]
     parts = builder(z, n, block, cluster, probability)

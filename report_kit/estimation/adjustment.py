@@ -31,7 +31,7 @@ from report_kit.estimation.core import (
     _validate,
     _warn,
 )
-from report_kit.errors import DataError, DesignError, UsageError
+from report_kit.errors import DataError, DesignError
 from report_kit.validate import mean_impute_with_indicators
 
 __all__ = ["MISSING_COVARIATES", "estimate_adjusted"]
@@ -82,12 +82,12 @@ def estimate_adjusted(y, z, X, *, mechanism: str, block=None, cluster=None,
     """
     y, design = _validate(y, z, mechanism, block, cluster, alpha)
     if missing_covariates not in MISSING_COVARIATES:
-        raise UsageError(f"`missing_covariates` must be one of {MISSING_COVARIATES}; "
+        raise ValueError(f"`missing_covariates` must be one of {MISSING_COVARIATES}; "
                          f"got {missing_covariates!r}")
     X = _covariates(X, design.n)
     names = tuple(names) if names is not None else tuple(f"x{j + 1}" for j in range(X.shape[1]))
     if len(names) != X.shape[1]:
-        raise UsageError(f"`names` must have one entry per covariate ({X.shape[1]}); got {len(names)}")
+        raise ValueError(f"`names` must have one entry per covariate ({X.shape[1]}); got {len(names)}")
     s = _sample(design, y, np.ones(design.n, dtype=bool))
     Xs = X[s.pos]
     missing = np.isnan(Xs).any(axis=1)
@@ -141,7 +141,7 @@ def _covariates(X, n: int) -> np.ndarray:
     if arr.ndim == 1:
         arr = arr[:, None]
     if arr.ndim != 2 or arr.shape[0] != n:
-        raise UsageError(f"`X` must have shape (n, k) with n = {n}; got shape {arr.shape}")
+        raise ValueError(f"`X` must have shape (n, k) with n = {n}; got shape {arr.shape}")
     return arr
 
 

@@ -31,7 +31,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.inputs.model import MECHANISMS
 
 
@@ -113,9 +113,9 @@ class _Sample:
 
 def _validate(y, z, mechanism, block, cluster, alpha) -> tuple[np.ndarray, _Design]:
     if mechanism not in MECHANISMS:
-        raise UsageError(f"`mechanism` must be one of {set(MECHANISMS)}; got {mechanism!r}")
+        raise ValueError(f"`mechanism` must be one of {set(MECHANISMS)}; got {mechanism!r}")
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
-        raise UsageError(f"`alpha` must be a number strictly between 0 and 1; got {alpha!r}")
+        raise ValueError(f"`alpha` must be a number strictly between 0 and 1; got {alpha!r}")
     z = _binary(z, "z", allow_missing=False)
     y = _vector(y, "y", z.size)
     block_codes = _labels(block, "block", mechanism, BLOCKED, z.size)
@@ -133,7 +133,7 @@ def _vector(values, name: str, n: int) -> np.ndarray:
     except (TypeError, ValueError) as err:
         raise DataError(f"`{name}` must be numeric; {err}") from err
     if arr.ndim != 1 or arr.size != n:
-        raise UsageError(f"`{name}` must be a 1-d array of length {n} (one value per unit); "
+        raise ValueError(f"`{name}` must be a 1-d array of length {n} (one value per unit); "
                          f"got shape {arr.shape}")
     return arr
 
@@ -154,11 +154,11 @@ def _labels(values, name, mechanism, mechanisms, n) -> np.ndarray | None:
             raise DesignError(f"mechanism {mechanism!r} needs `{name}` (one label per unit); got None")
         return None
     if mechanism not in mechanisms:
-        raise UsageError(f"`{name}` applies only to mechanisms {set(mechanisms)}; "
+        raise ValueError(f"`{name}` applies only to mechanisms {set(mechanisms)}; "
                          f"got mechanism {mechanism!r}")
     series = pd.Series(np.asarray(values, dtype=object))
     if series.size != n:
-        raise UsageError(f"`{name}` must have one label per unit ({n}); got {series.size}")
+        raise ValueError(f"`{name}` must have one label per unit ({n}); got {series.size}")
     try:
         codes, _ = pd.factorize(series, sort=True)
     except TypeError:  # labels of mixed types cannot be sorted: keep data order

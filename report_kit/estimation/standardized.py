@@ -15,7 +15,6 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import special
 
-from report_kit.errors import UsageError
 from report_kit.estimation.core import BLOCKED
 from report_kit.validate import finite_or_none
 
@@ -54,7 +53,7 @@ def hedges_correction(df: float) -> float:
     (Hedges 1981, eq. 6e). Computed with log-gamma so large ``m`` does not overflow.
     """
     if isinstance(df, bool) or not isinstance(df, (int, float, np.integer, np.floating)) or not df > 1:
-        raise UsageError(f"`df` must be a number > 1; got {df!r}")
+        raise ValueError(f"`df` must be a number > 1; got {df!r}")
     m = float(df)
     return math.exp(special.gammaln(m / 2) - special.gammaln((m - 1) / 2)) / math.sqrt(m / 2)
 
@@ -63,9 +62,9 @@ def _arms(y, z) -> tuple[np.ndarray, np.ndarray]:
     y = np.asarray(y, dtype=float)
     z = np.asarray(z)
     if y.ndim != 1 or z.shape != y.shape:
-        raise UsageError(f"`y` and `z` must be 1-D arrays of the same length; got shapes {y.shape} and {z.shape}")
+        raise ValueError(f"`y` and `z` must be 1-D arrays of the same length; got shapes {y.shape} and {z.shape}")
     if not np.isin(z, (0, 1)).all():
-        raise UsageError("`z` must hold only 0 (control) and 1 (treated)")
+        raise ValueError("`z` must hold only 0 (control) and 1 (treated)")
     keep = ~np.isnan(y)
     return y[keep & (z == 1)], y[keep & (z == 0)]
 
@@ -106,7 +105,7 @@ def standardized_effect(estimate, y, z, *, method: str = "hedges_g") -> Standard
         undefined or the denominator is zero.
     """
     if method not in STD_EFFECT_METHODS:
-        raise UsageError(f"`method` must be one of {set(STD_EFFECT_METHODS)}; got {method!r}")
+        raise ValueError(f"`method` must be one of {set(STD_EFFECT_METHODS)}; got {method!r}")
     y1, y0 = _arms(y, z)
     sd = _denominator(method, y1, y0)
     value = finite_or_none(estimate)
@@ -133,7 +132,7 @@ def blocks_left_out(y, z, block) -> int:
     z = np.asarray(z)
     block = np.asarray(block, dtype=object)
     if not (y.shape == z.shape == block.shape):
-        raise UsageError("`y`, `z` and `block` must have the same length")
+        raise ValueError("`y`, `z` and `block` must have the same length")
     keep = ~np.isnan(y)
     left = 0
     for label in dict.fromkeys(block.tolist()):

@@ -28,7 +28,7 @@ from report_kit.estimation.core import (
     _unadjusted,
     _validate,
 )
-from report_kit.errors import DataError, UsageError
+from report_kit.errors import DataError
 
 __all__ = ["SubgroupDifference", "SubgroupResult", "estimate_subgroups"]
 
@@ -115,7 +115,7 @@ def estimate_subgroups(y, z, g, *, mechanism: str, block=None, cluster=None,
 def _group_codes(g, n: int) -> tuple[np.ndarray, list[str]]:
     series = pd.Series(np.asarray(g, dtype=object))
     if series.size != n:
-        raise UsageError(f"`g` must have one label per unit ({n}); got {series.size}")
+        raise ValueError(f"`g` must have one label per unit ({n}); got {series.size}")
     try:
         codes, uniques = pd.factorize(series, sort=True)
     except TypeError:

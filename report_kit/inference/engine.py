@@ -35,7 +35,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from report_kit.design.mechanism import AssignmentSource, Mechanism
-from report_kit.errors import DataError, UsageError
+from report_kit.errors import DataError
 from report_kit.inference.kernels import _KERNELS, _analytic_centre
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics, null_centre, tail_p_values, tie_tolerance
 from report_kit.validate import ALTERNATIVES, METHODS, STATISTICS, check_choice, finite_number
@@ -99,7 +99,7 @@ def _check_alternatives(alternative, m: int) -> tuple[str, ...]:
         return (_check_choice("alternative", alternative, ALTERNATIVES),) * m
     alts = tuple(alternative)
     if len(alts) != m:
-        raise UsageError(f"`alternative` must be one string or one per outcome ({m}); got {len(alts)}")
+        raise ValueError(f"`alternative` must be one string or one per outcome ({m}); got {len(alts)}")
     return tuple(_check_choice("alternative", a, ALTERNATIVES) for a in alts)
 
 
@@ -108,21 +108,21 @@ def _check_names(outcomes, m: int) -> tuple[str, ...]:
         return tuple(f"y{j}" for j in range(m))
     names = tuple(str(o) for o in outcomes)
     if len(names) != m:
-        raise UsageError(f"`outcomes` must name each of the {m} outcome columns; got {len(names)}")
+        raise ValueError(f"`outcomes` must name each of the {m} outcome columns; got {len(names)}")
     return names
 
 
 def _check_source(source, mechanism: Mechanism) -> AssignmentSource:
     if not isinstance(source, AssignmentSource):
-        raise UsageError(f"`source` must be an AssignmentSource (Mechanism.assignments); got {type(source).__name__}")
+        raise ValueError(f"`source` must be an AssignmentSource (Mechanism.assignments); got {type(source).__name__}")
     if source.mechanism is not mechanism:
-        raise UsageError("`source` was built from a different mechanism than the one given")
+        raise ValueError("`source` was built from a different mechanism than the one given")
     return source
 
 
 def _check_rtol(rtol) -> float:
     if not isinstance(rtol, (int, float)) or not 0.0 <= float(rtol) < 1e-3:
-        raise UsageError(f"`rtol` must be a number in [0, 0.001); got {rtol!r}")
+        raise ValueError(f"`rtol` must be a number in [0, 0.001); got {rtol!r}")
     return float(rtol)
 
 
@@ -234,7 +234,7 @@ class StoredDraws(_Draws):
         try:
             iterator = iter(source)
         except TypeError as err:
-            raise UsageError("`chunks` must be an iterable of (k, n) 0/1 arrays or a callable returning one; "
+            raise ValueError("`chunks` must be an iterable of (k, n) 0/1 arrays or a callable returning one; "
                              f"got {type(source).__name__}") from err
         parts, wparts = [], []
         for i, chunk in enumerate(iterator):
@@ -242,13 +242,13 @@ class StoredDraws(_Draws):
             if arr.ndim == 1:
                 arr = arr[None, :]
             if arr.ndim != 2 or arr.shape[1] != n:
-                raise UsageError(f"assignment chunk {i} must have shape (k, {n}); got {np.shape(chunk)}")
+                raise ValueError(f"assignment chunk {i} must have shape (k, {n}); got {np.shape(chunk)}")
             if arr.dtype.kind != "b" and arr.size and not np.isin(arr, (0, 1)).all():
-                raise UsageError(f"assignment chunk {i} must contain only 0 and 1")
+                raise ValueError(f"assignment chunk {i} must contain only 0 and 1")
             parts.append(arr.astype(np.uint8))
             wparts.append(_given_weights(weights, arr, method, i))
         if not parts or sum(p.shape[0] for p in parts) == 0:
-            raise UsageError("`chunks` yielded no assignment")
+            raise ValueError("`chunks` yielded no assignment")
         z = np.concatenate(parts)
         w = None if all(x is None for x in wparts) else np.concatenate(
             [np.ones(p.shape[0]) if x is None else x for p, x in zip(parts, wparts)])
@@ -264,10 +264,10 @@ def _given_weights(weights, chunk: np.ndarray, method: str, i: int) -> np.ndarra
     if w is None:
         return None
     if method != "exact":
-        raise UsageError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
+        raise ValueError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
     w = np.asarray(w, dtype=np.float64)
     if w.shape != (chunk.shape[0],) or not np.isfinite(w).all() or (w < 0).any():
-        raise UsageError(f"`weights` of chunk {i} must be {chunk.shape[0]} finite non-negative numbers")
+        raise ValueError(f"`weights` of chunk {i} must be {chunk.shape[0]} finite non-negative numbers")
     return w
 
 
@@ -341,7 +341,7 @@ def run_pass(draws: _Draws, statistics: Sequence[Statistic], *, chunk_map: Chunk
     null = [np.concatenate(p) if p else np.empty((0, 0)) for p in parts]
     wts = None if not weights or all(w is None for w in weights) else np.concatenate(weights)
     if wts is not None and draws.method != "exact":
-        raise UsageError("`weights` apply to exact enumeration only")
+        raise ValueError("`weights` apply to exact enumeration only")
     return null, wts
 
 
@@ -408,7 +408,7 @@ class NullDistribution:
         for j, alt in enumerate(alts):
             if self.statistic == "ks":
                 if alt != self.direction:
-                    raise UsageError(f"this ks null distribution measures the {self.direction!r} distance; "
+                    raise ValueError(f"this ks null distribution measures the {self.direction!r} distance; "
                                      f"got alternative {alt!r}")
             elif alt == "less":
                 obs[j], null[:, j] = -obs[j], -null[:, j]

@@ -32,7 +32,7 @@ from report_kit.inference.engine import (
     _run,
 )
 from report_kit.design.mechanism import AssignmentSource, Mechanism
-from report_kit.errors import DataError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, ReportKitWarning
 from report_kit.inference.pvalues import DEFAULT_RTOL, null_centre, tail_p_values
 
 __all__ = ["Interval", "invert_test"]
@@ -249,7 +249,7 @@ def invert_test(y, mechanism: Mechanism, *, source: AssignmentSource, level: flo
 
 def _check_level(level) -> float:
     if not isinstance(level, (int, float)) or not 0.0 < float(level) < 1.0:
-        raise UsageError(f"`level` must be a number strictly between 0 and 1; got {level!r}")
+        raise ValueError(f"`level` must be a number strictly between 0 and 1; got {level!r}")
     return float(level)
 
 

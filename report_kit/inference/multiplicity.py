@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.inference.pvalues import DEFAULT_RTOL, tie_tolerance
 from report_kit.inputs.model import FAMILIES, MULTIPLICITY
 from report_kit.validate import METHODS, check_choice
@@ -38,11 +38,11 @@ def _check_p(p) -> np.ndarray:
     try:
         arr = np.asarray(p, dtype=float)
     except (TypeError, ValueError) as err:
-        raise UsageError("`p` must be a sequence of numbers") from err
+        raise ValueError("`p` must be a sequence of numbers") from err
     if arr.ndim != 1:
-        raise UsageError(f"`p` must be one-dimensional; got shape {arr.shape}")
+        raise ValueError(f"`p` must be one-dimensional; got shape {arr.shape}")
     if not (np.isfinite(arr).all() and (arr >= 0).all() and (arr <= 1).all()):
-        raise UsageError("`p` must hold p-values in [0, 1] (no NaN)")
+        raise ValueError("`p` must hold p-values in [0, 1] (no NaN)")
     return arr
 
 
@@ -98,29 +98,29 @@ def _check_wy(observed, null, method: str, kind: str, weights, tolerance
               ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     check_choice("method", method, METHODS)
     if kind not in WY_KINDS:
-        raise UsageError(f"`kind` must be one of {{'min_p', 'max_t'}}; got {kind!r}")
+        raise ValueError(f"`kind` must be one of {{'min_p', 'max_t'}}; got {kind!r}")
     obs = np.asarray(observed, dtype=float)
     nul = np.asarray(null, dtype=float)
     if obs.ndim != 1:
-        raise UsageError(f"`observed` must be one-dimensional (m,); got shape {obs.shape}")
+        raise ValueError(f"`observed` must be one-dimensional (m,); got shape {obs.shape}")
     if nul.ndim != 2 or nul.shape[1] != obs.size or nul.shape[0] == 0:
-        raise UsageError(f"`null` must have shape (B, {obs.size}) with B >= 1; got {nul.shape}")
+        raise ValueError(f"`null` must have shape (B, {obs.size}) with B >= 1; got {nul.shape}")
     if not (np.isfinite(obs).all() and np.isfinite(nul).all()):
         raise DataError("`observed` and `null` must be finite")
     if weights is None:
         w = np.ones(nul.shape[0])
     else:
         if method != "exact":
-            raise UsageError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
+            raise ValueError("`weights` apply to exact enumeration only; Monte Carlo draws follow the mechanism")
         w = np.asarray(weights, dtype=float)
         if w.shape != (nul.shape[0],) or not np.isfinite(w).all() or (w < 0).any() or w.sum() <= 0:
-            raise UsageError(f"`weights` must be {nul.shape[0]} finite non-negative numbers with a positive sum")
+            raise ValueError(f"`weights` must be {nul.shape[0]} finite non-negative numbers with a positive sum")
     if tolerance is None:
         tol = tie_tolerance(obs, nul, None, DEFAULT_RTOL)
     else:
         tol = np.asarray(tolerance, dtype=float)
         if tol.shape != obs.shape or not np.isfinite(tol).all() or (tol < 0).any():
-            raise UsageError(f"`tolerance` must hold {obs.size} finite numbers >= 0")
+            raise ValueError(f"`tolerance` must hold {obs.size} finite numbers >= 0")
     if method == "monte_carlo":
         nul = np.vstack([obs[None, :], nul])  # the +1 rule: the observed draw counts
         w = np.ones(nul.shape[0])
@@ -249,11 +249,11 @@ def _as_shared_null(family: str, value) -> SharedNull:
     if isinstance(value, SharedNull):
         return value
     if not isinstance(value, Mapping):
-        raise UsageError(f"`null_by_family[{family!r}]` must be a SharedNull or a mapping; "
+        raise ValueError(f"`null_by_family[{family!r}]` must be a SharedNull or a mapping; "
                          f"got {type(value).__name__}")
     missing = {"outcomes", "observed", "null", "method"} - set(value)
     if missing:
-        raise UsageError(f"`null_by_family[{family!r}]` lacks keys {sorted(missing)}")
+        raise ValueError(f"`null_by_family[{family!r}]` lacks keys {sorted(missing)}")
     return SharedNull(outcomes=tuple(value["outcomes"]), observed=np.asarray(value["observed"]),
                       null=np.asarray(value["null"]), method=value["method"],
                       kind=value.get("kind", "min_p"), weights=value.get("weights"),
@@ -270,7 +270,7 @@ def _main_test(tests: Sequence[Mapping], spec) -> Mapping | None:
         and t.get("subgroup") is None
     ]
     if len(found) > 1:
-        raise UsageError(f"`tests` has {len(found)} entries for outcome {spec.column!r} with its "
+        raise ValueError(f"`tests` has {len(found)} entries for outcome {spec.column!r} with its "
                          f"statistic {spec.statistic!r} at null_effect 0; expected one")
     return found[0] if found else None
 
@@ -286,7 +286,7 @@ def _usable_shared(shared: SharedNull, tested: list[str]) -> SharedNull | None:
     index = {name: j for j, name in enumerate(shared.outcomes)}
     absent = [c for c in tested if c not in index]
     if absent:
-        raise UsageError(f"shared null draws cover outcomes {list(shared.outcomes)}; "
+        raise ValueError(f"shared null draws cover outcomes {list(shared.outcomes)}; "
                          f"the family's tested outcomes {absent} are not among them")
     if not tested:
         return None
@@ -350,11 +350,11 @@ def study_multiplicity(tests: Sequence[Mapping], outcomes, null_by_family: Mappi
         ``tests``. Families are adjusted separately.
     """
     if lead is not None and lead not in MULTIPLICITY:
-        raise UsageError(f"`lead` must be one of {{'none', 'holm', 'bh', 'westfall_young'}}; got {lead!r}")
+        raise ValueError(f"`lead` must be one of {{'none', 'holm', 'bh', 'westfall_young'}}; got {lead!r}")
     shared = {f: _as_shared_null(f, v) for f, v in (null_by_family or {}).items()}
     unknown = sorted(set(shared) - set(FAMILIES))
     if unknown:
-        raise UsageError(f"`null_by_family` keys must be families {set(FAMILIES)}; got {unknown}")
+        raise ValueError(f"`null_by_family` keys must be families {set(FAMILIES)}; got {unknown}")
     pvals = {}
     for spec in outcomes:
         entry = _main_test(tests, spec)
@@ -366,7 +366,7 @@ def study_multiplicity(tests: Sequence[Mapping], outcomes, null_by_family: Mappi
         if not columns:
             continue
         if lead == "westfall_young" and family not in shared and any(pvals[c] is not None for c in columns):
-            raise UsageError(f"analysis.multiplicity is 'westfall_young' but no shared null draws "
+            raise ValueError(f"analysis.multiplicity is 'westfall_young' but no shared null draws "
                              f"were given for family {family!r}")
         adjusted = _family_adjustments(columns, pvals, shared.get(family))
         for column in columns:

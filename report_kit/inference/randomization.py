@@ -51,7 +51,7 @@ from report_kit.inference.engine import (
 from report_kit.design.assignment import study_criterion
 from report_kit.design.mechanism import AssignmentSource, Mechanism, mechanism_from_arrays
 from report_kit.design.rerandomization import RerandomizedSource, rerandomized_assignments
-from report_kit.errors import ReportKitWarning, UsageError
+from report_kit.errors import ReportKitWarning
 from report_kit.inference.exact_tests import upgrade_tests
 from report_kit.inference.inversion import Interval, _interval, _LinearInversion, invert_test
 from report_kit.inference.kernels import Kernel  # noqa: F401
@@ -285,7 +285,7 @@ class StudyRandomization:
         names = tuple(self.distributions) if outcomes is None else tuple(outcomes)
         unknown = [o for o in names if o not in self.distributions]
         if unknown:
-            raise UsageError(f"`outcomes` must be among {sorted(self.distributions)}; got {unknown[0]!r}")
+            raise ValueError(f"`outcomes` must be among {sorted(self.distributions)}; got {unknown[0]!r}")
         cols = [self.distributions[o].oriented(self.alternatives[o], rtol) for o in names]
         first = self.distributions[names[0]] if names else None
         return JointNull(

@@ -13,7 +13,7 @@ import pytest
 from scipy import stats
 
 from report_kit.checks import attrition
-from report_kit.errors import DataError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, ReportKitWarning
 from report_kit.inputs.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
 
 NAN = np.nan
@@ -145,7 +145,7 @@ def test_manski_validation_messages():
     z = np.array([1, 1, 0, 0])
     with pytest.raises(DataError, match=r"observed treated outcomes must lie in the declared range \[0.0, 10.0\]"):
         attrition.manski_bounds(y, z, None, 0, 10)
-    with pytest.raises(UsageError, match="`low` must be finite and below `high`"):
+    with pytest.raises(ValueError, match="`low` must be finite and below `high`"):
         attrition.manski_bounds(y, z, None, 5, 5)
 
 

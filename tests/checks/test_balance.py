@@ -15,7 +15,7 @@ from scipy import stats
 
 from report_kit.checks import balance
 from report_kit.checks import flow as flow_module
-from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.report.figures_checks import plot_balance
 from report_kit.inputs.model import AnalysisSpec, ComplianceSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
 
@@ -118,7 +118,7 @@ def test_constant_covariate_warns_and_gives_none():
 
 def test_balance_table_validation_messages():
     z = np.array([1, 0, 1, 0])
-    with pytest.raises(UsageError, match=r"`names` must have 2 entries"):
+    with pytest.raises(ValueError, match=r"`names` must have 2 entries"):
         balance.balance_rows(np.zeros((4, 2)), z, ["a"])
     with pytest.raises(DataError, match=r"`z` must contain only 0 and 1; got 2"):
         balance.balance_rows(np.zeros(4), [1, 0, 2, 0], ["a"])
@@ -126,7 +126,7 @@ def test_balance_table_validation_messages():
         balance.balance_rows(np.zeros(4), [1, 1, 1, 1], ["a"])
     with pytest.raises(DataError, match=r"`X` must have shape \(n, p\) with n = 4"):
         balance.balance_rows(np.zeros((3, 1)), z, ["a"])
-    with pytest.raises(UsageError, match="`names` must be unique"):
+    with pytest.raises(ValueError, match="`names` must be unique"):
         balance.balance_rows(np.zeros((4, 2)), z, ["a", "a"])
 
 
@@ -249,7 +249,7 @@ def test_weighted_bernoulli_enumeration_matches_direct_probability_sum():
     unweighted = balance.mahalanobis_balance_test(x, z, split(Z, 40), "exact")
     assert res.p_value != pytest.approx(unweighted.p_value)
     assert res.null_weights.shape == (2 ** 8 - 2,)
-    with pytest.raises(UsageError, match="`weights` apply to exact enumeration only"):
+    with pytest.raises(ValueError, match="`weights` apply to exact enumeration only"):
         balance.omnibus_balance(x, z, [Z[1:20]], "monte_carlo", weights=bernoulli_weights(0.3))
 
 
@@ -290,13 +290,13 @@ def test_collinear_covariates_warn_and_reduce_df():
 def test_omnibus_validation_messages():
     x = np.arange(4.0)
     z = np.array([1, 0, 1, 0])
-    with pytest.raises(UsageError, match=r"`method` must be one of \{'exact', 'monte_carlo'\}; got 'random'"):
+    with pytest.raises(ValueError, match=r"`method` must be one of \{'exact', 'monte_carlo'\}; got 'random'"):
         balance.omnibus_balance(x, z, [np.eye(4, dtype=np.uint8)], "random")
-    with pytest.raises(UsageError, match=r"assignment chunk 0 must have shape \(k, 4\)"):
+    with pytest.raises(ValueError, match=r"assignment chunk 0 must have shape \(k, 4\)"):
         balance.omnibus_balance(x, z, [np.ones((2, 3), dtype=np.uint8)], "exact")
-    with pytest.raises(UsageError, match="assignment chunk 1 must contain only 0 and 1"):
+    with pytest.raises(ValueError, match="assignment chunk 1 must contain only 0 and 1"):
         balance.omnibus_balance(x, z, [np.eye(4, dtype=np.uint8), np.full((1, 4), 2)], "monte_carlo")
-    with pytest.raises(UsageError, match="yielded no assignment"):
+    with pytest.raises(ValueError, match="yielded no assignment"):
         balance.omnibus_balance(x, z, [], "monte_carlo")
 
 

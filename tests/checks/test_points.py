@@ -5,7 +5,6 @@ from __future__ import annotations
 import pytest
 
 from report_kit.checks.points import ATTRITION_GAP, points_to_weigh
-from report_kit.errors import UsageError
 
 
 def base(**over) -> dict:
@@ -91,7 +90,7 @@ def test_declared_enrolment_must_match_the_data():
 
 
 def test_misuse():
-    with pytest.raises(UsageError, match="`results` must be a mapping"):
+    with pytest.raises(ValueError, match="`results` must be a mapping"):
         points_to_weigh([])
-    with pytest.raises(UsageError, match="`arm_labels`"):
+    with pytest.raises(ValueError, match="`arm_labels`"):
         points_to_weigh(base(), arm_labels=("a",))

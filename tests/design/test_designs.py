@@ -25,7 +25,7 @@ from report_kit.design.mechanism import (
     mechanism_from_arrays,
     number_treated,
 )
-from report_kit.errors import DataError, DesignError, UsageError
+from report_kit.errors import DataError, DesignError
 
 # --------------------------------------------------------------------------- small designs
 
@@ -298,7 +298,7 @@ def test_number_treated_rounds_half_up_from_the_written_decimal():
 
 
 def test_unknown_kind_message():
-    with pytest.raises(UsageError) as err:
+    with pytest.raises(ValueError) as err:
         mechanism_from_arrays("stratified", Z10)
     assert str(err.value) == ("`kind` must be one of {'complete', 'bernoulli', 'blocked', 'cluster', "
                               "'blocked_cluster', 'matched_pairs'}; got 'stratified'")
@@ -312,7 +312,7 @@ def test_assignment_must_be_zero_one():
 
 
 def test_block_required():
-    with pytest.raises(UsageError, match="`block` is required for mechanism 'blocked'"):
+    with pytest.raises(ValueError, match="`block` is required for mechanism 'blocked'"):
         mechanism_from_arrays("blocked", Z10)
 
 
@@ -348,11 +348,11 @@ def test_missing_labels_and_duplicate_ids():
 
 def test_sampling_arguments_are_validated():
     mech = small_designs()["complete"]
-    with pytest.raises(UsageError, match="`draws` must be an integer >= 1; got 0"):
+    with pytest.raises(ValueError, match="`draws` must be an integer >= 1; got 0"):
         mech.sample_chunks(0, 1)
-    with pytest.raises(UsageError, match="`seed` must be a non-negative integer; got -1"):
+    with pytest.raises(ValueError, match="`seed` must be a non-negative integer; got -1"):
         mech.assignments(max_exact=1, draws=10, seed=-1)
-    with pytest.raises(UsageError, match="`probability` must be a number strictly between 0 and 1; got 1.5"):
+    with pytest.raises(ValueError, match="`probability` must be a number strictly between 0 and 1; got 1.5"):
         mechanism_from_arrays("bernoulli", Z10, probability=1.5)
 
 

@@ -22,7 +22,7 @@ import scipy.linalg
 import statsmodels.api as sm
 from scipy import stats
 
-from report_kit.errors import DataError, DesignError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.estimation.neyman import (
     ESTIMATE_KEYS,
     FUNDER_KEYS,
@@ -158,14 +158,14 @@ def svar(x):
 
 def test_unknown_mechanism_names_the_choices():
     y, z = complete_data()
-    with pytest.raises(UsageError, match=r"`mechanism` must be one of .*got 'stratified'"):
+    with pytest.raises(ValueError, match=r"`mechanism` must be one of .*got 'stratified'"):
         estimate_effects(y, z, mechanism="stratified")
 
 
 @pytest.mark.parametrize("alpha", [0, 1, 1.5, -0.1, "0.05", True])
 def test_alpha_must_be_in_unit_interval(alpha):
     y, z = complete_data()
-    with pytest.raises(UsageError, match=r"`alpha` must be a number strictly between 0 and 1"):
+    with pytest.raises(ValueError, match=r"`alpha` must be a number strictly between 0 and 1"):
         estimate_effects(y, z, mechanism="complete", alpha=alpha)
 
 
@@ -179,7 +179,7 @@ def test_treatment_must_be_binary():
 
 def test_length_mismatch():
     y, z = complete_data()
-    with pytest.raises(UsageError, match=r"`y` must be a 1-d array of length 30"):
+    with pytest.raises(ValueError, match=r"`y` must be a 1-d array of length 30"):
         estimate_effects(y[:-1], z, mechanism="complete")
 
 
@@ -187,7 +187,7 @@ def test_blocked_needs_block_and_complete_refuses_it():
     y, z = complete_data()
     with pytest.raises(DesignError, match=r"mechanism 'blocked' needs `block`"):
         estimate_effects(y, z, mechanism="blocked")
-    with pytest.raises(UsageError, match=r"`block` applies only to mechanisms"):
+    with pytest.raises(ValueError, match=r"`block` applies only to mechanisms"):
         estimate_effects(y, z, mechanism="complete", block=np.zeros(30))
     with pytest.raises(DesignError, match=r"mechanism 'cluster' needs `cluster`"):
         estimate_effects(y, z, mechanism="cluster")

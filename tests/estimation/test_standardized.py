@@ -7,7 +7,6 @@ import math
 import numpy as np
 import pytest
 
-from report_kit.errors import UsageError
 from report_kit.estimation.standardized import blocks_left_out, hedges_correction, standardized_effect
 
 # A hand computation from the published formulas (Cohen 1988 pooled SD; Hedges 1981, eq. 6b for
@@ -66,13 +65,13 @@ def test_undefined_cases_are_none():
 
 
 def test_misuse_raises():
-    with pytest.raises(UsageError, match="`method` must be one of"):
+    with pytest.raises(ValueError, match="`method` must be one of"):
         standardized_effect(1.0, Y, Z, method="cohens")
-    with pytest.raises(UsageError, match="same length"):
+    with pytest.raises(ValueError, match="same length"):
         standardized_effect(1.0, Y, Z[:3])
-    with pytest.raises(UsageError, match="only 0"):
+    with pytest.raises(ValueError, match="only 0"):
         standardized_effect(1.0, Y, Z * 2)
-    with pytest.raises(UsageError, match="`df` must be"):
+    with pytest.raises(ValueError, match="`df` must be"):
         hedges_correction(1)
 
 

@@ -11,7 +11,7 @@ from scipy import stats
 from statsmodels.stats.multitest import multipletests
 
 from report_kit.inference import multiplicity as mt
-from report_kit.errors import DesignError, UsageError
+from report_kit.errors import DesignError
 from report_kit.inputs.model import OutcomeSpec
 
 P_SETS = [
@@ -54,11 +54,11 @@ def test_holm_and_bh_worked_example():
 
 
 def test_p_value_validation():
-    with pytest.raises(UsageError, match=r"`p` must hold p-values in \[0, 1\]"):
+    with pytest.raises(ValueError, match=r"`p` must hold p-values in \[0, 1\]"):
         mt.holm([0.1, np.nan])
-    with pytest.raises(UsageError, match=r"`p` must hold p-values in \[0, 1\]"):
+    with pytest.raises(ValueError, match=r"`p` must hold p-values in \[0, 1\]"):
         mt.benjamini_hochberg([0.1, 1.2])
-    with pytest.raises(UsageError, match="`p` must be one-dimensional"):
+    with pytest.raises(ValueError, match="`p` must be one-dimensional"):
         mt.holm([[0.1, 0.2]])
 
 
@@ -179,7 +179,7 @@ def test_weighted_westfall_young_equals_replicated_rows(kind):
     replicated = mt.westfall_young(observed, np.repeat(null, w, axis=0), method="exact", kind=kind)
     np.testing.assert_allclose(weighted, replicated, rtol=1e-12)
     assert not np.allclose(weighted, mt.westfall_young(observed, null, method="exact", kind=kind))
-    with pytest.raises(UsageError, match="`weights` apply to exact enumeration only"):
+    with pytest.raises(ValueError, match="`weights` apply to exact enumeration only"):
         mt.westfall_young(observed, null, method="monte_carlo", weights=w)
 
 
@@ -206,11 +206,11 @@ def test_westfall_young_monte_carlo_equals_exact_on_augmented_rows():
 
 
 def test_westfall_young_validation_messages():
-    with pytest.raises(UsageError, match=r"`null` must have shape \(B, 2\)"):
+    with pytest.raises(ValueError, match=r"`null` must have shape \(B, 2\)"):
         mt.westfall_young([1.0, 2.0], np.zeros((5, 3)), method="exact")
-    with pytest.raises(UsageError, match=r"`kind` must be one of \{'min_p', 'max_t'\}; got 'maxT'"):
+    with pytest.raises(ValueError, match=r"`kind` must be one of \{'min_p', 'max_t'\}; got 'maxT'"):
         mt.westfall_young([1.0], np.zeros((5, 1)), method="exact", kind="maxT")
-    with pytest.raises(UsageError, match=r"`method` must be one of"):
+    with pytest.raises(ValueError, match=r"`method` must be one of"):
         mt.westfall_young([1.0], np.zeros((5, 1)), method="random")
     with pytest.raises(DesignError, match="does not contain the observed assignment"):
         mt.westfall_young([9.0], np.zeros((5, 1)), method="exact")
@@ -273,13 +273,13 @@ def test_study_multiplicity_missing_and_invalid_inputs():
     got = {(e["outcome"], e["method"]): e for e in entries}
     assert got["c", "holm"]["p_value"] is None and got["c", "holm"]["p_adjusted"] is None
     assert got["b", "holm"]["p_adjusted"] == pytest.approx(0.04)    # m = 2 tested outcomes
-    with pytest.raises(UsageError, match="no shared null draws were given for family 'primary'"):
+    with pytest.raises(ValueError, match="no shared null draws were given for family 'primary'"):
         mt.study_multiplicity(TESTS, OUTCOMES, lead="westfall_young")
-    with pytest.raises(UsageError, match="`tests` has 2 entries for outcome 'a'"):
+    with pytest.raises(ValueError, match="`tests` has 2 entries for outcome 'a'"):
         mt.study_multiplicity([p_entry("a", 0.01), p_entry("a", 0.02)], OUTCOMES[:1])
-    with pytest.raises(UsageError, match=r"`lead` must be one of"):
+    with pytest.raises(ValueError, match=r"`lead` must be one of"):
         mt.study_multiplicity(TESTS, OUTCOMES, lead="bonferroni")
-    with pytest.raises(UsageError, match="shared null draws cover outcomes"):
+    with pytest.raises(ValueError, match="shared null draws cover outcomes"):
         mt.study_multiplicity(TESTS, OUTCOMES, {"primary": {"outcomes": ["a"], "observed": [1.0],
                                                             "null": np.ones((3, 1)), "method": "exact"}})
 

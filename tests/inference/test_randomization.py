@@ -21,7 +21,7 @@ import pytest
 from scipy import stats
 
 from report_kit.design.mechanism import mechanism_from_arrays
-from report_kit.errors import DataError, ReportKitWarning, UsageError
+from report_kit.errors import DataError, ReportKitWarning
 from report_kit.inputs.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
 from report_kit.inference.exact_tests import exact_law_test
 from report_kit.inference.randomization import (
@@ -506,10 +506,10 @@ def test_validation_messages():
     mech = mechanism_from_arrays("complete", z)
     src = exact_source(mech)
     y = np.arange(4.0)
-    with pytest.raises(UsageError) as err:
+    with pytest.raises(ValueError) as err:
         randomization_test(y, mech, source=src, alternative="both")
     assert str(err.value) == "`alternative` must be one of {'two-sided', 'greater', 'less'}; got 'both'"
-    with pytest.raises(UsageError) as err:
+    with pytest.raises(ValueError) as err:
         randomization_test(y, mech, source=src, statistic="t")
     assert str(err.value) == "`statistic` must be one of {'mean_difference', 'rank_sum', 'studentized', 'ks'}; got 't'"
     with pytest.raises(ValueError, match="`null_effect` must be a finite number; got inf"):
@@ -517,13 +517,13 @@ def test_validation_messages():
     with pytest.raises(DataError, match="shape \\(n, m\\) with n = 4 units; got \\(5,\\)"):
         randomization_test(np.arange(5.0), mech, source=src)
     other = mechanism_from_arrays("complete", z)
-    with pytest.raises(UsageError, match="different mechanism"):
+    with pytest.raises(ValueError, match="different mechanism"):
         randomization_test(y, other, source=src)
-    with pytest.raises(UsageError, match="`alternative` must be one string or one per outcome \\(1\\); got 2"):
+    with pytest.raises(ValueError, match="`alternative` must be one string or one per outcome \\(1\\); got 2"):
         randomization_test(y, mech, source=src, alternative=["less", "greater"])
-    with pytest.raises(UsageError, match="`level` must be a number strictly between 0 and 1; got 95"):
+    with pytest.raises(ValueError, match="`level` must be a number strictly between 0 and 1; got 95"):
         invert_test(y, mech, source=src, level=95)
-    with pytest.raises(UsageError, match="`statistic` must be one of"):
+    with pytest.raises(ValueError, match="`statistic` must be one of"):
         invert_test(y, mech, source=src, statistic="ks")
 
 
@@ -592,7 +592,7 @@ def test_joint_null_is_oriented_per_alternative_on_shared_draws():
     assert joint.observed[1] == -res.distributions["y_b"].observed[0]
     sub = res.joint_null(["y_c", "y_a"])
     assert np.array_equal(sub.null, joint.null[:, [2, 0]])
-    with pytest.raises(UsageError, match="`outcomes` must be among"):
+    with pytest.raises(ValueError, match="`outcomes` must be among"):
         res.joint_null(["nope"])
 
 
