@@ -194,7 +194,9 @@ def _read_csv(path: Path, raw: bytes, id_col: str | None,
     dtype = {name: str for name in header if id_col is not None and name.strip() == id_col}
     try:
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
+            # expected here: mixed types in a column and parser notices (the checks report the values)
+            warnings.simplefilter("ignore", pd.errors.DtypeWarning)
+            warnings.simplefilter("ignore", pd.errors.ParserWarning)
             # From the bytes (already checked to be UTF-8): a StringIO of the text would hold
             # four bytes per character, 1.4 GB for a 350 MB file of 10 million units.
             frame = pd.read_csv(io.BytesIO(raw), encoding="utf-8-sig", keep_default_na=False,
@@ -234,7 +236,10 @@ def _read_binary(path: Path, raw: bytes, suffix: str, id_col: str | None,
     header = None
     try:
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
+            # expected here: openpyxl's notices about workbook features it does not read (styles,
+            # data validation) and pandas' notices while reading Stata files
+            warnings.filterwarnings("ignore", category=UserWarning, module=r"openpyxl(\.|$)")
+            warnings.filterwarnings("ignore", module=r"pandas\.io\.stata")
             if suffix == ".xlsx":
                 first = pd.read_excel(path, engine="openpyxl", header=None, nrows=1)
                 header = [] if first.empty else first.iloc[0].tolist()
