@@ -56,6 +56,8 @@ _PUBLIC = {
     "dask_chunk_map": "inference.distributed",
     "compare_runs": "audit.compare", "verify_run": "audit.verify", "archive_run": "audit.archive",
     "lock_plan": "audit.planlock",
+    # result objects: one serialiser for every frozen-dataclass result
+    "Record": "validate", "record": "validate", "to_json_value": "validate",
 }
 
 #: module names of the flat layout -> their home now

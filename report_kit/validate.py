@@ -2,19 +2,24 @@
 
 One place for the validators that more than one module needs, so that the
 same mistake gets the same message everywhere, and for the rule that turns a
-number into a JSON-safe value. Library misuse raises plain ``TypeError`` (a
+number into a JSON-safe value and a result object into the dict that
+``results.json`` stores (:func:`to_json_value`, :class:`Record`). Library misuse raises plain ``TypeError`` (a
 value of the wrong type) or ``ValueError`` (a value out of range); the command
 line turns the ones caused by its own options into usage errors (exit 2).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import warnings
 
+from collections.abc import Mapping
+from types import MappingProxyType
+
 import numpy as np
 
-from report_kit.errors import ReportKitWarning
+from report_kit.errors import ReportKitWarning, UsageError
 
 
 def finite_number(name: str, value) -> float:
@@ -54,6 +59,98 @@ def finite_or_none(value) -> float | None:
         return None
     value = float(value)
     return value if math.isfinite(value) else None
+
+
+def to_json_value(obj, _where: str = "$"):
+    """Convert ``obj`` to plain JSON values, the way ``results.json`` stores them.
+
+    * dict keys must be strings; their order is kept (DESIGN order, not sorted);
+    * tuples and numpy arrays become lists; numpy scalars become Python scalars;
+    * NaN, +inf, -inf, ``pandas.NA`` become ``null`` (undefined); ``-0.0`` becomes ``0.0``;
+    * objects with a ``to_dict()`` method (every :class:`Record`) are converted through it.
+
+    Anything else (paths, dates, sets ...) raises :class:`UsageError` naming
+    the location, e.g. ``$.estimates[0].when``.
+    """
+    if obj is None or isinstance(obj, (bool, str)):
+        return obj
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        value = finite_or_none(obj)
+        return 0.0 if value == 0.0 else value
+    if isinstance(obj, dict):
+        out = {}
+        for key, value in obj.items():
+            if not isinstance(key, str):
+                raise UsageError(f"JSON keys must be strings; got {key!r} at {_where}")
+            out[key] = to_json_value(value, f"{_where}.{key}")
+        return out
+    if isinstance(obj, (list, tuple)):
+        return [to_json_value(v, f"{_where}[{i}]") for i, v in enumerate(obj)]
+    if isinstance(obj, np.ndarray):
+        return to_json_value(obj.tolist(), _where)
+    if type(obj).__name__ == "NAType":
+        return None
+    if callable(getattr(obj, "to_dict", None)):
+        return to_json_value(obj.to_dict(), _where)
+    raise UsageError(f"cannot store a value of type {type(obj).__name__} in JSON at {_where}")
+
+
+def record(obj) -> dict:
+    """The JSON dict of the dataclass instance ``obj``: one entry per field, in order.
+
+    Each value goes through :func:`to_json_value` (numbers by the JSON-number
+    rule, numpy values to Python values, tuples to lists, nested records to
+    dicts). Three class attributes, when present, say where the dict differs
+    from the fields (see :class:`Record`): ``record_keys`` (the names to store,
+    in order: fields, properties or class attributes), ``record_renamed``
+    (``{name: key}`` for a key that differs from its name) and
+    ``record_merged`` (names whose record's entries are spliced in place).
+    """
+    if not dataclasses.is_dataclass(obj) or isinstance(obj, type):
+        raise TypeError(f"`obj` must be a dataclass instance; got {type(obj).__name__}")
+    cls = type(obj)
+    names = getattr(cls, "record_keys", None) or tuple(f.name for f in dataclasses.fields(obj))
+    renamed = getattr(cls, "record_renamed", {})
+    merged = getattr(cls, "record_merged", ())
+    out = {}
+    for name in names:
+        value = to_json_value(getattr(obj, name), f"{cls.__name__}.{name}")
+        if name in merged:
+            out.update(value)
+        else:
+            out[renamed.get(name, name)] = value
+    return out
+
+
+class Record:
+    """Mixin of the frozen dataclass results: ``to_dict()`` by the one generic rule, :func:`record`.
+
+    A subclass whose dict is not simply its fields, in order, says how in
+    class attributes (plain attributes, not fields):
+
+    ``record_keys``
+        The names stored, in order: fields, properties (computed values) or
+        class attributes. Default ``None``: every field. A field left out is
+        not stored (e.g. a null distribution kept for auditing).
+    ``record_renamed``
+        ``{name: key}`` for an entry stored under another key.
+    ``record_merged``
+        Names holding a record (e.g. an ``Estimate``) whose entries are
+        stored in this dict itself, at that place, instead of nested.
+    """
+
+    __slots__ = ()
+    record_keys: tuple[str, ...] | None = None
+    record_renamed: Mapping[str, str] = MappingProxyType({})
+    record_merged: tuple[str, ...] = ()
+
+    def to_dict(self) -> dict:
+        """Plain JSON values (see :func:`record`)."""
+        return record(self)
 
 
 # Choice lists shared by the spec, the design and the statistics (one definition each).

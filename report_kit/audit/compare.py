@@ -26,6 +26,7 @@ from report_kit.audit.table_diff import TableDiff, diff_tables
 from report_kit.audit.provenance import (
     INPUTS_DIR, MANIFEST_NAME, RESULTS_NAME, SPEC_NAME, check_relative_path, load_json_file, sha256_file,
 )
+from report_kit.validate import Record
 
 __all__ = [
     "RECORD_KEYS", "ResultChange", "ResultRecord", "ResultsDiff", "TableDiff", "InputChange",
@@ -94,7 +95,7 @@ def _load_run(path: Path | str, name: str) -> _Run:
 
 
 @dataclass(frozen=True, kw_only=True)
-class InputChange:
+class InputChange(Record):
     """How one input file (``design.yaml`` or a data table) differs between two runs.
 
     ``status`` is ``"unchanged"``, ``"changed"``, ``"added"`` or ``"removed"``.
@@ -110,11 +111,6 @@ class InputChange:
     rows_b: int | None
     table: TableDiff | None = None
     note: str | None = None
-
-    def to_dict(self) -> dict:
-        return {"path": self.path, "status": self.status, "sha256_a": self.sha256_a,
-                "sha256_b": self.sha256_b, "rows_a": self.rows_a, "rows_b": self.rows_b,
-                "table": None if self.table is None else self.table.to_dict(), "note": self.note}
 
 
 def _status(sha_a, sha_b, in_a: bool, in_b: bool) -> str:
@@ -169,8 +165,16 @@ def _alpha_of(run: _Run) -> float | None:
 
 
 @dataclass(frozen=True, kw_only=True)
-class RunDiff:
-    """Everything that changed from run A (earlier) to run B (later)."""
+class RunDiff(Record):
+    """Everything that changed from run A (earlier) to run B (later).
+
+    Its dict (``changes.json``, ``report-kit diff --json``) starts with the
+    ``schema`` name and a ``summary`` of the counts.
+    """
+
+    record_keys = ("schema", "run_a", "run_b", "alpha", "summary", "conclusions", "inputs", "design_changes",
+                   "results")
+    schema = DIFF_SCHEMA
 
     run_a: str
     run_b: str
@@ -188,21 +192,16 @@ class RunDiff:
     def identical(self) -> bool:
         return not self.inputs_changed and self.results.identical
 
-    def to_dict(self) -> dict:
+    @property
+    def summary(self) -> dict:
+        """Whether the runs are identical, the changed input paths and the number of each kind of change."""
         return {
-            "schema": DIFF_SCHEMA, "run_a": self.run_a, "run_b": self.run_b, "alpha": self.alpha,
-            "summary": {
-                "identical": self.identical,
-                "inputs_changed": [c.path for c in self.inputs_changed],
-                "results_changed": len(self.results.changed),
-                "results_added": len(self.results.added),
-                "results_removed": len(self.results.removed),
-                "conclusions_changed": len(self.conclusions),
-            },
-            "conclusions": [dict(c) for c in self.conclusions],
-            "inputs": [c.to_dict() for c in self.inputs],
-            "design_changes": [dict(c) for c in self.design_changes],
-            "results": self.results.to_dict(),
+            "identical": self.identical,
+            "inputs_changed": [c.path for c in self.inputs_changed],
+            "results_changed": len(self.results.changed),
+            "results_added": len(self.results.added),
+            "results_removed": len(self.results.removed),
+            "conclusions_changed": len(self.conclusions),
         }
 
 

@@ -17,7 +17,6 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
-import math
 import os
 import platform
 import re
@@ -30,12 +29,11 @@ from importlib import metadata
 from pathlib import Path, PurePosixPath
 from urllib.parse import quote
 
-import numpy as np
-
 from report_kit.errors import UsageError
 from report_kit.files import share_like_umask
 from report_kit.inputs.model import InputFile
 from report_kit.inputs.spec import SPEC_FILENAME
+from report_kit.validate import to_json_value
 
 log = logging.getLogger(__name__)
 
@@ -132,46 +130,6 @@ def check_relative_path(path: str, *, what: str = "path") -> PurePosixPath:
 
 
 # ------------------------------------------------------------- canonical JSON values
-
-def to_json_value(obj, _where: str = "$"):
-    """Convert ``obj`` to plain JSON values, the way ``results.json`` stores them.
-
-    * dict keys must be strings; their order is kept (DESIGN order, not sorted);
-    * tuples and numpy arrays become lists; numpy scalars become Python scalars;
-    * NaN, +inf, -inf, ``pandas.NA`` become ``null`` (undefined); ``-0.0`` becomes ``0.0``;
-    * objects with a ``to_dict()`` method are converted through it.
-
-    Anything else (paths, dates, sets ...) raises :class:`UsageError` naming
-    the location, e.g. ``$.estimates[0].when``.
-    """
-    if obj is None or isinstance(obj, (bool, str)):
-        return obj
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        value = float(obj)
-        if not math.isfinite(value):
-            return None
-        return 0.0 if value == 0.0 else value
-    if isinstance(obj, dict):
-        out = {}
-        for key, value in obj.items():
-            if not isinstance(key, str):
-                raise UsageError(f"JSON keys must be strings; got {key!r} at {_where}")
-            out[key] = to_json_value(value, f"{_where}.{key}")
-        return out
-    if isinstance(obj, (list, tuple)):
-        return [to_json_value(v, f"{_where}[{i}]") for i, v in enumerate(obj)]
-    if isinstance(obj, np.ndarray):
-        return to_json_value(obj.tolist(), _where)
-    if type(obj).__name__ == "NAType":
-        return None
-    if callable(getattr(obj, "to_dict", None)):
-        return to_json_value(obj.to_dict(), _where)
-    raise UsageError(f"cannot store a value of type {type(obj).__name__} in JSON at {_where}")
-
 
 def canonical_json_bytes(obj) -> bytes:
     """The canonical UTF-8 bytes of ``obj``.

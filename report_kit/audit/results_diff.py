@@ -11,7 +11,7 @@ import math
 from collections import Counter
 from dataclasses import dataclass, field
 
-from report_kit.validate import tolerance
+from report_kit.validate import Record, tolerance
 from report_kit.audit.provenance import to_json_value
 
 __all__ = ["RECORD_KEYS", "ResultChange", "ResultRecord", "ResultsDiff", "conclusion_changes", "diff_results"]
@@ -129,19 +129,33 @@ def _equal(a, b, rel_tol: float, abs_tol: float) -> bool:
     return a == b
 
 
+class _Keyed(Record):
+    """An entry of results.json found by its ``section`` and ``key``; stored with the key as a dict."""
+
+    __slots__ = ()
+    record_renamed = {"key_fields": "key"}
+
+    @property
+    def label(self) -> str:
+        return _label(self.section, self.key)
+
+    @property
+    def key_fields(self) -> dict:
+        """The key as ``{field: value}``."""
+        return dict(self.key)
+
+
 @dataclass(frozen=True, kw_only=True)
-class ResultChange:
+class ResultChange(_Keyed):
     """One value of results.json that differs between two runs."""
+
+    record_keys = ("section", "key_fields", "label", "field", "old", "new", "difference", "relative_difference")
 
     section: str
     key: Key
     field: str
     old: object
     new: object
-
-    @property
-    def label(self) -> str:
-        return _label(self.section, self.key)
 
     @property
     def difference(self) -> float | None:
@@ -156,31 +170,20 @@ class ResultChange:
         diff = self.difference
         return None if diff is None or self.old == 0 else diff / abs(self.old)
 
-    def to_dict(self) -> dict:
-        return {"section": self.section, "key": dict(self.key), "label": self.label,
-                "field": self.field, "old": self.old, "new": self.new,
-                "difference": self.difference, "relative_difference": self.relative_difference}
-
 
 @dataclass(frozen=True, kw_only=True)
-class ResultRecord:
+class ResultRecord(_Keyed):
     """An entry of results.json present in only one of two runs."""
+
+    record_keys = ("section", "key_fields", "label", "values")
 
     section: str
     key: Key
     values: dict = field(compare=False)
 
-    @property
-    def label(self) -> str:
-        return _label(self.section, self.key)
-
-    def to_dict(self) -> dict:
-        return {"section": self.section, "key": dict(self.key), "label": self.label,
-                "values": self.values}
-
 
 @dataclass(frozen=True, kw_only=True)
-class ResultsDiff:
+class ResultsDiff(Record):
     """Differences between two results dicts: changed values, added and removed entries."""
 
     changed: tuple[ResultChange, ...]
@@ -190,12 +193,6 @@ class ResultsDiff:
     @property
     def identical(self) -> bool:
         return not (self.changed or self.added or self.removed)
-
-    def to_dict(self) -> dict:
-        return {"changed": [c.to_dict() for c in self.changed],
-                "added": [r.to_dict() for r in self.added],
-                "removed": [r.to_dict() for r in self.removed]}
-
 
 
 def diff_results(results_a: dict, results_b: dict, *, rel_tol: float = 0.0,

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DataError, UsageError
-from report_kit.audit.provenance import to_json_value
+from report_kit.validate import Record, to_json_value
 
 __all__ = ["CELL_LIMIT", "TableDiff", "diff_tables"]
 
@@ -72,7 +72,7 @@ def _same(x: np.ndarray, y: np.ndarray) -> np.ndarray:
 
 
 @dataclass(frozen=True, kw_only=True)
-class TableDiff:
+class TableDiff(Record):
     """Row-level differences of one input table, keyed by the unit id.
 
     ``units_added``/``units_removed`` and ``cells`` keep at most ``limit``
@@ -93,16 +93,6 @@ class TableDiff:
     changed_by_column: dict = field(compare=False)
     cells: tuple[dict, ...]
     truncated: bool
-
-    def to_dict(self) -> dict:
-        return {
-            "id_column": self.id_column, "rows_a": self.rows_a, "rows_b": self.rows_b,
-            "columns_added": list(self.columns_added), "columns_removed": list(self.columns_removed),
-            "n_units_added": self.n_units_added, "n_units_removed": self.n_units_removed,
-            "units_added": list(self.units_added), "units_removed": list(self.units_removed),
-            "n_changed_cells": self.n_changed_cells, "changed_by_column": dict(self.changed_by_column),
-            "cells": [dict(c) for c in self.cells], "truncated": self.truncated,
-        }
 
 
 def diff_tables(path_a: Path | str, path_b: Path | str, id_column: str, *,

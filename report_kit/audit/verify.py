@@ -28,7 +28,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from report_kit.validate import tolerance
+from report_kit.validate import Record, tolerance
 from report_kit.audit.archive import compared_run_of, safe_extract, verify_checksums
 from report_kit.audit.compare import CHANGES_NAME, compare_runs, diff_results
 from report_kit.errors import ReportKitError, UsageError
@@ -48,7 +48,7 @@ Analyse = Callable[[Path], dict]
 
 
 @dataclass(frozen=True, kw_only=True)
-class VerifyReport:
+class VerifyReport(Record):
     """Outcome of verifying one run (folder or archive).
 
     ``ok`` is True only when every list is empty and the re-run succeeded.
@@ -74,16 +74,6 @@ class VerifyReport:
     changes_check: str | None = None
     rel_tol: float = REL_TOL
     abs_tol: float = ABS_TOL
-
-    def to_dict(self) -> dict:
-        return {
-            "ok": self.ok, "target": self.target, "run_id": self.run_id,
-            "input_mismatches": [dict(m) for m in self.input_mismatches],
-            "result_differences": [dict(d) for d in self.result_differences],
-            "integrity_problems": [dict(p) for p in self.integrity_problems],
-            "rerun_inputs": [dict(s) for s in self.rerun_inputs],
-            "rerun_error": self.rerun_error, "changes_check": self.changes_check, "rel_tol": self.rel_tol, "abs_tol": self.abs_tol,
-        }
 
 
 

@@ -36,7 +36,7 @@ from report_kit.validate import finite_or_none as _num, mean_impute_with_indicat
 from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.inference.engine import StoredDraws, drawn_statistics
 from report_kit.inference.pvalues import DrawnStatistics
-from report_kit.validate import METHODS, check_choice
+from report_kit.validate import METHODS, Record, check_choice
 
 logger = logging.getLogger(__name__)
 
@@ -98,7 +98,7 @@ def _check_assignment(z, n: int | None = None) -> np.ndarray:
 
 
 @dataclass(frozen=True, kw_only=True)
-class CovariateBalance:
+class CovariateBalance(Record):
     """Balance of one covariate; field names match ``results.json`` ``balance.covariates``."""
 
     name: str
@@ -112,21 +112,6 @@ class CovariateBalance:
     missing_control: int
     flag: str | None
     weighting: str = "none"
-
-    def to_dict(self) -> dict:
-        return {
-            "name": self.name,
-            "mean_treated": self.mean_treated,
-            "mean_control": self.mean_control,
-            "sd_treated": self.sd_treated,
-            "sd_control": self.sd_control,
-            "std_diff": self.std_diff,
-            "variance_ratio": self.variance_ratio,
-            "missing_treated": self.missing_treated,
-            "missing_control": self.missing_control,
-            "flag": self.flag,
-            "weighting": self.weighting,
-        }
 
 
 def _check_covariates(X, z, names) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
@@ -281,12 +266,15 @@ def balance_rows(X, z, names: Sequence[str], *, block=None) -> list[dict]:
 
 
 @dataclass(frozen=True, kw_only=True)
-class OmnibusBalance:
+class OmnibusBalance(Record):
     """The omnibus balance test; ``to_dict`` feeds ``results.json`` ``balance.omnibus``.
 
     ``null_distribution`` keeps every drawn statistic (and ``null_weights``
-    their probabilities when weights were given) so the p-value can be audited.
+    their probabilities when weights were given) so the p-value can be audited;
+    ``results.json`` does not store them.
     """
+
+    record_keys = ("statistic", "p_value", "method", "draws", "df", "mc_std_error")
 
     statistic: float | None
     p_value: float | None
@@ -296,16 +284,6 @@ class OmnibusBalance:
     mc_std_error: float | None
     null_distribution: np.ndarray | None = field(default=None, compare=False, repr=False)
     null_weights: np.ndarray | None = field(default=None, compare=False, repr=False)
-
-    def to_dict(self) -> dict:
-        return {
-            "statistic": self.statistic,
-            "p_value": self.p_value,
-            "method": self.method,
-            "draws": self.draws,
-            "df": self.df,
-            "mc_std_error": self.mc_std_error,
-        }
 
 
 def _whiten(arr: np.ndarray) -> np.ndarray:

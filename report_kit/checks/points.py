@@ -11,9 +11,10 @@ computed by the analysis step and is read from the sections given.
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 
 from report_kit.estimation.noncompliance import WEAK_FIRST_STAGE_F
+from report_kit.validate import Record
 
 __all__ = ["ATTRITION_GAP", "Point", "points_to_weigh"]
 
@@ -24,16 +25,13 @@ ATTRITION_GAP = 0.05
 
 
 @dataclass(frozen=True, kw_only=True)
-class Point:
+class Point(Record):
     """One point to weigh: a kind (a fixed word), the sentence shown and what it concerns."""
 
     kind: str
     message: str
     outcome: str | None = None
     subgroup: str | None = None
-
-    def to_dict(self) -> dict:
-        return asdict(self)
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -22,28 +22,29 @@ import pandas as pd
 from report_kit.errors import DesignError, ReportKitError, SpecError, UsageError
 from report_kit.files import share_like_umask
 from report_kit.inputs.model import Spec, Study
+from report_kit.validate import Record
 
 ASSIGNMENT_FILE = "data/assignment.csv"
 _LISTED = 10  # differing ids shown by describe()
 
 
 @dataclass(frozen=True, kw_only=True)
-class AssignmentCheck:
+class AssignmentCheck(Record):
     """Outcome of re-drawing the assignment from ``design.seed``.
 
     ``status`` is ``"reproduced"``, ``"mismatch"`` or ``"not_checked"`` (no
     seed); for a mismatch, ``differing_ids`` lists every unit whose recorded
     treatment differs from the drawn one and ``recorded`` its value in the data.
+    ``results.json`` stores ``status``, ``seed`` and ``differing_ids``.
     """
+
+    record_keys = ("status", "seed", "differing_ids")
 
     status: str
     differing_ids: tuple = ()
     recorded: tuple = ()
     seed: int | None = None
     treatment: str = "treatment"
-
-    def to_dict(self) -> dict:
-        return {"status": self.status, "seed": self.seed, "differing_ids": list(self.differing_ids)}
 
     def describe(self) -> str:
         if self.status == "not_checked":

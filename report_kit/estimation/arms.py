@@ -21,6 +21,7 @@ from report_kit.estimation.adjustment import estimate_adjusted
 from report_kit.estimation.core import CLUSTERED, MECHANISMS, Estimate, _interval
 from report_kit.estimation.neyman import estimate_effects
 from report_kit.estimation.noncompliance import estimate_noncompliance
+from report_kit.validate import Record
 
 __all__ = ["CONTRASTS", "ArmContrast", "contrast_pairs", "estimate_contrasts",
            "estimate_contrasts_adjusted", "estimate_arm_cace", "check_arm_labels"]
@@ -31,23 +32,22 @@ _SATURATED = ("complete", "bernoulli")  # Lin with all arm indicators in one reg
 
 
 @dataclass(frozen=True, kw_only=True)
-class ArmContrast:
+class ArmContrast(Record):
     """One contrast ``arm`` minus ``reference`` and its estimate.
 
     ``estimate.n_treated`` counts the units of ``arm`` used, ``n_control`` those
     of ``reference``; ``mean_arm`` and ``mean_reference`` are the two arms'
-    observed outcome means.
+    observed outcome means. In ``results.json`` the estimate's entries sit
+    in the contrast's own dict.
     """
+
+    record_merged = ("estimate",)
 
     arm: str
     reference: str
     estimate: Estimate
     mean_arm: float | None = None
     mean_reference: float | None = None
-
-    def to_dict(self) -> dict:
-        return {"arm": self.arm, "reference": self.reference, **self.estimate.to_dict(),
-                "mean_arm": self.mean_arm, "mean_reference": self.mean_reference}
 
 
 def contrast_pairs(arms, contrasts: str = "reference") -> list[tuple[str, str]]:

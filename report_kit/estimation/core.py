@@ -25,7 +25,7 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Callable, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -33,6 +33,7 @@ from scipy import stats
 
 from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.inputs.model import MECHANISMS
+from report_kit.validate import Record
 
 
 BLOCKED = ("blocked", "blocked_cluster", "matched_pairs")
@@ -49,7 +50,7 @@ _UNIT, _CLUSTER, _BLOCK = 0, 1, 2
 
 
 @dataclass(frozen=True, kw_only=True)
-class Estimate:
+class Estimate(Record):
     """One estimate of an average effect.
 
     Field names match the ``estimates`` entries of ``results.json``. Numbers are
@@ -73,9 +74,6 @@ class Estimate:
     method: str
     n_missing: int = 0
     variance_rule: str = ""
-
-    def to_dict(self) -> dict:
-        return {key: _json_value(value) for key, value in asdict(self).items()}
 
 
 # ---------------------------------------------------------------------------
@@ -575,19 +573,6 @@ def _to_estimate(fit: _Fit, alpha: float, *, estimand: str, estimator: str,
                     std_error=se, ci_low=low, ci_high=high, df=df,
                     n_treated=fit.n_treated, n_control=fit.n_control, method=fit.method,
                     n_missing=n_missing, variance_rule=fit.variance_rule)
-
-
-def _json_value(value):
-    """Plain Python numbers for JSON: ints stay ints, NaN/inf become None."""
-    if value is None or isinstance(value, str):
-        return value
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value
 
 
 def _warn(message: str) -> None:

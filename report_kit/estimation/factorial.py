@@ -16,6 +16,7 @@ import numpy as np
 
 from report_kit.estimation.arms import check_arm_labels
 from report_kit.estimation.core import Estimate, _interval, _satterthwaite
+from report_kit.validate import Record
 
 __all__ = ["FactorialEffect", "factorial_terms", "estimate_factorial"]
 
@@ -23,14 +24,16 @@ FACTORIAL_MECHANISMS = ("complete", "bernoulli")
 
 
 @dataclass(frozen=True, kw_only=True)
-class FactorialEffect:
-    """A main effect (``factor`` = one name) or interaction (names joined by ':')."""
+class FactorialEffect(Record):
+    """A main effect (``factor`` = one name) or interaction (names joined by ':').
+
+    In ``results.json`` the estimate's entries follow ``factor`` in one dict.
+    """
+
+    record_merged = ("estimate",)
 
     factor: str
     estimate: Estimate
-
-    def to_dict(self) -> dict:
-        return {"factor": self.factor, **self.estimate.to_dict()}
 
 
 def factorial_terms(factors) -> list[tuple[str, tuple[int, ...]]]:

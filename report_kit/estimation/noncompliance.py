@@ -19,7 +19,6 @@ from report_kit.estimation.core import (
     Estimate,
     _binary,
     _interval,
-    _json_value,
     _primary_rule,
     _sample,
     _to_estimate,
@@ -27,6 +26,7 @@ from report_kit.estimation.core import (
     _validate,
     _warn,
 )
+from report_kit.validate import Record
 
 __all__ = ["CACE_ASSUMPTIONS", "TF_SAFE_FIRST_STAGE_F", "Noncompliance", "estimate_noncompliance"]
 
@@ -50,12 +50,14 @@ CACE_ASSUMPTIONS = (
 
 
 @dataclass(frozen=True, kw_only=True)
-class Noncompliance:
+class Noncompliance(Record):
     """ITT on the outcome, ITT on take-up, and the CACE (Wald ratio).
 
     ``rate_treated``/``rate_control`` are the shares of units that received
     treatment in each assigned arm, over the units used for the CACE.
     """
+
+    record_keys = ("itt", "itt_takeup", "cace", "anderson_rubin", "rate_treated", "rate_control")
 
     itt: Estimate
     itt_takeup: Estimate
@@ -63,16 +65,6 @@ class Noncompliance:
     rate_treated: float | None
     rate_control: float | None
     anderson_rubin: dict | None = None
-
-    def to_dict(self) -> dict:
-        return {
-            "itt": self.itt.to_dict(),
-            "itt_takeup": self.itt_takeup.to_dict(),
-            "cace": self.cace.to_dict(),
-            "anderson_rubin": self.anderson_rubin,
-            "rate_treated": _json_value(self.rate_treated),
-            "rate_control": _json_value(self.rate_control),
-        }
 
 
 # ---------------------------------------------------------------------------

@@ -10,12 +10,12 @@ interval assumes. Definitions in ``docs/methods/rerandomization.md``.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import special, stats
 
-from report_kit.validate import finite_or_none as _num
+from report_kit.validate import Record
 
 __all__ = ["RerandomizedInterval", "truncated_normal_component", "rerandomized_interval",
            "study_rerandomized_intervals"]
@@ -27,7 +27,7 @@ _NODES = 2000
 
 
 @dataclass(frozen=True, kw_only=True)
-class RerandomizedInterval:
+class RerandomizedInterval(Record):
     """Difference in means with its Li-Ding-Rubin interval; fields of ``rerandomization_intervals``."""
 
     outcome: str
@@ -40,9 +40,6 @@ class RerandomizedInterval:
     neyman_ci_low: float
     neyman_ci_high: float
     method: str = "li_ding_rubin_2018"
-
-    def to_dict(self) -> dict:
-        return {k: _num(v) if isinstance(v, float) else v for k, v in asdict(self).items()}
 
 
 def truncated_normal_component(k: int, a: float, *, draws: int = COMPONENT_DRAWS,

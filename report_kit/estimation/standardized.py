@@ -10,13 +10,13 @@ estimate had to leave out. Pure numpy/scipy; formulas and sources in
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import special
 
 from report_kit.estimation.core import BLOCKED
-from report_kit.validate import finite_or_none
+from report_kit.validate import Record, finite_or_none
 
 __all__ = ["FUNDER_KEYS", "STD_EFFECT_METHODS", "StandardizedEffect", "hedges_correction", "standardized_effect",
            "blocks_left_out", "with_arm_summaries"]
@@ -31,7 +31,7 @@ STD_EFFECT_METHODS = ("hedges_g", "cohen_d", "glass_delta")
 
 
 @dataclass(frozen=True, kw_only=True)
-class StandardizedEffect:
+class StandardizedEffect(Record):
     """Arm means and the effect in SD units (field names as in ``results.json``)."""
 
     mean_treated: float | None
@@ -39,9 +39,6 @@ class StandardizedEffect:
     std_effect: float | None
     std_effect_method: str
     std_denominator: float | None
-
-    def to_dict(self) -> dict:
-        return asdict(self)
 
 
 def hedges_correction(df: float) -> float:

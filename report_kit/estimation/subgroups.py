@@ -10,7 +10,7 @@ report table. Formulas: ``docs/methods/estimation.md``.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -20,7 +20,6 @@ from report_kit.estimation.core import (
     Estimate,
     _Fit,
     _interval,
-    _json_value,
     _primary_rule,
     _sample,
     _satterthwaite,
@@ -29,12 +28,13 @@ from report_kit.estimation.core import (
     _validate,
 )
 from report_kit.errors import DataError
+from report_kit.validate import Record
 
 __all__ = ["SubgroupDifference", "SubgroupResult", "estimate_subgroups"]
 
 
 @dataclass(frozen=True, kw_only=True)
-class SubgroupDifference:
+class SubgroupDifference(Record):
     """Effect in subgroup ``level`` minus the effect in subgroup ``reference``."""
 
     level: str
@@ -45,34 +45,30 @@ class SubgroupDifference:
     ci_high: float | None
     df: float | None
 
-    def to_dict(self) -> dict:
-        return {key: _json_value(value) for key, value in asdict(self).items()}
-
 
 @dataclass(frozen=True, kw_only=True)
-class SubgroupResult:
+class SubgroupResult(Record):
     """Effects within each level of a pre-specified subgroup variable.
 
     ``levels`` are sorted; ``estimates[i]`` belongs to ``levels[i]``;
     ``differences`` compare every other level with ``levels[0]``.
     ``n_missing_group`` counts units without a subgroup label (left out).
+    In ``results.json`` each estimate is stored with its ``subgroup`` first
+    (:attr:`rows`).
     """
+
+    record_keys = ("levels", "rows", "differences", "n_missing_group")
+    record_renamed = {"rows": "estimates"}
 
     levels: tuple[str, ...]
     estimates: tuple[Estimate, ...]
     differences: tuple[SubgroupDifference, ...]
     n_missing_group: int = 0
 
-    def to_dict(self) -> dict:
-        return {
-            "levels": list(self.levels),
-            "estimates": [
-                {"subgroup": level, **est.to_dict()}
-                for level, est in zip(self.levels, self.estimates)
-            ],
-            "differences": [diff.to_dict() for diff in self.differences],
-            "n_missing_group": int(self.n_missing_group),
-        }
+    @property
+    def rows(self) -> tuple[dict, ...]:
+        """Each estimate's dict with the ``subgroup`` (its level) first."""
+        return tuple({"subgroup": level, **est.to_dict()} for level, est in zip(self.levels, self.estimates))
 
 
 # ---------------------------------------------------------------------------

@@ -38,7 +38,7 @@ from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError
 from report_kit.inference.kernels import _KERNELS, _analytic_centre
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics, null_centre, tail_p_values, tie_tolerance
-from report_kit.validate import ALTERNATIVES, METHODS, STATISTICS, check_choice, finite_number
+from report_kit.validate import ALTERNATIVES, METHODS, STATISTICS, Record, check_choice, finite_number
 from report_kit.validate import finite_or_none as _num
 
 logger = logging.getLogger(__name__)
@@ -349,7 +349,7 @@ def run_pass(draws: _Draws, statistics: Sequence[Statistic], *, chunk_map: Chunk
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
-class NullDistribution:
+class NullDistribution(Record):
     """Randomization distribution of a statistic, for ``m`` outcomes on the same draws.
 
     Attributes
@@ -369,7 +369,13 @@ class NullDistribution:
     weights : ndarray, shape (B,), or None
         Probabilities of the enumerated assignments when they are not all equal
         (exact ``bernoulli``); ``None`` otherwise.
+
+    ``to_dict()`` gives the plain-Python form (lists; None for undefined) for
+    plotting or archiving, with the number of ``draws``.
     """
+
+    record_keys = ("statistic", "direction", "null_effect", "method", "draws", "observed", "centre", "null",
+                   "weights")
 
     statistic: str
     direction: str | None
@@ -429,16 +435,6 @@ class NullDistribution:
         """
         obs, null, tol = self.oriented(alternative, rtol)
         return tail_p_values(obs, null, method=self.method, tolerance=tol, weights=self.weights)
-
-    def to_dict(self) -> dict:
-        """Plain-Python form (lists; None for undefined) for plotting or archiving."""
-        return {
-            "statistic": self.statistic, "direction": self.direction, "null_effect": self.null_effect,
-            "method": self.method, "draws": self.draws,
-            "observed": [_num(v) for v in self.observed], "centre": [_num(v) for v in self.centre],
-            "null": [[_num(v) for v in row] for row in self.null],
-            "weights": None if self.weights is None else [float(v) for v in self.weights],
-        }
 
 
 def drawn_statistics(draws: _Draws, statistics: Sequence[Statistic], z, *,

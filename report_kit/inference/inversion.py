@@ -34,6 +34,7 @@ from report_kit.inference.engine import (
 from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError, ReportKitWarning
 from report_kit.inference.pvalues import DEFAULT_RTOL, null_centre, tail_p_values
+from report_kit.validate import Record
 
 __all__ = ["Interval", "invert_test"]
 
@@ -46,7 +47,7 @@ _CACHE_CELLS = 1 << 26
 
 
 @dataclass(frozen=True, kw_only=True)
-class Interval:
+class Interval(Record):
     """Confidence interval by test inversion; fields are the ``intervals`` entries of ``results.json``.
 
     ``ci_low`` / ``ci_high`` are ``None`` when unbounded (one-sided intervals,
@@ -59,11 +60,6 @@ class Interval:
     ci_low: float | None
     ci_high: float | None
     hodges_lehmann: float | None
-
-    def to_dict(self) -> dict:
-        return {"outcome": self.outcome, "method": self.method, "level": float(self.level),
-                "ci_low": _num(self.ci_low), "ci_high": _num(self.ci_high),
-                "hodges_lehmann": _num(self.hodges_lehmann)}
 
 
 class _LinearInversion:

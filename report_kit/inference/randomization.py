@@ -56,6 +56,7 @@ from report_kit.inference.exact_tests import upgrade_tests
 from report_kit.inference.inversion import Interval, _interval, _LinearInversion, invert_test
 from report_kit.inference.kernels import Kernel  # noqa: F401
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics
+from report_kit.validate import Record
 
 __all__ = [
     "ALTERNATIVES",
@@ -117,7 +118,7 @@ def null_distribution(y, mechanism: Mechanism, *, statistic: str, source: Assign
 
 
 @dataclass(frozen=True, kw_only=True)
-class TestResult:
+class TestResult(Record):
     """One randomization test; fields are the ``tests`` entries of ``results.json``."""
 
     __test__ = False  # not a pytest class
@@ -131,14 +132,6 @@ class TestResult:
     method: str
     draws: int
     mc_std_error: float | None
-
-    def to_dict(self) -> dict:
-        return {
-            "outcome": self.outcome, "statistic": self.statistic, "alternative": self.alternative,
-            "null_effect": float(self.null_effect), "observed": _num(self.observed),
-            "p_value": _num(self.p_value), "method": self.method, "draws": int(self.draws),
-            "mc_std_error": _num(self.mc_std_error),
-        }
 
 
 def _results(dist: NullDistribution, names, alternatives, rtol) -> list[TestResult]:
@@ -244,7 +237,7 @@ class JointNull:
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
-class StudyRandomization:
+class StudyRandomization(Record):
     """Randomization inference for a study: tests, intervals and the null distributions behind them.
 
     Attributes
@@ -268,7 +261,12 @@ class StudyRandomization:
         The ``extra`` statistics of :func:`study_randomization`, on the same draws.
     rerandomization : dict or None
         Criterion, observed distance and acceptance rate of a rerandomized design.
+
+    ``to_dict()`` stores ``tests``, ``intervals``, ``n_assignments``, ``method``
+    and ``draws`` (the null distributions stay in memory).
     """
+
+    record_keys = ("tests", "intervals", "n_assignments", "method", "draws")
 
     tests: list
     intervals: list
@@ -296,10 +294,6 @@ class StudyRandomization:
             method=self.method,
             weights=None if first is None else first.weights,
         )
-
-    def to_dict(self) -> dict:
-        return {"tests": list(self.tests), "intervals": list(self.intervals),
-                "n_assignments": self.n_assignments, "method": self.method, "draws": int(self.draws)}
 
 
 def study_assignments(study) -> tuple[Mechanism, AssignmentSource]:

@@ -13,6 +13,7 @@ from pathlib import Path
 import pandas as pd
 
 from report_kit.validate import ALTERNATIVES, MECHANISMS, STATISTICS  # noqa: F401  (re-exported)
+from report_kit.validate import Record
 
 FAMILIES = ("primary", "secondary", "exploratory")
 MULTIPLICITY = ("none", "holm", "bh", "westfall_young")
@@ -127,13 +128,10 @@ class Spec:
 
 
 @dataclass(frozen=True, kw_only=True)
-class InputFile:
+class InputFile(Record):
     path: str          # relative to the project folder, '/'-separated
     sha256: str
     rows: int
-
-    def to_dict(self) -> dict:
-        return {"path": self.path, "sha256": self.sha256, "rows": self.rows}
 
 
 @dataclass(frozen=True, kw_only=True)
