@@ -21,7 +21,7 @@ from report_kit.checks.bounds import (  # noqa: F401  (lee_bounds, manski_bounds
 from report_kit.errors import DataError
 from report_kit.inference.engine import StoredDraws, drawn_statistics
 from report_kit.inference.pvalues import DrawnStatistics
-from report_kit.validate import METHODS, check_choice
+from report_kit.validate import Record, METHODS, check_choice
 
 __all__ = [
     "AttritionCheck",
@@ -42,7 +42,7 @@ __all__ = [
 
 
 @dataclass(frozen=True, kw_only=True)
-class AttritionTest:
+class AttritionTest(Record):
     """Attrition rates by arm and the randomization test of their difference, per indicator."""
 
     labels: tuple[str, ...]
@@ -73,8 +73,11 @@ class AttritionTest:
             })
         return out
 
-    def to_dict(self) -> dict:
-        return {"per_outcome": self.rows()}
+    @property
+    def per_outcome(self) -> list[dict]:
+        return self.rows()
+
+    record_keys = ("per_outcome",)
 
 
 def attrition_statistic(R: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:

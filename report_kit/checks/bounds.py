@@ -14,8 +14,9 @@ import numpy as np
 
 from report_kit.checks.balance import _check_assignment, _num
 from report_kit.errors import DataError, ReportKitWarning
+from report_kit.validate import Record
 
-__all__ = ["EffectBounds", "lee_bounds", "manski_bounds"]
+__all__ = ["EffectBounds", "LeeBounds", "lee_bounds", "manski_bounds"]
 
 
 # ---------------------------------------------------------------------------
@@ -59,8 +60,13 @@ def _check_outcome(y, z, observed) -> _ArmOutcomes:
 
 
 @dataclass(frozen=True, kw_only=True)
-class EffectBounds:
-    """Bounds on an average effect; ``to_dict`` gives the ``results.json`` entry plus details."""
+class EffectBounds(Record):
+    """Bounds on an average effect; ``to_dict`` gives the ``results.json`` entry plus details.
+
+    Stored keys: the bounds and the observed shares, then ``low, high`` (the
+    declared outcome range) for Manski bounds; :class:`LeeBounds` stores its
+    trimming details instead.
+    """
 
     method: str
     lower: float | None
@@ -75,21 +81,15 @@ class EffectBounds:
     std_error_upper: float | None = None
     n_blocks: int | None = None
 
-    def to_dict(self) -> dict:
-        out = {
-            "method": self.method,
-            "lower": self.lower,
-            "upper": self.upper,
-            "observed_share_treated": self.observed_share_treated,
-            "observed_share_control": self.observed_share_control,
-        }
-        if self.method == "lee":
-            out.update(trimmed_arm=self.trimmed_arm, trim_share=self.trim_share,
-                       std_error_lower=self.std_error_lower,
-                       std_error_upper=self.std_error_upper, n_blocks=self.n_blocks)
-        else:
-            out.update(low=self.low, high=self.high)
-        return out
+    record_keys = ("method", "lower", "upper", "observed_share_treated", "observed_share_control", "low", "high")
+
+
+@dataclass(frozen=True, kw_only=True)
+class LeeBounds(EffectBounds):
+    """Lee (2009) trimming bounds: the trimmed arm and share, standard errors and blocks used."""
+
+    record_keys = ("method", "lower", "upper", "observed_share_treated", "observed_share_control",
+                   "trimmed_arm", "trim_share", "std_error_lower", "std_error_upper", "n_blocks")
 
 
 def _trimmed_means(values: np.ndarray, keep_num: int, keep_den: int) -> tuple[float, float]:
@@ -163,7 +163,7 @@ def _lee(arms: _ArmOutcomes, *, quiet: bool = False) -> EffectBounds:
         if not quiet:
             warnings.warn("an arm has no observed outcome; Lee bounds are undefined",
                           ReportKitWarning, stacklevel=3)
-        return EffectBounds(method="lee", lower=None, upper=None,
+        return LeeBounds(method="lee", lower=None, upper=None,
                             observed_share_treated=share1, observed_share_control=share0)
     # keep share p_low / p_high of the better-observed arm, as an exact fraction
     # (the shares k_a / n_a are compared, never the counts k_a)
@@ -182,7 +182,7 @@ def _lee(arms: _ArmOutcomes, *, quiet: bool = False) -> EffectBounds:
     se_lower = se_upper = None
     if min(k1, k0) >= 2:
         se_lower, se_upper = _lee_std_errors(arms, trimmed)
-    return EffectBounds(method="lee", lower=_num(lower), upper=_num(upper),
+    return LeeBounds(method="lee", lower=_num(lower), upper=_num(upper),
                         observed_share_treated=share1, observed_share_control=share0,
                         trimmed_arm=trimmed, trim_share=float(q),
                         std_error_lower=_num(se_lower), std_error_upper=_num(se_upper))
@@ -213,14 +213,14 @@ def _lee_blocked(y, zb: np.ndarray, obs: np.ndarray, block) -> EffectBounds:
     if not parts:
         warnings.warn("no block has an observed outcome in both arms; Lee bounds are undefined",
                       ReportKitWarning, stacklevel=3)
-        return EffectBounds(method="lee", lower=None, upper=None, observed_share_treated=share1,
+        return LeeBounds(method="lee", lower=None, upper=None, observed_share_treated=share1,
                             observed_share_control=share0, n_blocks=0)
     w = np.asarray(weights, dtype=float) / sum(weights)
     arms_trimmed = {p.trimmed_arm for p in parts if p.trimmed_arm is not None}
     se = [[p.std_error_lower for p in parts], [p.std_error_upper for p in parts]]
     std_errors = [None if any(v is None for v in col) else float(np.sqrt(np.dot(w ** 2, np.square(col))))
                   for col in se]
-    return EffectBounds(
+    return LeeBounds(
         method="lee", lower=_num(float(np.dot(w, [p.lower for p in parts]))),
         upper=_num(float(np.dot(w, [p.upper for p in parts]))),
         observed_share_treated=share1, observed_share_control=share0,

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from report_kit.validate import closed_unit_interval, finite_number
+from report_kit.validate import Record, closed_unit_interval, finite_number
 from report_kit.planning.core import (
     _check_positive,
     _check_progress,
@@ -51,7 +51,7 @@ SIM_EXACT_LIMIT = 10_000
 
 
 @dataclass(frozen=True, kw_only=True)
-class PowerPlan:
+class PowerPlan(Record):
     """Power and minimum detectable effect of a project's design as planned.
 
     Attributes
@@ -92,21 +92,20 @@ class PowerPlan:
     analytic: dict
     simulation: dict | None = None
 
-    def to_dict(self) -> dict:
+    @property
+    def design(self) -> dict:
+        """The design as planned (sizes, clusters, design effect), as ``results`` of ``report-kit power`` show it."""
         a = self.analytic
         return {
-            "project": self.project, "title": self.title, "outcome": self.outcome, "statistic": self.statistic,
-            "design": {
-                "mechanism": self.mechanism, "sizes_from": self.sizes_from, "units_table": self.units_table,
-                "n_units": self.n_units, "n_treated": a["n_treated"], "n_control": a["n_control"],
-                "n_blocks": self.n_blocks, "n_clusters": self.n_clusters,
-                "clusters_treated": self.clusters_treated,
-                "clusters_control": None if self.n_clusters is None else self.n_clusters - self.clusters_treated,
-                "cluster_size": a["cluster_size"], "icc": a["icc"], "design_effect": a["design_effect"],
-            },
-            "analytic": dict(a),
-            "simulation": None if self.simulation is None else dict(self.simulation),
+            "mechanism": self.mechanism, "sizes_from": self.sizes_from, "units_table": self.units_table,
+            "n_units": self.n_units, "n_treated": a["n_treated"], "n_control": a["n_control"],
+            "n_blocks": self.n_blocks, "n_clusters": self.n_clusters,
+            "clusters_treated": self.clusters_treated,
+            "clusters_control": None if self.n_clusters is None else self.n_clusters - self.clusters_treated,
+            "cluster_size": a["cluster_size"], "icc": a["icc"], "design_effect": a["design_effect"],
         }
+
+    record_keys = ("project", "title", "outcome", "statistic", "design", "analytic", "simulation")
 
 
 def plan_power(project: Path | str | Spec, *, sd: float | None = None, effect: float | None = None,
