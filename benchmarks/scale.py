@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import argparse
 import logging
-import os
 import resource
 import shutil
 import sys
@@ -200,7 +199,4 @@ def main() -> None:
 
 
 if __name__ == "__main__":
-    # Until the huge-count fix lands (issue 10: never build a decimal string of a huge
-    # count), let the notebook kernel print counts of more than 4,300 digits.
-    os.environ.setdefault("PYTHONINTMAXSTRDIGITS", "0")
     main()
