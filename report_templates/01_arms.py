@@ -10,7 +10,8 @@ project_dir = ""
 import pandas as pd
 
 from report_kit.report import (
-    ASSIGNMENT_CHECK_WORDS, RunView, callout, esc, fmt, fmt_count, p_phrase, show_opening, show_outcomes, show_table,
+    ASSIGNMENT_CHECK_WORDS, RunView, callout, esc, fmt, fmt_count, p_phrase, points_box, show_opening, show_outcomes,
+    show_table,
 )
 
 view = RunView.open(run_dir, project_dir)
@@ -49,6 +50,9 @@ for outcome in spec.outcomes:
                  f"{p_phrase(omnibus.get('p_value'))}<ul>{''.join(parts)}</ul></li>")
 callout("<b>Pre-specified contrasts for each outcome</b> (difference in means by design; randomization "
         "p-values; adjusted within each outcome family):<ul>" + "".join(lines) + "</ul>", "info")
+box = points_box(res.get("points_to_weigh") or [])
+if box:
+    callout(box, "caution")
 
 # %% [markdown]
 # ## Design

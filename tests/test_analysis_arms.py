@@ -89,6 +89,7 @@ def test_full_run_shows_arm_sections_with_escaped_labels(tmp_path):
     assert sections == ["01_arms", "02_arms_effects", "04_arms_checks", "05_changes", "09_provenance"]
     html = (run_dir / "report.html").read_text(encoding="utf-8")
     assert "Factorial effects" in html and "Test across all arms" in html
+    assert "Points to weigh" in html and "was not locked before the analysis" in html   # page-1 box, as for two arms
     assert "Text &amp; &lt;i&gt;message&lt;/i&gt;" in html and "<i>message</i>" not in html
     for name in ("arms", "factorial", "contrast_tests", "omnibus_tests", "flow"):
         assert (run_dir / "tables" / f"{name}.csv").is_file()
