@@ -51,13 +51,8 @@ else:
 # %%
 flow = pd.DataFrame(res.get("flow") or [])
 arm_words = {"control": control_word, "treated": treated_word}
-if len(flow):
-    lead = next((o for o in view.spec.outcomes if o.family == "primary"), view.spec.outcomes[0])
-    show_figure(view, flow_diagram(res["flow"], lead.column, arm_labels=view.spec.design.arm_labels,
-                                   enrolment=res.get("enrolment"),
-                                   show_received=res.get("compliance") is not None),
-                "participant_flow",
-                caption=f"Participant flow (CONSORT-style stages) for {lead.label}: units at each stage by arm.")
+# the table first: it may break across pages, so the section never leaves a page half empty;
+# the diagram (which cannot break) follows it
 if len(flow):
     show_table(view, pd.DataFrame({
         "Outcome": [view.label(o) for o in flow["outcome"]],
@@ -68,6 +63,13 @@ if len(flow):
         "Lost": flow["lost"],
         "Analysed": flow["analysed"],
     }), "flow", caption="Units at each stage, by arm and outcome", csv_frame=flow)
+if len(flow):
+    lead = next((o for o in view.spec.outcomes if o.family == "primary"), view.spec.outcomes[0])
+    show_figure(view, flow_diagram(res["flow"], lead.column, arm_labels=view.spec.design.arm_labels,
+                                   enrolment=res.get("enrolment"),
+                                   show_received=res.get("compliance") is not None),
+                "participant_flow",
+                caption=f"Participant flow (CONSORT-style stages) for {lead.label}: units at each stage by arm.")
 
 # %% [markdown]
 # ## Attrition
