@@ -1,17 +1,25 @@
-"""Argument checks shared by the modules of ``design/`` (private to the folder).
+"""Argument checks and small rules shared by the modules of ``design/`` (private to the folder but for
+:func:`number_treated`).
 
-Each normalises one argument of a mechanism or a draw (kind, counts, seed,
+Each check normalises one argument of a mechanism or a draw (kind, counts, seed,
 probability, a 0/1 assignment, block or cluster labels) or raises the error
-that names it.
+that names it; :func:`number_treated` is the rounding rule both the mechanism
+and the real draw use.
 """
 
 from __future__ import annotations
 
+import math
+from fractions import Fraction
+
 import numpy as np
 import pandas as pd
 
-from report_kit.errors import DataError
+from report_kit.errors import DataError, DesignError
 from report_kit.validate import MECHANISMS, check_choice
+
+_NEEDS_BLOCK = frozenset({"blocked", "blocked_cluster", "matched_pairs"})
+_NEEDS_CLUSTER = frozenset({"cluster", "blocked_cluster"})
 
 
 def _check_kind(kind: str) -> str:
@@ -69,3 +77,21 @@ def _codes(labels, name: str, n: int) -> tuple[np.ndarray, tuple]:
     except TypeError as err:
         raise DataError(f"`{name}` labels must be all numbers or all text; got a mixture") from err
     return codes.astype(np.intp), tuple(uniq.tolist())
+
+
+def _both_arms(treated: int, total: int, where: str) -> None:
+    if treated == 0 or treated == total:
+        arm = "treated" if treated == 0 else "control"
+        raise DesignError(f"{where} has no {arm} unit ({treated} of {total} treated); both arms are needed")
+
+
+def number_treated(probability: float, size: int) -> int:
+    """Number of randomization units treated among ``size`` at share ``probability``.
+
+    ``floor(probability * size + 1/2)`` (round half up), computed exactly from
+    the shortest decimal form of ``probability`` (so 0.35 * 10 gives 4, as
+    written, not the binary value 3.4999...). Documented in
+    ``docs/methods/randomization.md``.
+    """
+    exact = Fraction(repr(float(probability))) * size + Fraction(1, 2)
+    return int(math.floor(exact))

@@ -10,8 +10,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from report_kit.design.arguments import _check_kind, _check_probability, _check_seed, _codes
-from report_kit.design.mechanism import _NEEDS_BLOCK, _NEEDS_CLUSTER, _both_arms, number_treated
+from report_kit.design.arguments import (
+    _NEEDS_BLOCK, _NEEDS_CLUSTER, _both_arms, _check_kind, _check_probability, _check_seed, _codes, number_treated,
+)
 from report_kit.errors import DataError, DesignError
 
 __all__ = ["draw_assignment"]

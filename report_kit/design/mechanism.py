@@ -28,14 +28,14 @@ import logging
 import math
 from collections.abc import Iterator
 from dataclasses import dataclass, field
-from fractions import Fraction
 
 import numpy as np
 
 from report_kit.errors import DesignError
 from report_kit.validate import MECHANISMS
-from report_kit.design.arguments import (
-    _check_assignment, _check_kind, _check_positive_int, _check_probability, _check_seed, _codes,
+from report_kit.design.arguments import (  # noqa: F401  (number_treated is public here)
+    _NEEDS_BLOCK, _NEEDS_CLUSTER, _both_arms, _check_assignment, _check_kind, _check_positive_int,
+    _check_probability, _check_seed, _codes, number_treated,
 )
 from report_kit.design.sampling import _IndexStream, _threshold_and_adjust, _unrank_combinations
 
@@ -50,26 +50,12 @@ __all__ = [
 logger = logging.getLogger(__name__)
 
 KINDS = MECHANISMS
-_NEEDS_BLOCK = frozenset({"blocked", "blocked_cluster", "matched_pairs"})
-_NEEDS_CLUSTER = frozenset({"cluster", "blocked_cluster"})
 #: Target number of assignment cells (draws x units) held in one chunk.
 CHUNK_CELLS = 1 << 22
 
 
 #: Counts of assignments with more digits than this are described by their size (10^N) only.
 MAX_COUNT_DIGITS = 20
-
-
-def number_treated(probability: float, size: int) -> int:
-    """Number of randomization units treated among ``size`` at share ``probability``.
-
-    ``floor(probability * size + 1/2)`` (round half up), computed exactly from
-    the shortest decimal form of ``probability`` (so 0.35 * 10 gives 4, as
-    written, not the binary value 3.4999...). Documented in
-    ``docs/methods/randomization.md``.
-    """
-    exact = Fraction(repr(float(probability))) * size + Fraction(1, 2)
-    return int(math.floor(exact))
 
 
 # --------------------------------------------------------------------------- the mechanism
@@ -469,12 +455,6 @@ def mechanism_from_arrays(kind: str, z, *, block=None, cluster=None, probability
         arr.setflags(write=False)
     z.setflags(write=False)
     return Mechanism(kind=kind, z=z, **parts)
-
-
-def _both_arms(treated: int, total: int, where: str) -> None:
-    if treated == 0 or treated == total:
-        arm = "treated" if treated == 0 else "control"
-        raise DesignError(f"{where} has no {arm} unit ({treated} of {total} treated); both arms are needed")
 
 
 def _build_complete(z, n, block, cluster, probability) -> dict:

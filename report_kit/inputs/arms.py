@@ -17,7 +17,7 @@ import pandas as pd
 
 from report_kit.errors import DataError
 from report_kit.inputs.checks import _is_missing, _label_list, _Locator, _show
-from report_kit.inputs.data import _as_text
+from report_kit.inputs.ids import _as_text
 from report_kit.inputs.readers import Table
 from report_kit.inputs.model import Spec
 
