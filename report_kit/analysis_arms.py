@@ -113,7 +113,7 @@ def arm_estimates(study: Study) -> list[dict]:
                      for c in estimate_arm_cace(y, labels, d, **kw)]
         if design.factors is not None and design.mechanism in FACTORIAL_MECHANISMS:
             for effect_row in estimate_factorial(y, labels, arms=design.arms, factors=design.factors,
-                                                 alpha=spec.analysis.alpha):
+                                                 block=kw["block"], alpha=spec.analysis.alpha):
                 item = effect_row.to_dict()
                 rows.append(_estimate_row(outcome.column, item["estimand"], item, factor=effect_row.factor))
     if design.factors is not None and design.mechanism not in FACTORIAL_MECHANISMS:
