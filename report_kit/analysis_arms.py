@@ -29,6 +29,8 @@ from report_kit.estimation.factorial import FACTORIAL_MECHANISMS, estimate_facto
 from report_kit.estimation.roles import estimate_roles
 from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
 from report_kit.inference.engine import ChunkMap
+from report_kit.inference.multiplicity import multiplicity_table
+from report_kit.inference.scope import inference_scope
 from report_kit.inputs.model import Study
 from report_kit.planning.power import mde
 
@@ -111,7 +113,7 @@ def arm_estimates(study: Study) -> list[dict]:
                      for c in estimate_arm_cace(y, labels, d, **kw)]
         if design.factors is not None and design.mechanism in FACTORIAL_MECHANISMS:
             for effect_row in estimate_factorial(y, labels, arms=design.arms, factors=design.factors,
-                                                 alpha=spec.analysis.alpha):
+                                                 block=kw["block"], alpha=spec.analysis.alpha):
                 item = effect_row.to_dict()
                 rows.append(_estimate_row(outcome.column, item["estimand"], item, factor=effect_row.factor))
     if design.factors is not None and design.mechanism not in FACTORIAL_MECHANISMS:
@@ -271,6 +273,22 @@ def arm_design(study: Study, source: ArmSource, assignment_check: str) -> dict:
     }
 
 
+def arm_inference_scope(study: Study) -> dict:
+    """The ``inference_scope`` section of a multi-arm run.
+
+    As for two arms (:func:`report_kit.inference.scope.inference_scope`), for the
+    contrast tests; ``subgroups`` is None because subgroup analyses are not
+    computed for multi-arm designs, and ``omnibus`` states the null of the
+    ``between_arms`` tests (no arm changes any unit's outcome).
+    """
+    scope = inference_scope(study)
+    scope["subgroups"] = None
+    scope["omnibus"] = {"statistic": "between_arms", "null": "sharp", "valid_for_average_effect": False,
+                        "note": ("The omnibus between-arms test concerns the sharp null that no arm changes "
+                                 "any unit's outcome; it is not a test of equal average outcomes.")}
+    return scope
+
+
 def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | None = None) -> dict:
     """Every section of ``results.json`` for a multi-arm or factorial study (``schema`` added by the caller).
 
@@ -291,6 +309,8 @@ def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | N
     tests, intervals = arm_tests(study, source, chunk_map)
     log.info("balance, flow, attrition")
     flow = arm_flow(study, source, chunk_map)
+    multiplicity = arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity,
+                                    joint=shared_contrast_nulls(study, source, chunk_map))
     return {
         "design": arm_design(study, source, assignment_check),
         "arms": arm_table(study),
@@ -302,8 +322,9 @@ def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | N
         "balance": arm_balance(study, source, chunk_map),
         "flow": flow["flow"],
         "attrition": flow["attrition"],
-        "multiplicity": arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity,
-                                         joint=shared_contrast_nulls(study, source, chunk_map)),
+        "multiplicity": multiplicity,
+        "inference_scope": arm_inference_scope(study),
+        "multiplicity_table": multiplicity_table(multiplicity),
         "power": arm_power(study, estimates),
         "inputs": [f.to_dict() for f in study.inputs],
         **({"data_handling": list(study.handling)} if study.handling else {}),

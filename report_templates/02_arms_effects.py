@@ -32,7 +32,8 @@ say("Each contrast compares two arms: the estimated average difference in the ou
 METHOD_WORDS = {"neyman": "Difference in means", "blocked_neyman": "Block-weighted", "cr2": "Difference in means, CR2",
                 "horvitz_thompson": "Horvitz–Thompson", "lin_hc2": "Lin adjusted, HC2", "lin_cr2": "Lin adjusted, CR2",
                 "lin_arms": "Lin adjusted (all arms), HC2", "wald_delta": "Wald ratio",
-                "factorial_neyman": "Factorial contrast of cell means"}
+                "factorial_neyman": "Factorial contrast of cell means",
+                "blocked_factorial_neyman": "Factorial contrast of cell means within blocks"}
 contrasts = est[est["arm"].notna()]
 for outcome in view.spec.outcomes:
     rows = contrasts[contrasts["outcome"] == outcome.column]

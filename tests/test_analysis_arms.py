@@ -186,3 +186,22 @@ def test_westfall_young_leads_when_shared_draws_exist(tmp_path, statistic, lead)
     assert len(wy) == (3 if lead == "westfall_young" else 0)
     assert all(m["p_adjusted"] >= m["p_value"] for m in wy)
     assert any("Holm leads instead" in n for n in results["notes"]) == (lead == "holm")
+
+
+def test_multi_arm_scope_and_multiplicity_table(nudges):
+    scope = nudges["inference_scope"]
+    assert scope["subgroups"] is None and scope["omnibus"]["statistic"] == "between_arms"
+    assert [t["outcome"] for t in scope["tests"]] == ["renewed", "visits_after"]
+    # Reference: pandas.pivot_table of the multiplicity rows (general-purpose library).
+    long = pd.DataFrame(nudges["multiplicity"])
+    wide = long.pivot_table(index=["outcome", "arm", "reference", "family"], columns="method",
+                            values="p_adjusted", aggfunc="first", sort=False)
+    table = nudges["multiplicity_table"]
+    assert len(table) == len(wide) == 6
+    for row in table:
+        assert set(row) == {"outcome", "arm", "reference", "family", "p_value", "adjusted", "lead_method"}
+        for method, value in row["adjusted"].items():
+            assert value == pytest.approx(wide.loc[(row["outcome"], row["arm"], row["reference"], row["family"]),
+                                                   method])
+        lead = long[(long.outcome == row["outcome"]) & (long.arm == row["arm"]) & long.lead]
+        assert row["lead_method"] == (lead.method.iloc[0] if len(lead) else None)

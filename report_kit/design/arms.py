@@ -204,7 +204,8 @@ def multi_arm_mechanism(kind: str, arm, *, n_arms: int, block=None, cluster=None
                              group_arm=group_arm.astype(np.int8), strata=strata)
 
 
-def draw_arms(kind: str, n_arms: int, ids, *, seed: int, block=None, cluster=None) -> np.ndarray:
+def draw_arms(kind: str, n_arms: int, ids, *, seed: int, block=None, cluster=None,
+              probabilities=None) -> np.ndarray:
     """Draw a multi-arm assignment from ``design.seed``.
 
     Algorithm (fixed; ``docs/methods/arms.md``): units are sorted by id;
@@ -213,7 +214,11 @@ def draw_arms(kind: str, n_arms: int, ids, *, seed: int, block=None, cluster=Non
     ``rng = numpy.random.default_rng(seed)``:
 
     * ``bernoulli``: ``rng.integers(0, K, size=G)`` gives each randomization unit
-      (in sorted order) an arm with probability ``1/K``, independently;
+      (in sorted order) an arm with probability ``1/K``, independently; with
+      ``probabilities`` ``p_0..p_{K-1}`` (``design.probability`` as a mapping,
+      in arm order) instead ``u = rng.random(G)`` and each unit gets the first
+      arm ``k`` with ``u < p_0 + ... + p_k`` (the last arm when rounding leaves
+      none), so arm ``k`` with probability ``p_k``, independently;
     * otherwise, stratum by stratum in label order, the stratum's ``G``
       randomization units (in sorted order) receive the labels
       ``[0, 1, ..., K-1, 0, 1, ...]`` (``G`` labels, so arm sizes differ by at
@@ -237,6 +242,13 @@ def draw_arms(kind: str, n_arms: int, ids, *, seed: int, block=None, cluster=Non
     g = int(group.max()) + 1
     group_stratum = np.zeros(g, dtype=np.intp)
     group_stratum[group] = _codes(block) if block is not None else 0
+    if probabilities is not None:
+        p = np.asarray(probabilities, dtype=float)
+        if kind != "bernoulli" or p.shape != (n_arms,) or np.any(p <= 0) or abs(p.sum() - 1.0) > 1e-9:
+            raise ValueError(f"`probabilities` must be {n_arms} positive numbers summing to 1, for a bernoulli "
+                             f"design; got {probabilities!r} for {kind!r}")
+        codes = np.minimum(np.searchsorted(np.cumsum(p), rng.random(g), side="right"), n_arms - 1)
+        return codes[group].astype(int)
     if kind == "bernoulli":
         return rng.integers(0, n_arms, size=g)[group].astype(int)
     group_arm = np.empty(g, dtype=np.int8)

@@ -101,7 +101,8 @@ def _redraw_arms(spec: Spec, frame: pd.DataFrame) -> np.ndarray:
     try:
         return draw_arms(design.mechanism, len(design.arms), frame[spec.data.id].to_numpy(), seed=design.seed,
                          block=None if design.block is None else frame[design.block].to_numpy(),
-                         cluster=None if design.cluster is None else frame[design.cluster].to_numpy())
+                         cluster=None if design.cluster is None else frame[design.cluster].to_numpy(),
+                         probabilities=design.arm_probabilities)
     except DesignError as err:
         raise DesignError(f"{spec.path}: design.seed {design.seed}: cannot draw a {design.mechanism} assignment "
                           f"of {len(design.arms)} arms for {spec.project_dir / spec.data.units}: {err}") from err

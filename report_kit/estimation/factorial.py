@@ -20,7 +20,7 @@ from report_kit.validate import Record
 
 __all__ = ["FactorialEffect", "factorial_terms", "estimate_factorial"]
 
-FACTORIAL_MECHANISMS = ("complete", "bernoulli")
+FACTORIAL_MECHANISMS = ("complete", "bernoulli", "blocked")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -60,8 +60,8 @@ def _check_factors(factors, arms) -> dict[str, tuple[int, ...]]:
     return cells
 
 
-def estimate_factorial(y, arm, *, arms, factors, alpha: float = 0.05) -> list[FactorialEffect]:
-    """Main effects and interactions of a 2^F factorial design.
+def estimate_factorial(y, arm, *, arms, factors, block=None, alpha: float = 0.05) -> list[FactorialEffect]:
+    """Main effects and interactions of a 2^F factorial design, optionally within blocks.
 
     With cells (arms) ``c``, coding ``g_f(c) = +1`` where factor ``f`` is on and
     ``-1`` where it is off, and ``g_S(c) = prod_{f in S} g_f(c)`` for an
@@ -77,6 +77,20 @@ def estimate_factorial(y, arm, *, arms, factors, alpha: float = 0.05) -> list[Fa
     HC2 variance equals the Neyman variance. df: Welch–Satterthwaite over the
     cells. Units with a missing outcome are dropped. Effects are ``None`` when
     a cell has no observed unit; standard errors when one has a single unit.
+
+    With ``block`` (a blocked factorial design, the cells randomized within
+    each block) the effect is the block-size-weighted combination of the
+    within-block effects and the variance the weighted sum of the per-block
+    Neyman variances,
+
+    ``tau_S = sum_b (n_b / n) tau_Sb``,
+    ``Var_hat(tau_S) = sum_b (n_b / n)^2 Var_hat(tau_Sb)``
+
+    with ``n_b`` the block's units with an observed outcome (the blocked
+    estimator of Imbens & Rubin 2015, ch. 9, applied to the factorial contrast;
+    blocks are independent experiments, so the variances add). df:
+    Welch–Satterthwaite over every cell of every block. Method
+    ``blocked_factorial_neyman``.
     """
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise ValueError(f"`alpha` must be a number strictly between 0 and 1; got {alpha!r}")
@@ -85,32 +99,49 @@ def estimate_factorial(y, arm, *, arms, factors, alpha: float = 0.05) -> list[Fa
     y = np.asarray(y, dtype=float)
     if y.shape != labels.shape:
         raise ValueError(f"`y` and `arm` must have the same length; got {y.size} and {labels.size}")
-    stats = {}
-    for a in cells:
-        vals = y[(labels == a) & ~np.isnan(y)]
-        stats[a] = (vals.size, float(vals.mean()) if vals.size else None,
-                    float(vals.var(ddof=1)) if vals.size > 1 else None)
+    seen = ~np.isnan(y)
+    if block is None:
+        groups = [seen]
+    else:
+        if isinstance(block, (str, bytes)) or not hasattr(block, "__len__") or len(block) != labels.size:
+            raise ValueError(f"`block` must be an array of block labels of length {labels.size}")
+        codes = np.unique(np.asarray([str(b) for b in block], dtype=object), return_inverse=True)[1].ravel()
+        groups = [seen & (codes == b) for b in range(int(codes.max()) + 1)]
+    total = int(seen.sum())
+    blocks = []
+    for members in groups:
+        if not members.any():
+            continue
+        stats = {}
+        for a in cells:
+            vals = y[members & (labels == a)]
+            stats[a] = (vals.size, float(vals.mean()) if vals.size else None,
+                        float(vals.var(ddof=1)) if vals.size > 1 else None)
+        blocks.append((members.sum() / total if total else 1.0, stats))
+    if not blocks:
+        blocks = [(1.0, {a: (0, None, None) for a in cells})]
     scale = 2.0 ** (len(factors) - 1)
+    method = "factorial_neyman" if block is None else "blocked_factorial_neyman"
     names = [(str(n), ()) for n, _ in factors]
-    return [_effect(name, members, cells, stats, scale, alpha) for name, members in factorial_terms(names)]
+    return [_effect(name, members, cells, blocks, scale, alpha, method)
+            for name, members in factorial_terms(names)]
 
 
-def _effect(name, members, cells, stats, scale, alpha) -> FactorialEffect:
+def _effect(name, members, cells, blocks, scale, alpha, method) -> FactorialEffect:
     sign = {a: math.prod(1 if cell[m] else -1 for m in members) for a, cell in cells.items()}
-    on = [a for a in cells if sign[a] > 0]
-    n_on = sum(stats[a][0] for a in on)
-    n_off = sum(stats[a][0] for a in cells if sign[a] < 0)
+    n_on = sum(stats[a][0] for _, stats in blocks for a in cells if sign[a] > 0)
+    n_off = sum(stats[a][0] for _, stats in blocks for a in cells if sign[a] < 0)
     estimand = "main effect" if len(members) == 1 else "interaction"
-    if any(stats[a][1] is None for a in cells):
+    if any(stats[a][1] is None for _, stats in blocks for a in cells):
         est = se = df = None
     else:
-        est = sum(sign[a] * stats[a][1] for a in cells) / scale
-        comps = None if any(stats[a][2] is None for a in cells) else [
-            (stats[a][2] / stats[a][0] / scale ** 2, stats[a][0] - 1) for a in cells]
+        est = sum(w * sum(sign[a] * stats[a][1] for a in cells) / scale for w, stats in blocks)
+        comps = None if any(stats[a][2] is None for _, stats in blocks for a in cells) else [
+            (w ** 2 * stats[a][2] / stats[a][0] / scale ** 2, stats[a][0] - 1) for w, stats in blocks for a in cells]
         se = None if comps is None else math.sqrt(sum(v for v, _ in comps))
         df = None if comps is None else _satterthwaite(comps)
     low, high = _interval(est, se, df, alpha)
     estimate = Estimate(estimand=estimand, estimator="unadjusted", estimate=est, std_error=se, ci_low=low,
-                        ci_high=high, df=df, n_treated=n_on, n_control=n_off, method="factorial_neyman",
+                        ci_high=high, df=df, n_treated=n_on, n_control=n_off, method=method,
                         variance_rule="neyman")
     return FactorialEffect(factor=name, estimate=estimate)

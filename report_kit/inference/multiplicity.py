@@ -397,6 +397,9 @@ def multiplicity_table(entries: Sequence[Mapping]) -> list[dict]:
         outcomes first appear; ``adjusted`` maps each method of
         :data:`ADJUSTMENTS` that was computed to its adjusted p-value, and
         ``lead_method`` is the pre-specified method (None when none leads).
+        Entries that carry ``arm`` and ``reference`` (multi-arm contrasts) give
+        one row per outcome and contrast, ``{outcome, arm, reference, family,
+        p_value, adjusted, lead_method}``.
     """
     if isinstance(entries, (str, bytes)) or not isinstance(entries, Sequence):
         raise TypeError(f"`entries` must be a sequence of mappings; got {type(entries).__name__}")
@@ -404,8 +407,9 @@ def multiplicity_table(entries: Sequence[Mapping]) -> list[dict]:
     for i, entry in enumerate(entries):
         if not isinstance(entry, Mapping):
             raise TypeError(f"`entries[{i}]` must be a mapping; got {type(entry).__name__}")
-        key = (entry["outcome"], entry["family"])
-        row = rows.setdefault(key, {"outcome": entry["outcome"], "family": entry["family"],
+        contrast = {k: entry[k] for k in ("arm", "reference") if k in entry}
+        key = (entry["outcome"], *contrast.values(), entry["family"])
+        row = rows.setdefault(key, {"outcome": entry["outcome"], **contrast, "family": entry["family"],
                                     "p_value": entry.get("p_value"), "adjusted": {}, "lead_method": None})
         row["adjusted"][entry["method"]] = entry.get("p_adjusted")
         if entry.get("lead"):

@@ -42,7 +42,9 @@ def arm_spec_problems(design: dict) -> list[str]:
     arms = design.get("arms")
     if arms is None:
         return [f"design.{key}: given without design.arms; list the arm labels (reference first) in "
-                "design.arms" for key in ("contrasts", "factors") if key in design]
+                "design.arms" for key in ("contrasts", "factors") if key in design] + (
+            ["design.probability: a mapping of arm probabilities needs design.arms (more than two arms); "
+             "for two arms give one number"] if isinstance(design.get("probability"), dict) else [])
     labels = [arm_text(a) for a in arms]
     problems = []
     first: dict[str, int] = {}
@@ -54,9 +56,7 @@ def arm_spec_problems(design: dict) -> list[str]:
     if mech not in ARM_MECHANISMS:
         problems.append(f"design.arms: mechanism '{mech}' has two arms only; multi-arm designs use one of "
                         f"{', '.join(ARM_MECHANISMS)}")
-    if "probability" in design and len(labels) > 2:
-        problems.append("design.probability: given for a design with more than two arms; the arms are drawn "
-                        "with equal shares (remove the key)")
+    problems += _probability_problems(design, labels, mech)
     if design.get("single_arm_blocks", "error") != "error":
         problems.append(f"design.single_arm_blocks: '{design['single_arm_blocks']}' is for 0/1 treatment columns; "
                         "with design.arms every block must hold every arm (remove the key)")
@@ -67,6 +67,36 @@ def arm_spec_problems(design: dict) -> list[str]:
         if arm_text(key) not in first:
             problems.append(f"design.arm_labels.{key}: '{key}' is not one of design.arms ({', '.join(labels)})")
     return problems + _factor_problems(design.get("factors"), labels)
+
+
+def _probability_problems(design: dict, labels: list[str], mech: str) -> list[str]:
+    """``design.probability`` of a multi-arm design: a mapping arm -> probability (Bernoulli only)."""
+    if "probability" not in design:
+        return []
+    value = design["probability"]
+    multi = len(labels) > 2 or "factors" in design
+    if not isinstance(value, dict):
+        if multi:
+            return ["design.probability: a single number is for two arms; for a multi-arm Bernoulli design give "
+                    "each arm's probability (arm: probability, summing to 1), otherwise remove the key"]
+        return []
+    if not multi:
+        return ["design.probability: a mapping of arm probabilities is for designs with more than two arms; "
+                "for two arms give one number"]
+    if mech != "bernoulli":
+        return [f"design.probability: arm probabilities are for bernoulli designs; mechanism '{mech}' draws "
+                "equal arm shares (remove the key)"]
+    problems = [f"design.probability.{key}: '{key}' is not one of design.arms ({', '.join(labels)})"
+                for key in value if arm_text(key) not in labels]
+    given = {arm_text(k) for k in value}
+    lacking = [arm for arm in labels if arm not in given]
+    if lacking:
+        problems.append(f"design.probability: no probability for arm(s) {', '.join(lacking)}; give every arm "
+                        "of design.arms one")
+    total = sum(float(v) for v in value.values())
+    if not problems and abs(total - 1.0) > 1e-9:
+        problems.append(f"design.probability: the arm probabilities sum to {total:.10g}, not 1")
+    return problems
 
 
 def _factor_problems(factors: dict | None, labels: list[str]) -> list[str]:

@@ -46,6 +46,7 @@ class DesignSpec:
     contrasts: str = "reference"                 # reference | pairwise
     factors: tuple[tuple[str, tuple[str, ...]], ...] | None = None  # factorial: (factor, arms where on)
     arm_display: tuple[tuple[str, str], ...] = ()  # multi-arm: display label of each arm (optional)
+    arm_probabilities: tuple[float, ...] | None = None  # multi-arm Bernoulli: probability of each arm, arms order
     single_arm_blocks: str = "error"     # error | drop | pool (blocks holding one arm only)
     rerandomization: RerandomizationSpec | None = None
     arm_labels: tuple[str, str] = DEFAULT_ARM_LABELS   # (label of 0, label of 1)

@@ -412,7 +412,15 @@ def _arm_keys(design: dict) -> dict:
         "factors": None if factors is None else tuple(
             (str(name), tuple(arm_text(a) for a in on)) for name, on in factors.items()),
         "arm_display": tuple((arm_text(k), v) for k, v in design.get("arm_labels", {}).items()),
+        **({"arm_probabilities": _arm_probabilities(design)} if isinstance(design.get("probability"), dict)
+           else {}),
     }
+
+
+def _arm_probabilities(design: dict) -> tuple[float, ...]:
+    """``design.probability`` as a mapping: each arm's probability in ``design.arms`` order."""
+    given = {arm_text(k): float(v) for k, v in design["probability"].items()}
+    return tuple(given[arm_text(a)] for a in design["arms"])
 
 
 def _two_arm_labels(design: dict) -> tuple[str, str]:
@@ -451,7 +459,7 @@ def _build_spec(path: Path, doc: dict) -> Spec:
         design=DesignSpec(
             mechanism=design["mechanism"], treatment=design["treatment"],
             block=design.get("block"), cluster=design.get("cluster"),
-            probability=design.get("probability"),
+            probability=None if isinstance(design.get("probability"), dict) else design.get("probability"),
             seed=None if design.get("seed") is None else int(design["seed"]),
             **_arm_keys(design),
             single_arm_blocks=design.get("single_arm_blocks", "error"),

@@ -83,3 +83,55 @@ def test_assign_writes_labels_and_check_reproduces(tmp_path):
     table.to_csv(tmp_path / "data" / "assignment.csv", index=False)
     check = invoke("check", tmp_path)
     assert check.exit_code == 1 and "MISMATCH" in check.output and "u03" in check.output
+
+
+PROBS = [0.5, 0.3, 0.2]
+
+
+def test_bernoulli_probabilities_follow_the_written_algorithm():
+    # Reference: the algorithm as written in docs/methods/arms.md with numpy alone: units sorted
+    # by id, u = rng.random(n), arm = first k with u < p_0 + ... + p_k.
+    ids = np.array([f"u{i:03d}" for i in np.random.default_rng(9).permutation(200)], dtype=object)
+    drawn = draw_arms("bernoulli", 3, ids, seed=SEED, probabilities=PROBS)
+    u = np.random.default_rng(SEED).random(200)
+    by_sorted = np.where(u < 0.5, 0, np.where(u < 0.8, 1, 2))
+    expected = np.empty(200, dtype=int)
+    expected[np.argsort(ids, kind="stable")] = by_sorted
+    assert drawn.tolist() == expected.tolist()
+    cluster = np.repeat(np.arange(50), 4)
+    clustered = draw_arms("bernoulli", 3, np.arange(200), seed=SEED, cluster=cluster, probabilities=PROBS)
+    assert all(len(set(clustered[cluster == c])) == 1 for c in range(50))
+
+
+def test_bernoulli_probabilities_realised_shares():
+    # Common practice: each realised share within 4 binomial standard errors sqrt(p (1 - p) / n).
+    n = 200_000
+    drawn = draw_arms("bernoulli", 3, np.arange(n), seed=77, probabilities=PROBS)
+    shares = np.bincount(drawn, minlength=3) / n
+    for share, p in zip(shares, PROBS):
+        assert abs(share - p) <= 4 * np.sqrt(p * (1 - p) / n)
+
+
+def test_bernoulli_probabilities_misuse():
+    with pytest.raises(ValueError, match="summing to 1"):
+        draw_arms("bernoulli", 3, np.arange(10), seed=1, probabilities=[0.5, 0.3, 0.3])
+    with pytest.raises(ValueError, match="for a bernoulli design"):
+        draw_arms("complete", 3, np.arange(10), seed=1, probabilities=PROBS)
+
+
+def test_assign_and_check_with_arm_probabilities(tmp_path):
+    write_project(tmp_path, with_assignment=False)
+    doc = yaml.safe_load((tmp_path / "design.yaml").read_text())
+    doc["design"].update(mechanism="bernoulli", probability=dict(zip(ARMS, PROBS)))
+    (tmp_path / "design.yaml").write_text(yaml.safe_dump(doc), encoding="utf-8")
+    result = invoke("assign", tmp_path)
+    assert result.exit_code == 0, result.output
+    table = pd.read_csv(tmp_path / "data" / "assignment.csv")
+    expected = np.asarray(ARMS, dtype=object)[draw_arms("bernoulli", 3, table["uid"].to_numpy(), seed=SEED,
+                                                        probabilities=PROBS)]
+    assert table["arm"].tolist() == expected.tolist()
+    doc["data"]["merge"] = ["data/assignment.csv"]
+    (tmp_path / "design.yaml").write_text(yaml.safe_dump(doc), encoding="utf-8")
+    check = invoke("check", tmp_path)
+    assert check.exit_code == 0, check.output
+    assert "assignment reproduced" in check.output

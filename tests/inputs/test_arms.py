@@ -120,6 +120,13 @@ def test_factorial_two_arms_same_cell(tmp_path):
     assert "arms 'none' and 'b' have the same factors on" in msg
 
 
+def test_arm_probabilities_load_in_arm_order(tmp_path):
+    path = project(tmp_path, {"mechanism": "bernoulli", "arms": THREE,
+                              "probability": {"long": 0.2, "usual": 0.5, "short": 0.3}}, THREE * 2)
+    design = load_spec(path).design
+    assert design.arm_probabilities == (0.5, 0.3, 0.2) and design.probability is None
+
+
 def test_full_factorial_loads(tmp_path):
     path = project(tmp_path, {"arms": ["none", "a", "b", "ab"], "factors": {"fa": ["a", "ab"], "fb": ["b", "ab"]}},
                    ["none", "a", "b", "ab"] * 2)
@@ -135,6 +142,17 @@ def test_full_factorial_loads(tmp_path):
     ({"arms": ["a"]}, "design.arms: found an empty value; expected at least 2 item(s)"),
     ({"arms": ["a", "b", "c"], "mechanism": "matched_pairs", "block": "p"}, "mechanism 'matched_pairs' has two arms only"),
     ({"arms": ["a", "b", "c"], "factors": {"x": ["b"]}}, "design.factors: found 1 key(s); expected at least 2"),
+    ({"arms": ["a", "b", "c"], "mechanism": "bernoulli", "probability": {"a": 0.5, "b": 0.3, "d": 0.2}},
+     "design.probability.d: 'd' is not one of design.arms"),
+    ({"arms": ["a", "b", "c"], "mechanism": "bernoulli", "probability": {"a": 0.5, "b": 0.5}},
+     "design.probability: no probability for arm(s) c"),
+    ({"arms": ["a", "b", "c"], "mechanism": "bernoulli", "probability": {"a": 0.5, "b": 0.3, "c": 0.1}},
+     "design.probability: the arm probabilities sum to 0.9, not 1"),
+    ({"arms": ["a", "b", "c"], "probability": {"a": 0.5, "b": 0.3, "c": 0.2}},
+     "design.probability: arm probabilities are for bernoulli designs"),
+    ({"arms": ["a", "b", "c"], "mechanism": "bernoulli", "probability": 0.3},
+     "design.probability: a single number is for two arms"),
+    ({"probability": {"a": 0.5, "b": 0.5}}, "design.probability: a mapping of arm probabilities needs design.arms"),
 ])
 def test_spec_messages(tmp_path, design, expected):
     assert expected in spec_error(project(tmp_path, design, ["a", "b", "c"]))
