@@ -66,6 +66,11 @@ if len(tests):
 
 # %%
 intervals = pd.DataFrame(res.get("intervals") or [])
+grid_note = ""
+if len(intervals) and "detail" in intervals and intervals["detail"].fillna("").str.startswith("exact").any():
+    grid_note = (" Intervals marked exact were found from exact p-values on the grid of effects that keep the "
+                 "outcome on its lattice (multiples of its step; see docs/methods/exact.md), so their ends are "
+                 "grid values; their Hodges–Lehmann estimate comes from the random assignments.")
 if len(intervals):
     show_table(view, pd.DataFrame({
         "Outcome": [view.label(o) for o in intervals["outcome"]],
@@ -76,7 +81,7 @@ if len(intervals):
         csv_frame=intervals,
         note="The interval collects every constant additive effect that the two-sided difference-in-means "
              "randomization test does not reject, whatever statistic or alternative the outcome's own test uses; "
-             "the Hodges–Lehmann estimate is the effect at which that test is most compatible.")
+             "the Hodges–Lehmann estimate is the effect at which that test is most compatible." + grid_note)
 
 # %%
 rr_intervals = pd.DataFrame(res.get("rerandomization_intervals") or [])
