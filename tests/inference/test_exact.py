@@ -328,6 +328,12 @@ def test_collection_postcards_example_is_exact_without_listing(tmp_path):
     assert booked["method"] == "exact" and booked["draws"] == 0 and "hypergeometric" in booked["detail"]
     assert booked["p_value"] == pytest.approx(ref, rel=1e-9)
     assert results["design"]["assignment_check"] == "reproduced"
+    # intervals: the 0/1 outcome keeps its Monte Carlo interval and says why; the 0..8 count is inverted
+    # exactly on the grid tau = k (docs/methods/exact.md)
+    booked_ci, items_ci = results["intervals"]
+    assert booked_ci["method"] == "test_inversion" and "{-1, 0, 1}" in booked_ci["detail"]
+    assert items_ci["method"] == "exact" and "tau = k * 1" in items_ci["detail"]
+    assert float(items_ci["ci_low"]).is_integer() and float(items_ci["ci_high"]).is_integer()
     assert items["method"] == "exact" and "FFT" in items["detail"]
     mech = mechanism_from_arrays("complete", z)
     mc = randomization_test(frame["items_set_out"].to_numpy(float), mech, alternative="greater",
