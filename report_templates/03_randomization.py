@@ -66,17 +66,24 @@ if len(tests):
 
 # %%
 intervals = pd.DataFrame(res.get("intervals") or [])
+grid_note = ""
+if len(intervals) and "detail" in intervals and intervals["detail"].fillna("").str.startswith("exact").any():
+    grid_note = (" Where the ends are exact grid values, they are the smallest and largest effects not rejected by "
+                 "an exact p-value among those that keep the outcome on its lattice (multiples of its step; see "
+                 "docs/methods/exact.md); the Hodges–Lehmann estimate still comes from the random assignments.")
 if len(intervals):
     show_table(view, pd.DataFrame({
         "Outcome": [view.label(o) for o in intervals["outcome"]],
         f"{level}% interval, low": intervals["ci_low"],
         f"{level}% interval, high": intervals["ci_high"],
         "Hodges–Lehmann estimate": intervals["hodges_lehmann"],
+        **({"Ends": ["exact grid values" if m == "exact" else "random assignments" for m in intervals["method"]]}
+           if grid_note else {}),
     }), "intervals", caption="Constant effects not rejected by the two-sided difference-in-means test",
         csv_frame=intervals,
         note="The interval collects every constant additive effect that the two-sided difference-in-means "
              "randomization test does not reject, whatever statistic or alternative the outcome's own test uses; "
-             "the Hodges–Lehmann estimate is the effect at which that test is most compatible.")
+             "the Hodges–Lehmann estimate is the effect at which that test is most compatible." + grid_note)
 
 # %%
 rr_intervals = pd.DataFrame(res.get("rerandomization_intervals") or [])

@@ -36,7 +36,7 @@ from report_kit.inference.exact import (
 )
 from report_kit.inference.kernels import _rank_scores
 
-__all__ = ["EXACT_STATISTICS", "ExactTest", "NoExactLaw", "exact_law_test", "upgrade_tests"]
+__all__ = ["EXACT_STATISTICS", "ExactTest", "NoExactLaw", "exact_interval", "exact_law_test", "upgrade_tests"]
 
 EXACT_STATISTICS = ("mean_difference", "rank_sum")
 _KINDS = ("complete", "blocked", "matched_pairs")
@@ -285,3 +285,100 @@ def upgrade_tests(tests: list[dict], y: np.ndarray, names, mechanism: Mechanism,
         out.append({**row, "p_value": res.p_value, "method": "exact", "draws": 0, "mc_std_error": None,
                     "detail": res.detail})
     return out
+
+
+# =========================================================================== exact test-inversion intervals
+
+#: Most exact p-values computed for the two ends of one interval.
+MAX_INTERVAL_EVALUATIONS = 80
+#: Grid points beyond each end confirmed rejected (``p(tau)`` need not be monotone).
+CONFIRM_STEPS = 2
+
+
+def exact_interval(row: dict, y, mechanism: Mechanism, *, resolution: float | None = None,
+                   max_evaluations: int = MAX_INTERVAL_EVALUATIONS, max_cells: int = DEFAULT_MAX_CELLS) -> dict:
+    """A two-sided difference-in-means test-inversion interval made exact on the lattice of effects.
+
+    ``row`` is a Monte Carlo ``intervals`` entry (``ci_low``, ``ci_high``,
+    ``level``). Under the sharp null ``Y0 = Y - tau Z_obs`` stays on the lattice
+    of step ``r`` (the declared ``resolution`` or the common step of ``Y``) only
+    for ``tau = j r``, ``j`` integer; there the exact two-sided p-value
+    ``p(j)`` of :func:`exact_law_test` is available. The interval is
+    ``{j r : p(j) > alpha}`` (Fisher 1935; Imbens & Rubin 2015, ch. 5), reported by its
+    smallest and largest accepted grid values. From each Monte Carlo end the
+    search gallops (steps 1, 2, 4, ...) outward while accepted (inward while
+    rejected) and bisects the last bracket to an accepted point whose outer
+    neighbour is rejected; since ``p(j)`` need not be monotone, the
+    :data:`CONFIRM_STEPS` grid points beyond each end must be rejected too,
+    otherwise the search goes on from there. At most ``max_evaluations``
+    p-values are computed.
+
+    Returns the row with ``method = "exact"``, the exact ends and ``detail``
+    naming the algorithm and the grid step; the Hodges-Lehmann estimate stays
+    the Monte Carlo one. When no exact law applies (0/1 outcomes, whose
+    constant-effect null exists only for ``tau`` in {-1, 0, 1}; values off the
+    lattice; a law too large; an unbounded Monte Carlo interval; the budget
+    spent) the row is returned with ``detail`` saying why it stays Monte Carlo.
+    """
+    y = np.asarray(y, dtype=np.float64)
+    if row.get("ci_low") is None or row.get("ci_high") is None:
+        return {**row, "detail": "monte carlo: the Monte Carlo interval is unbounded"}
+    values = np.unique(y[~np.isnan(y)])
+    if values.size and np.isin(values, (0.0, 1.0)).all():
+        return {**row, "detail": "monte carlo: for a 0/1 outcome the sharp null of a constant effect is only "
+                                 "defined for tau in {-1, 0, 1}"}
+    alpha = 1.0 - row["level"]
+    cache: dict[int, bool] = {}
+    try:
+        step = float(resolution) if resolution is not None else _common_step(values)
+
+        def accepted(j: int) -> bool:
+            if j not in cache:
+                if len(cache) >= max_evaluations:
+                    raise NoExactLaw(f"the search used its {max_evaluations} exact p-values")
+                cache[j] = exact_law_test(y, mechanism, null_effect=j * step, resolution=step,
+                                          max_cells=max_cells).p_value > alpha
+            return cache[j]
+
+        low = _grid_end(accepted, round(row["ci_low"] / step), -1)
+        high = _grid_end(accepted, round(row["ci_high"] / step), +1)
+    except NoExactLaw as err:
+        return {**row, "detail": f"monte carlo: {err}"}
+    if low is None or high is None or low > high:
+        return {**row, "detail": "monte carlo: no grid effect near the Monte Carlo interval is accepted"}
+    return {**row, "method": "exact", "ci_low": low * step, "ci_high": high * step,
+            "detail": f"exact test inversion on the grid tau = k * {step:g} (galloping and bisection from "
+                      f"the Monte Carlo ends, {len(cache)} exact p-values); Hodges-Lehmann from Monte Carlo"}
+
+
+def _grid_end(accepted, start: int, outward: int, max_moves: int = 64) -> int | None:
+    """The outermost accepted grid index found from ``start`` in direction ``outward`` (see :func:`exact_interval`)."""
+    j = start
+    if not accepted(j):  # gallop inward to an accepted point, bracketing a rejected one outside it
+        gap = 1
+        while not accepted(j - outward * gap):
+            gap *= 2
+            if gap > 2 ** max_moves:
+                return None
+        inside, outside = j - outward * gap, j - outward * (gap // 2)
+    else:
+        inside, outside = j, None
+    for _ in range(max_moves):
+        if outside is None:  # gallop outward from an accepted point to a rejected one
+            gap = 1
+            while accepted(inside + outward * gap):
+                inside += outward * gap
+                gap *= 2
+            outside = inside + outward * gap
+        while abs(outside - inside) > 1:
+            mid = (inside + outside) // 2
+            if accepted(mid):
+                inside = mid
+            else:
+                outside = mid
+        beyond = [outside + outward * s for s in range(1, CONFIRM_STEPS + 1)]
+        again = next((b for b in beyond if accepted(b)), None)
+        if again is None:
+            return inside
+        inside, outside = again, None
+    return None

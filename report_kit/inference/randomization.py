@@ -52,7 +52,7 @@ from report_kit.design.assignment import study_criterion
 from report_kit.design.mechanism import AssignmentSource, Mechanism, mechanism_from_arrays
 from report_kit.design.rerandomization import RerandomizedSource, rerandomized_assignments
 from report_kit.errors import ReportKitWarning
-from report_kit.inference.exact_tests import upgrade_tests
+from report_kit.inference.exact_tests import exact_interval, upgrade_tests
 from report_kit.inference.inversion import Interval, _interval, _LinearInversion, invert_test
 from report_kit.inference.kernels import Kernel  # noqa: F401
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics
@@ -364,8 +364,10 @@ def study_randomization(study, assignments: tuple[Mechanism, AssignmentSource] |
         intervals.append(_interval(inv, inv.hodges_lehmann(), inv.scale(), "two-sided", level, name).to_dict())
     rerandomized = isinstance(source, RerandomizedSource)
     if source.method != "exact" and not rerandomized:
-        tests = upgrade_tests(tests, y, names, mechanism,
-                              resolutions={o.column: o.resolution for o in spec.outcomes})
+        resolutions = {o.column: o.resolution for o in spec.outcomes}
+        tests = upgrade_tests(tests, y, names, mechanism, resolutions=resolutions)
+        intervals = [exact_interval(row, y[:, k], mechanism, resolution=resolutions[name])
+                     for k, (name, row) in enumerate(zip(names, intervals))]
     if rerandomized:  # the acceptable assignments: counted only when they were all listed
         n_text = str(source.draws) if source.method == "exact" else None
     else:

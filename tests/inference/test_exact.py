@@ -19,7 +19,7 @@ from scipy import stats
 
 from report_kit.design.mechanism import mechanism_from_arrays
 from report_kit.inference.exact import LatticeLaw, LatticeTooLarge, treated_sum_law, weighted_block_law
-from report_kit.inference.exact_tests import NoExactLaw, exact_law_test, upgrade_tests
+from report_kit.inference.exact_tests import NoExactLaw, exact_interval, exact_law_test, upgrade_tests
 from report_kit.inference.randomization import randomization_test
 
 
@@ -328,8 +328,75 @@ def test_collection_postcards_example_is_exact_without_listing(tmp_path):
     assert booked["method"] == "exact" and booked["draws"] == 0 and "hypergeometric" in booked["detail"]
     assert booked["p_value"] == pytest.approx(ref, rel=1e-9)
     assert results["design"]["assignment_check"] == "reproduced"
+    # intervals: the 0/1 outcome keeps its Monte Carlo interval and says why; the 0..8 count is inverted
+    # exactly on the grid tau = k (docs/methods/exact.md)
+    booked_ci, items_ci = results["intervals"]
+    assert booked_ci["method"] == "test_inversion" and "{-1, 0, 1}" in booked_ci["detail"]
+    assert items_ci["method"] == "exact" and "tau = k * 1" in items_ci["detail"]
+    assert float(items_ci["ci_low"]).is_integer() and float(items_ci["ci_high"]).is_integer()
     assert items["method"] == "exact" and "FFT" in items["detail"]
     mech = mechanism_from_arrays("complete", z)
     mc = randomization_test(frame["items_set_out"].to_numpy(float), mech, alternative="greater",
                             source=mech.assignments(max_exact=0, draws=20000, seed=9))[0]
     assert abs(items["p_value"] - mc.p_value) <= 4 * mc.mc_std_error
+
+
+# =========================================================================== exact test-inversion intervals
+
+
+def brute_grid_interval(y, z, block, grid, alpha):
+    """Accepted grid effects: two-sided p-value of Y - tau Z by listing every assignment (blocked_brute_p)."""
+    accepted = [tau for tau in grid
+                if blocked_brute_p([v - tau * zi for v, zi in zip(y, z)], z, block, "two-sided",
+                                   "mean_difference") > alpha]
+    return accepted
+
+
+@pytest.mark.parametrize("kind", ["complete", "blocked"])
+@pytest.mark.parametrize("shift", [-3, 0, 2])
+def test_exact_interval_equals_brute_force_inversion_on_the_grid(kind, shift):
+    # exact enumeration identity: the accepted set {tau on the grid : p(tau) > alpha}, every p(tau) found by
+    # listing all assignments (itertools, fractions); the search starts from Monte Carlo ends moved by `shift`
+    y = [3, 1, 4, 1, 5, 9, 2, 6, 5, 3, 5, 8, 9, 7]
+    z = [1, 0, 0, 1, 0, 1, 1, 0, 0, 1, 0, 1, 1, 0]
+    block = ["a"] * 14 if kind == "complete" else ["a"] * 5 + ["b"] * 4 + ["c"] * 5
+    mech = (mechanism_from_arrays("complete", np.array(z)) if kind == "complete"
+            else mechanism_from_arrays("blocked", np.array(z), block=np.array(block)))
+    level = 0.9
+    accepted = brute_grid_interval(y, z, block, range(-12, 13), 1.0 - level)
+    assert accepted and -12 < min(accepted) and max(accepted) < 12     # the grid range covers the interval
+    row = dict(outcome="y", method="test_inversion", level=level, ci_low=min(accepted) + shift + 0.3,
+               ci_high=max(accepted) - shift - 0.2, hodges_lehmann=0.5)
+    out = exact_interval(row, np.array(y, float), mech)
+    assert out["method"] == "exact" and "tau = k * 1" in out["detail"]
+    assert (out["ci_low"], out["ci_high"]) == (min(accepted), max(accepted))
+    assert out["hodges_lehmann"] == 0.5
+
+
+def test_exact_interval_on_a_declared_resolution_equals_brute_force():
+    # outcomes on a 0.5 grid: the effects tried are multiples of 0.5 (exact enumeration identity, as above)
+    y = [1.5, 0.5, 2.0, 3.5, 0.0, 1.5, 2.5, 0.5, 1.0, 2.5, 3.0, 4.0]
+    z = [1, 0, 1, 1, 0, 0, 1, 0, 0, 1, 1, 0]
+    grid = [Fraction(j, 2) for j in range(-16, 17)]
+    accepted = brute_grid_interval([Fraction(v) for v in y], z, ["a"] * 12, grid, 0.1)
+    row = dict(outcome="y", method="test_inversion", level=0.9, ci_low=float(min(accepted)) - 0.7,
+               ci_high=float(max(accepted)) + 0.1, hodges_lehmann=1.0)
+    out = exact_interval(row, np.array(y), mechanism_from_arrays("complete", np.array(z)), resolution=0.5)
+    assert out["method"] == "exact" and "tau = k * 0.5" in out["detail"]
+    assert out["ci_low"] == pytest.approx(float(min(accepted)), abs=1e-12)
+    assert out["ci_high"] == pytest.approx(float(max(accepted)), abs=1e-12)
+
+
+def test_exact_interval_keeps_monte_carlo_with_a_reason():
+    z = np.array([1, 0] * 10)
+    row = dict(outcome="y", method="test_inversion", level=0.95, ci_low=-0.2, ci_high=0.4, hodges_lehmann=0.1)
+    binary = exact_interval(row, np.array([1.0, 0.0, 1.0] * 6 + [0.0, 1.0]), mechanism_from_arrays("complete", z))
+    assert binary["method"] == "test_inversion" and "{-1, 0, 1}" in binary["detail"]
+    assert (binary["ci_low"], binary["ci_high"]) == (-0.2, 0.4)
+    continuous = exact_interval(row, np.sqrt(np.arange(1.0, 21.0)), mechanism_from_arrays("complete", z))
+    assert continuous["method"] == "test_inversion" and "lattice" in continuous["detail"]
+    counts = np.arange(20.0) % 7
+    spent = exact_interval(row, counts, mechanism_from_arrays("complete", z), max_evaluations=1)
+    assert spent["method"] == "test_inversion" and "1 exact p-values" in spent["detail"]
+    unbounded = exact_interval({**row, "ci_high": None}, counts, mechanism_from_arrays("complete", z))
+    assert unbounded == {**row, "ci_high": None, "detail": "monte carlo: the Monte Carlo interval is unbounded"}

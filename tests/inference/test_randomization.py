@@ -561,7 +561,9 @@ def test_study_randomization_sections():
     assert [t["method"] for t in res.tests] == ["monte_carlo", "monte_carlo", "exact"]
     assert [t["statistic"] for t in res.tests] == ["mean_difference", "mean_difference", "rank_sum"]
     assert [i["outcome"] for i in res.intervals] == ["y_a", "y_b", "y_c"]
-    assert all(i.keys() == INTERVAL_KEYS and i["level"] == pytest.approx(0.9) for i in res.intervals)
+    # continuous outcomes: the intervals stay Monte Carlo and say why (no grid of effects to invert on)
+    assert all(i.keys() == INTERVAL_KEYS | {"detail"} and i["level"] == pytest.approx(0.9) for i in res.intervals)
+    assert all(i["method"] == "test_inversion" and "lattice" in i["detail"] for i in res.intervals)
     json.dumps(res.to_dict(), allow_nan=False)
     # the same tests run directly give the same numbers (same seed, same draws)
     mech = mechanism_from_arrays("complete", study.z)
