@@ -77,8 +77,8 @@ if len(intervals):
         f"{level}% interval, low": intervals["ci_low"],
         f"{level}% interval, high": intervals["ci_high"],
         "Hodges–Lehmann estimate": intervals["hodges_lehmann"],
-        **({"Ends": ["exact grid values" if m == "exact" else "random assignments" for m in intervals["method"]]}
-           if grid_note else {}),
+        **({"Ends": ["exact grid values" if str(d).startswith("exact") else "random assignments"
+                     for d in intervals["detail"]]} if grid_note else {}),
     }), "intervals", caption="Constant effects not rejected by the two-sided difference-in-means test",
         csv_frame=intervals,
         note="The interval collects every constant additive effect that the two-sided difference-in-means "

@@ -313,8 +313,9 @@ def exact_interval(row: dict, y, mechanism: Mechanism, *, resolution: float | No
     otherwise the search goes on from there. At most ``max_evaluations``
     p-values are computed.
 
-    Returns the row with ``method = "exact"``, the exact ends and ``detail``
-    naming the algorithm and the grid step; the Hodges-Lehmann estimate stays
+    Returns the row (its ``method`` stays ``"test_inversion"``, the contract of
+    ``results.json``) with the exact ends and a ``detail`` that starts with
+    ``"exact"`` and names the algorithm and the grid step; the Hodges-Lehmann estimate stays
     the Monte Carlo one. When no exact law applies (0/1 outcomes, whose
     constant-effect null exists only for ``tau`` in {-1, 0, 1}; values off the
     lattice; a law too large; an unbounded Monte Carlo interval; the budget
@@ -346,7 +347,7 @@ def exact_interval(row: dict, y, mechanism: Mechanism, *, resolution: float | No
         return {**row, "detail": f"monte carlo: {err}"}
     if low is None or high is None or low > high:
         return {**row, "detail": "monte carlo: no grid effect near the Monte Carlo interval is accepted"}
-    return {**row, "method": "exact", "ci_low": low * step, "ci_high": high * step,
+    return {**row, "ci_low": low * step, "ci_high": high * step,
             "detail": f"exact test inversion on the grid tau = k * {step:g} (galloping and bisection from "
                       f"the Monte Carlo ends, {len(cache)} exact p-values); Hodges-Lehmann from Monte Carlo"}
 
