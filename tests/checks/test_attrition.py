@@ -12,29 +12,12 @@ import pandas as pd
 import pytest
 from scipy import stats
 
+from tests.checks.draws import exact_complete, mc_complete, split
 from report_kit.checks import attrition
 from report_kit.errors import DataError, ReportKitWarning
 from report_kit.inputs.model import AnalysisSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
 
 NAN = np.nan
-
-
-def exact_complete(n: int, n1: int) -> np.ndarray:
-    rows = []
-    for treated in itertools.combinations(range(n), n1):
-        z = np.zeros(n, dtype=np.uint8)
-        z[list(treated)] = 1
-        rows.append(z)
-    return np.array(rows)
-
-
-def mc_complete(z: np.ndarray, draws: int, seed: int) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    return rng.permuted(np.tile(np.asarray(z, dtype=np.uint8), (draws, 1)), axis=1)
-
-
-def split(Z: np.ndarray, size: int) -> list[np.ndarray]:
-    return [Z[i:i + size] for i in range(0, Z.shape[0], size)]
 
 
 # ---------------------------------------------------------------------------

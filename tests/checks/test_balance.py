@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import itertools
 import json
 import statistics
 from pathlib import Path
@@ -13,40 +12,12 @@ import pytest
 from matplotlib.figure import Figure
 from scipy import stats
 
+from tests.checks.draws import exact_complete, exact_bernoulli, mc_complete, split
 from report_kit.checks import balance
 from report_kit.checks import flow as flow_module
 from report_kit.errors import DataError, DesignError, ReportKitWarning
 from report_kit.report.figures_checks import plot_balance
 from report_kit.inputs.model import AnalysisSpec, ComplianceSpec, DataSpec, DesignSpec, OutcomeSpec, Spec, Study
-
-# ---------------------------------------------------------------------------
-# assignment chunks built here, independently of the randomization engine
-# ---------------------------------------------------------------------------
-
-
-def exact_complete(n: int, n1: int) -> np.ndarray:
-    """Every assignment of a complete design with n1 treated, one row each."""
-    rows = []
-    for treated in itertools.combinations(range(n), n1):
-        z = np.zeros(n, dtype=np.uint8)
-        z[list(treated)] = 1
-        rows.append(z)
-    return np.array(rows)
-
-
-def exact_bernoulli(n: int) -> np.ndarray:
-    """Every 0/1 vector of length n (Bernoulli design enumeration)."""
-    return np.array(list(itertools.product((0, 1), repeat=n)), dtype=np.uint8)
-
-
-def mc_complete(z: np.ndarray, draws: int, seed: int) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    return rng.permuted(np.tile(np.asarray(z, dtype=np.uint8), (draws, 1)), axis=1)
-
-
-def split(Z: np.ndarray, size: int) -> list[np.ndarray]:
-    return [Z[i:i + size] for i in range(0, Z.shape[0], size)]
-
 
 def make_study(frame: pd.DataFrame, *, covariates=(), outcomes=None, received=None) -> Study:
     outcomes = outcomes or (OutcomeSpec(column="y", label="Outcome"),)
