@@ -86,6 +86,15 @@ def load_study(spec: Spec) -> Study:
                  as_randomized=as_randomized if handling else None)
 
 
+def _has_draw_column(problems: _Problems, units: Table, col: str, key: str, needed_by: str) -> bool:
+    """Whether the units table has ``col``; otherwise note a problem naming the key and what needs it."""
+    if col in units.frame.columns:
+        return True
+    problems.add(f"{units.path}: column '{col}' (named by {key} in design.yaml) not found"
+                 f"{_close_hint(col, list(units.frame.columns))}; {needed_by} needs it in the units table")
+    return False
+
+
 def load_units_for_assignment(spec: Spec) -> pd.DataFrame:
     """The units table for ``assign``: id and design columns checked, treatment not needed.
 
@@ -102,23 +111,13 @@ def load_units_for_assignment(spec: Spec) -> pd.DataFrame:
     _check_id(problems, units, id_col)
     labels = []
     for col, key in ((spec.design.block, "design.block"), (spec.design.cluster, "design.cluster")):
-        if not col:
-            continue
-        if col not in units.frame.columns:
-            problems.add(f"{units.path}: column '{col}' (named by {key} in design.yaml) not found"
-                         f"{_close_hint(col, list(units.frame.columns))}; drawing the assignment needs it "
-                         "in the units table")
-            continue
-        _check_no_missing(problems, units, col, key, id_col)
-        labels.append(col)
+        if col and _has_draw_column(problems, units, col, key, "drawing the assignment"):
+            _check_no_missing(problems, units, col, key, id_col)
+            labels.append(col)
     for col, key in rerandomization_columns(spec).items():
-        if col not in units.frame.columns:
-            problems.add(f"{units.path}: column '{col}' (named by {key} in design.yaml) not found"
-                         f"{_close_hint(col, list(units.frame.columns))}; the rerandomized draw needs it "
-                         "in the units table")
-            continue
-        _check_numeric(problems, units, col, id_col, key)
-        _check_no_missing(problems, units, col, key, id_col)
+        if _has_draw_column(problems, units, col, key, "the rerandomized draw"):
+            _check_numeric(problems, units, col, id_col, key)
+            _check_no_missing(problems, units, col, key, id_col)
     problems.raise_if_any()
     frame = _normalise_labels(units.frame, labels)
     _check_drawable(problems, spec, frame, units)

@@ -52,9 +52,9 @@ def apply_handling(spec: Spec, frame: pd.DataFrame) -> tuple[pd.DataFrame, tuple
 
 def _record(key: str, value: str, ids, statement: str, **extra) -> dict:
     ids = [v.item() if isinstance(v, np.generic) else v for v in ids]
-    record = {"key": key, "value": value, "n_units": len(ids), "ids": ids[:_IDS_KEPT], **extra,
-              "changes_plan": bool(ids), "statement": statement}
-    record.update(extra)
+    record = {"key": key, "value": value, "n_units": len(ids), "ids": ids[:_IDS_KEPT], **extra}
+    record.setdefault("changes_plan", bool(ids))   # a record that left units out changes the plan
+    record["statement"] = statement
     return record
 
 
