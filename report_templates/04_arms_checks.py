@@ -40,6 +40,16 @@ say(f"Share of units missing any outcome: {rates}."
     + ("" if test is None else f" Test of equal attrition across arms: p {fmt_p(test['p_value'])}."))
 
 # %%
+table = view.adjusted_p_table(arm_label=label_of.get)
+if len(table):
+    say("### Several outcomes and contrasts\n\nThe contrasts of one outcome are tested together with the other "
+        "outcomes of its family (primary, secondary, exploratory); each column adjusts the randomization "
+        "p-values within the family. Holm and Westfall–Young control the family-wise error rate, "
+        "Benjamini–Hochberg the false discovery rate.")
+    show_table(view, table, "multiplicity", caption="Adjusted p-values within each family",
+               csv_frame=pd.DataFrame(res.get("multiplicity") or []))
+
+# %%
 power = pd.DataFrame(res["power"]["as_run"])
 if len(power):
     say(f"Minimum detectable difference of each contrast as run (at {100 * res['power']['target_power']:.0f}% "

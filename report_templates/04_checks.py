@@ -104,15 +104,8 @@ if att:
 
 # %%
 mult = pd.DataFrame(res.get("multiplicity") or [])
-wide = view.multiplicity_table()
-if len(wide):
-    names = {"holm": "Holm", "bh": "Benjamini–Hochberg", "westfall_young": "Westfall–Young"}
-    table = pd.DataFrame({"Outcome": [view.label(o) for o in wide["outcome"]], "Family": wide["family"],
-                          "p (unadjusted)": [fmt_p(p) for p in wide["p_value"]]})
-    for method, title in names.items():
-        if any(method in adjusted for adjusted in wide["adjusted"]):
-            lead = (wide["lead_method"] == method).any()
-            table[title + (" (pre-specified)" if lead else "")] = [fmt_p(a.get(method)) for a in wide["adjusted"]]
+table = view.adjusted_p_table()
+if len(table):
     show_table(view, table, "multiplicity", caption="Adjusted p-values within each family", csv_frame=mult,
                note="Adjustments are made within each family of outcomes (primary, secondary, exploratory). "
                     "Holm and Westfall–Young control the family-wise error rate; Benjamini–Hochberg the false "

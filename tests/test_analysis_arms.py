@@ -16,6 +16,7 @@ from click.testing import CliRunner
 from report_kit.audit.provenance import canonical_json_bytes
 from report_kit.cli import main
 from report_kit.pipeline import analyse_project
+from report_kit.report import fmt_p
 from report_kit.report.notebooks import REPORT_NOTEBOOK, SECTION_KEY
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -91,7 +92,13 @@ def test_full_run_shows_arm_sections_with_escaped_labels(tmp_path):
     assert "Factorial effects" in html and "Test across all arms" in html
     assert "Points to weigh" in html and "was not locked before the analysis" in html   # page-1 box, as for two arms
     assert "Text &amp; &lt;i&gt;message&lt;/i&gt;" in html and "<i>message</i>" not in html
-    for name in ("arms", "factorial", "contrast_tests", "omnibus_tests", "flow"):
+    # The adjusted p-values of every contrast, one column per adjustment, as results.json holds them.
+    assert "Several outcomes and contrasts" in html and "Westfall–Young" in html
+    results = json.loads((run_dir / "results.json").read_text(encoding="utf-8"))
+    wide = results["multiplicity_table"]
+    assert len(wide) == 6   # 2 outcomes x 3 contrasts
+    assert all(fmt_p(row["adjusted"]["bh"]) in html for row in wide)
+    for name in ("arms", "factorial", "contrast_tests", "omnibus_tests", "flow", "multiplicity"):
         assert (run_dir / "tables" / f"{name}.csv").is_file()
     assert (run_dir / "figures" / "cell_means_renewed.png").is_file()
     assert np.isfinite(pd.read_csv(run_dir / "tables" / "factorial.csv")["estimate"]).all()

@@ -150,8 +150,31 @@ class RunView:
         return est[(est["role"] == "take_up") | (est["estimand"] == "CACE")]
 
     def multiplicity_table(self) -> pd.DataFrame:
-        """``results["multiplicity_table"]`` as a frame, one row per outcome."""
+        """``results["multiplicity_table"]`` as a frame, one row per outcome (per contrast with several arms)."""
         return pd.DataFrame(self.results.get("multiplicity_table") or [])
+
+    def adjusted_p_table(self, arm_label=None) -> pd.DataFrame:
+        """The multiplicity table as the report shows it: a column per adjustment, the pre-specified one marked.
+
+        ``arm_label`` (arm -> label) adds a "Contrast" column for multi-arm runs.
+        """
+        wide = self.multiplicity_table()
+        if not len(wide):
+            return wide
+        table = pd.DataFrame({"Outcome": [self.label(o) for o in wide["outcome"]]})
+        if arm_label is not None and "arm" in wide:
+            table["Contrast"] = [f"{arm_label(a)} vs {arm_label(r)}" for a, r in zip(wide["arm"], wide["reference"])]
+        table["Family"] = wide["family"]
+        table["p (unadjusted)"] = [fmt_p(p) for p in wide["p_value"]]
+        for method, title in ADJUSTMENT_NAMES.items():
+            if any(method in adjusted for adjusted in wide["adjusted"]):
+                lead = (wide["lead_method"] == method).any()
+                table[title + (" (pre-specified)" if lead else "")] = [fmt_p(a.get(method)) for a in wide["adjusted"]]
+        return table
+
+
+#: Column titles of the adjustments in the multiplicity table.
+ADJUSTMENT_NAMES = {"holm": "Holm", "bh": "Benjamini–Hochberg", "westfall_young": "Westfall–Young"}
 
 
 #: Order of the rows of one outcome in the estimates tables.
