@@ -156,12 +156,13 @@ def check(path: Path) -> None:
 def assign(path: Path, output: Path | None, force: bool) -> None:
     """Draw the assignment from design.seed and write it beside the data."""
     from report_kit.design.assignment import write_assignment
+    from report_kit.design.mechanism import number_treated
     from report_kit.inputs.data import load_units_for_assignment
     from report_kit.pipeline import project_dir_of
     from report_kit.inputs.spec import load_spec
 
     spec = load_spec(project_dir_of(path))
-    frame = load_units_for_assignment(spec)
+    frame = load_units_for_assignment(spec, treated_count=number_treated)
     target = write_assignment(spec, frame, out=output, force=force)
     click.echo(f"wrote {target} ({len(frame)} units, drawn from design.seed {spec.design.seed})")
     if spec.design.treatment in frame.columns:

@@ -333,10 +333,12 @@ def _check_design(problems: _Problems, spec: Spec, frame: pd.DataFrame, units: T
                              f"{_label_list(sorted(members[blk].unique().tolist(), key=str))}")
 
 
-def _check_drawable(problems: _Problems, spec: Spec, frame: pd.DataFrame, units: Table) -> None:
-    """Structure the draw needs, named by label and row: pairs of two, nested clusters, both arms per block."""
-    from report_kit.design.mechanism import number_treated
+def _check_drawable(problems: _Problems, spec: Spec, frame: pd.DataFrame, units: Table, treated_count=None) -> None:
+    """Structure the draw needs, named by label and row: pairs of two, nested clusters, both arms per block.
 
+    ``treated_count`` is the design's rounding rule (see ``load_units_for_assignment``); without it the
+    both-arms-per-stratum check is skipped.
+    """
     design, id_col = spec.design, spec.data.id
     mech, block, cluster = design.mechanism, design.block, design.cluster
     locate = _Locator(units, id_col)
@@ -358,7 +360,7 @@ def _check_drawable(problems: _Problems, spec: Spec, frame: pd.DataFrame, units:
             problems.add(f"{units.path}: clusters must sit inside one block; cluster(s) spanning blocks: "
                          f"{_label_list(crossing)}; cluster {_show(crossing[0])} is in blocks "
                          f"{_label_list(sorted(members[block].unique().tolist(), key=str))}")
-    if mech == "bernoulli" or design.multi_arm or problems.items:
+    if mech == "bernoulli" or design.multi_arm or problems.items or treated_count is None:
         return
     share = 0.5 if mech == "matched_pairs" or design.probability is None else float(design.probability)
     strata = frame.groupby(block, sort=True) if block else [(None, frame)]
@@ -366,7 +368,7 @@ def _check_drawable(problems: _Problems, spec: Spec, frame: pd.DataFrame, units:
     source = " from design.probability" if design.probability is not None and mech != "matched_pairs" else ""
     for label, members in strata:
         size = members[cluster].nunique() if cluster else len(members)
-        treated = number_treated(share, size)
+        treated = treated_count(share, size)
         if treated in (0, size):
             where = "the study" if label is None else f"{'pair' if mech == 'matched_pairs' else 'block'} {_plain(label)}"
             problems.add(f"{units.path}: {where} has {size} {what}; drawing at share {share:g}{source} "

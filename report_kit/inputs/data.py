@@ -95,8 +95,13 @@ def _has_draw_column(problems: _Problems, units: Table, col: str, key: str, need
     return False
 
 
-def load_units_for_assignment(spec: Spec) -> pd.DataFrame:
+def load_units_for_assignment(spec: Spec, *, treated_count=None) -> pd.DataFrame:
     """The units table for ``assign``: id and design columns checked, treatment not needed.
+
+    ``treated_count(share, size)`` is the design's rule for the number of units
+    (clusters) a stratum treats (:func:`report_kit.design.mechanism.number_treated`,
+    passed in because ``design`` sits above ``inputs``); with it, a stratum whose
+    draw would leave an arm empty is an error naming its rows.
 
     Rows are sorted by id; ids and labels are normalised as in :func:`load_study`,
     so the assignment drawn here is the one ``check`` re-draws.
@@ -120,7 +125,7 @@ def load_units_for_assignment(spec: Spec) -> pd.DataFrame:
             _check_no_missing(problems, units, col, key, id_col)
     problems.raise_if_any()
     frame = _normalise_labels(units.frame, labels)
-    _check_drawable(problems, spec, frame, units)
+    _check_drawable(problems, spec, frame, units, treated_count)
     problems.raise_if_any()
     return frame.sort_values(id_col, kind="mergesort").reset_index(drop=True)
 

@@ -114,7 +114,7 @@ def _share_in_data(spec: Spec, frame) -> float | None:
 
 
 def _units_from_table(spec: Spec) -> _PlannedUnits:
-    frame = load_units_for_assignment(spec)
+    frame = load_units_for_assignment(spec, treated_count=number_treated)
     kind, design = spec.design.mechanism, spec.design
     ids = frame[spec.data.id].to_numpy()
     block = frame[design.block].to_numpy() if kind in _BLOCKED else None

@@ -21,6 +21,7 @@ from report_kit.design.assignment import check_assignment, write_assignment
 from report_kit.cli import main
 from report_kit.inputs.data import load_study, load_units_for_assignment
 from report_kit.design.draw import draw_assignment
+from report_kit.design.mechanism import number_treated
 from report_kit.errors import DataError, DesignError, SpecError, UsageError
 from report_kit.inputs.spec import load_spec
 
@@ -249,7 +250,7 @@ def test_undrawable_design_names_the_spec(tmp_path):
     assert not (project / "data" / "assignment.csv").exists()
     spec = load_spec(project)
     with pytest.raises(DataError, match="leaving an arm empty"):
-        load_units_for_assignment(spec)
+        load_units_for_assignment(spec, treated_count=number_treated)
     # The draw itself (reached by `check` and `run`) names design.yaml and the seed.
     units = pd.read_csv(project / "data" / "units.csv").sort_values("uid").reset_index(drop=True)
     with pytest.raises(DesignError, match=r"design.yaml: design.seed 8675309: cannot draw a complete "
