@@ -19,7 +19,7 @@ from types import MappingProxyType
 
 import numpy as np
 
-from report_kit.errors import ReportKitWarning, UsageError
+from report_kit.errors import ReportKitWarning
 
 
 def finite_number(name: str, value) -> float:
@@ -69,7 +69,7 @@ def to_json_value(obj, _where: str = "$"):
     * NaN, +inf, -inf, ``pandas.NA`` become ``null`` (undefined); ``-0.0`` becomes ``0.0``;
     * objects with a ``to_dict()`` method (every :class:`Record`) are converted through it.
 
-    Anything else (paths, dates, sets ...) raises :class:`UsageError` naming
+    Anything else (paths, dates, sets ...) raises :class:`TypeError` naming
     the location, e.g. ``$.estimates[0].when``.
     """
     if obj is None or isinstance(obj, (bool, str)):
@@ -85,7 +85,7 @@ def to_json_value(obj, _where: str = "$"):
         out = {}
         for key, value in obj.items():
             if not isinstance(key, str):
-                raise UsageError(f"JSON keys must be strings; got {key!r} at {_where}")
+                raise TypeError(f"JSON keys must be strings; got {key!r} at {_where}")
             out[key] = to_json_value(value, f"{_where}.{key}")
         return out
     if isinstance(obj, (list, tuple)):
@@ -96,7 +96,7 @@ def to_json_value(obj, _where: str = "$"):
         return None
     if callable(getattr(obj, "to_dict", None)):
         return to_json_value(obj.to_dict(), _where)
-    raise UsageError(f"cannot store a value of type {type(obj).__name__} in JSON at {_where}")
+    raise TypeError(f"cannot store a value of type {type(obj).__name__} in JSON at {_where}")
 
 
 def record(obj) -> dict:
@@ -170,7 +170,7 @@ def braces(choices) -> str:
 
 
 def check_choice(name: str, value, choices) -> str:
-    """``value`` when it is one of ``choices`` (strings); UsageError naming the allowed values otherwise."""
+    """``value`` when it is one of ``choices`` (strings); ValueError naming the allowed values otherwise."""
     if not isinstance(value, str) or value not in choices:
         raise ValueError(f"`{name}` must be one of {braces(choices)}; got {value!r}")
     return value

@@ -166,7 +166,7 @@ def archive_run(run_dir: Path | str, out: Path | str | None = None, *, with_comp
     if not out.parent.is_dir():
         raise UsageError(f"cannot write {out}: folder {out.parent} does not exist")
     if with_compared is not None and not isinstance(with_compared, bool):
-        raise UsageError(f"`with_compared` must be True, False or None; got {with_compared!r}")
+        raise TypeError(f"`with_compared` must be True, False or None; got {with_compared!r}")
     members = _members(run_dir, with_compared)
     project_dir = run_dir.parent.parent
     if any(out.resolve() == (project_dir / name).resolve() for name, _ in members):

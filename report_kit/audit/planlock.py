@@ -87,7 +87,7 @@ def lock_plan(project_dir: Path | str, *, force: bool = False) -> Path:
     """
     project = _project_dir(project_dir)
     if not isinstance(force, bool):
-        raise UsageError(f"`force` must be True or False; got {force!r}")
+        raise TypeError(f"`force` must be True or False; got {force!r}")
     lock = project / LOCK_NAME
     if lock.exists() and not force:
         raise UsageError(f"{lock} already exists; the plan is locked "
@@ -228,7 +228,7 @@ def diff_specs(old: dict, new: dict) -> list[dict]:
     changes. Each entry is ``{key, old, new, kind}``.
     """
     if not isinstance(old, dict) or not isinstance(new, dict):
-        raise UsageError("`old` and `new` must both be mappings (parsed design specs)")
+        raise TypeError("`old` and `new` must both be mappings (parsed design specs)")
     out: list[dict] = []
     _diff(old, new, "", out)
     return out

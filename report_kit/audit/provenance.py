@@ -208,7 +208,7 @@ def write_results_json(path: Path | str, results: dict) -> str:
     documentation, "Floating Point Arithmetic: Issues and Limitations").
     """
     if not isinstance(results, dict):
-        raise UsageError(f"`results` must be a dict; got {type(results).__name__}")
+        raise TypeError(f"`results` must be a dict; got {type(results).__name__}")
     return write_json(path, results)
 
 
@@ -314,17 +314,17 @@ def _validate_record(run_dir: Path | str, record: RunRecord) -> Path:
     if not run_dir.is_dir():
         raise UsageError(f"{run_dir}: not a folder")
     if not isinstance(record, RunRecord):
-        raise UsageError(f"`record` must be a RunRecord; got {type(record).__name__}")
+        raise TypeError(f"`record` must be a RunRecord; got {type(record).__name__}")
     if not _SHA256.fullmatch(str(record.spec_sha256)):
-        raise UsageError(f"`spec_sha256` must be 64 lower-case hex digits; got {record.spec_sha256!r}")
+        raise ValueError(f"`spec_sha256` must be 64 lower-case hex digits; got {record.spec_sha256!r}")
     for f in record.inputs:
         if not isinstance(f, InputFile):
-            raise UsageError(f"`inputs` must hold InputFile objects; got {type(f).__name__}")
+            raise TypeError(f"`inputs` must hold InputFile objects; got {type(f).__name__}")
         check_relative_path(f.path, what="input path")
         if not _SHA256.fullmatch(f.sha256):
-            raise UsageError(f"input {f.path}: `sha256` must be 64 lower-case hex digits; got {f.sha256!r}")
+            raise ValueError(f"input {f.path}: `sha256` must be 64 lower-case hex digits; got {f.sha256!r}")
     if not isinstance(record.seeds, dict):
-        raise UsageError(f"`seeds` must be a dict; got {type(record.seeds).__name__}")
+        raise TypeError(f"`seeds` must be a dict; got {type(record.seeds).__name__}")
     return run_dir
 
 

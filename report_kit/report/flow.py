@@ -13,7 +13,6 @@ from collections.abc import Mapping, Sequence
 from matplotlib.figure import Figure
 from matplotlib.patches import FancyBboxPatch
 
-from report_kit.errors import UsageError
 from report_kit.report.figures import INK
 
 __all__ = ["flow_diagram"]
@@ -43,7 +42,7 @@ def _arrow(ax, x0: float, y0: float, x1: float, y1: float) -> None:
 def _arm_rows(flow: Sequence[Mapping], outcome: str) -> dict[str, Mapping]:
     rows = {r["arm"]: r for r in flow if r.get("outcome") == outcome}
     if set(rows) != {"treated", "control"}:
-        raise UsageError(f"`flow` must hold a 'treated' and a 'control' row for outcome {outcome!r}")
+        raise ValueError(f"`flow` must hold a 'treated' and a 'control' row for outcome {outcome!r}")
     return rows
 
 

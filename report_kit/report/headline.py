@@ -10,7 +10,6 @@ from __future__ import annotations
 import html
 import math
 
-from report_kit.errors import UsageError
 
 __all__ = ["STD_EFFECT_WORDS", "decimals_for", "fmt_at", "headline_cards", "points_box", "registration_line"]
 
@@ -37,7 +36,7 @@ def decimals_for(std_error) -> int:
     try:
         se = float(std_error)
     except (TypeError, ValueError) as err:
-        raise UsageError(f"`std_error` must be a number or None; got {std_error!r}") from err
+        raise TypeError(f"`std_error` must be a number or None; got {std_error!r}") from err
     if not math.isfinite(se) or se <= 0:
         return 3
     return min(6, 1 - math.floor(math.log10(se)))

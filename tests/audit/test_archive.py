@@ -265,5 +265,5 @@ def test_with_compared_needs_a_compared_run_that_is_unchanged(tmp_path):
     write_results_json(first / "results.json", {"schema": "report-kit/results/1", "estimates": [2]})
     with pytest.raises(VerificationError, match="has changed since it was compared"):
         archive_run(second, tmp_path / "b.zip")
-    with pytest.raises(UsageError, match="with_compared"):
+    with pytest.raises(TypeError, match="with_compared"):
         archive_run(second, tmp_path / "b.zip", with_compared="yes")

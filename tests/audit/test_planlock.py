@@ -148,7 +148,7 @@ def test_type_changes_count_even_when_values_compare_equal():
     # In Python 1 == 1.0 == True; in a pre-analysis plan they are different entries.
     assert diff_specs({"a": 1}, {"a": 1.0}) == [{"key": "a", "old": 1, "new": 1.0, "kind": "changed"}]
     assert diff_specs({"a": True}, {"a": 1}) == [{"key": "a", "old": True, "new": 1, "kind": "changed"}]
-    with pytest.raises(UsageError, match="`old` and `new` must both be mappings"):
+    with pytest.raises(TypeError, match="`old` and `new` must both be mappings"):
         diff_specs([], {})
 
 
@@ -176,7 +176,7 @@ def test_errors_name_the_file(project, tmp_path):
     (project / "design.yaml").write_text("- just\n- a list\n")
     with pytest.raises(SpecError, match="the design spec must be a mapping of keys; got list"):
         lock_plan(project)
-    with pytest.raises(UsageError, match="`force` must be True or False; got 'yes'"):
+    with pytest.raises(TypeError, match="`force` must be True or False; got 'yes'"):
         lock_plan(project, force="yes")
 
 

@@ -127,11 +127,11 @@ def test_write_results_json_uses_to_dict_of_result_objects(tmp_path):
 
 
 def test_write_results_json_rejects_what_json_cannot_hold(tmp_path):
-    with pytest.raises(UsageError, match=r"cannot store a value of type PosixPath in JSON at \$\.design\.where"):
+    with pytest.raises(TypeError, match=r"cannot store a value of type PosixPath in JSON at \$\.design\.where"):
         write_results_json(tmp_path / "r.json", {"design": {"where": Path("/x")}})
-    with pytest.raises(UsageError, match=r"JSON keys must be strings; got 1 at \$\.tests"):
+    with pytest.raises(TypeError, match=r"JSON keys must be strings; got 1 at \$\.tests"):
         write_results_json(tmp_path / "r.json", {"tests": {1: 2}})
-    with pytest.raises(UsageError, match="`results` must be a dict; got list"):
+    with pytest.raises(TypeError, match="`results` must be a dict; got list"):
         write_results_json(tmp_path / "r.json", [1])
     assert not (tmp_path / "r.json").exists()
 
@@ -206,7 +206,7 @@ def test_manifest_skips_itself_and_the_crate(tmp_path):
 def test_manifest_validates_the_record(tmp_path):
     run, record = _run_folder(tmp_path)
     bad = RunRecord(**{**record.__dict__, "spec_sha256": "abc"})
-    with pytest.raises(UsageError, match="`spec_sha256` must be 64 lower-case hex digits; got 'abc'"):
+    with pytest.raises(ValueError, match="`spec_sha256` must be 64 lower-case hex digits; got 'abc'"):
         write_manifest(run, bad)
     escaping = RunRecord(**{**record.__dict__, "inputs": (InputFile(path="../x.csv", sha256=EMPTY, rows=0),)})
     with pytest.raises(UsageError, match="input path must stay inside its folder; got '../x.csv'"):

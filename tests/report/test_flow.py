@@ -6,7 +6,6 @@ import io
 
 import pytest
 
-from report_kit.errors import UsageError
 from report_kit.report.flow import flow_diagram
 
 FLOW = [
@@ -38,5 +37,5 @@ def test_without_enrolment_the_diagram_starts_at_randomization():
 
 
 def test_an_outcome_without_both_arms_is_misuse():
-    with pytest.raises(UsageError, match="'treated' and a 'control' row for outcome 'z'"):
+    with pytest.raises(ValueError, match="'treated' and a 'control' row for outcome 'z'"):
         flow_diagram(FLOW, "z")
