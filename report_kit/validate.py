@@ -33,6 +33,18 @@ def finite_number(name: str, value) -> float:
     return number
 
 
+def open_unit_interval(name: str, value) -> float:
+    """``value`` as a float strictly between 0 and 1 (a probability, alpha, power, a confidence level).
+
+    TypeError unless it is a number (``True`` is not), ValueError when outside (0, 1) or NaN.
+    """
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
+        raise TypeError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}")
+    if not 0.0 < float(value) < 1.0:
+        raise ValueError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}")
+    return float(value)
+
+
 def closed_unit_interval(name: str, value) -> float:
     """``value`` as a float in [0, 1] (e.g. an intraclass correlation)."""
     try:

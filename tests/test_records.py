@@ -128,3 +128,22 @@ def test_a_value_json_cannot_hold_names_its_place():
     with pytest.raises(TypeError, match=r"JSON keys must be strings; got 1 at Plain.extra"):
         dataclasses.replace(_plain(), extra={1: 2}).to_dict()
     assert to_json_value((1, np.int8(2))) == [1, 2]
+
+
+def test_one_rule_for_numbers_strictly_between_0_and_1():
+    """One check serves probabilities, alpha, power and confidence levels everywhere in the library."""
+    from report_kit.validate import open_unit_interval
+
+    assert open_unit_interval("alpha", np.float32(0.25)) == 0.25
+    for bad in (0, 1, 1.5, -0.1, float("nan")):
+        with pytest.raises(ValueError, match=r"`alpha` must be a number strictly between 0 and 1"):
+            open_unit_interval("alpha", bad)
+    for wrong in (True, "0.05", None):
+        with pytest.raises(TypeError, match=r"`alpha` must be a number strictly between 0 and 1"):
+            open_unit_interval("alpha", wrong)
+    # The same words from the design, the planning and the comparison parts.
+    from report_kit.design.arguments import _check_probability
+    from report_kit.planning.power import mde
+    for call in (lambda: _check_probability(1.5), lambda: mde(1.0, alpha=1.5)):
+        with pytest.raises(ValueError, match=r"must be a number strictly between 0 and 1; got 1.5"):
+            call()

@@ -26,7 +26,7 @@ from report_kit.audit.table_diff import TableDiff, diff_tables
 from report_kit.audit.provenance import (
     INPUTS_DIR, MANIFEST_NAME, RESULTS_NAME, SPEC_NAME, check_relative_path, load_json_file, sha256_file,
 )
-from report_kit.validate import Record
+from report_kit.validate import Record, open_unit_interval
 
 __all__ = [
     "RECORD_KEYS", "ResultChange", "ResultRecord", "ResultsDiff", "TableDiff", "InputChange",
@@ -216,8 +216,8 @@ def compare_runs(run_a: Path | str, run_b: Path | str, *, alpha: float | None = 
     The ``inputs`` list of results.json is left out of the result diff (the
     input diff reports those files in detail).
     """
-    if alpha is not None and (not _is_number(alpha) or not 0 < alpha < 1):
-        raise ValueError(f"`alpha` must be a number in (0, 1); got {alpha!r}")
+    if alpha is not None:
+        open_unit_interval("alpha", alpha)
     a, b = _load_run(run_a, "RUN_A"), _load_run(run_b, "RUN_B")
     if alpha is None:
         alpha = _alpha_of(b) or _alpha_of(a) or DEFAULT_ALPHA

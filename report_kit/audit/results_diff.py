@@ -11,7 +11,7 @@ import math
 from collections import Counter
 from dataclasses import dataclass, field
 
-from report_kit.validate import Record, tolerance
+from report_kit.validate import Record, open_unit_interval, tolerance
 from report_kit.audit.provenance import to_json_value
 
 __all__ = ["RECORD_KEYS", "ResultChange", "ResultRecord", "ResultsDiff", "conclusion_changes", "diff_results"]
@@ -344,8 +344,7 @@ def conclusion_changes(results_a: dict, results_b: dict, alpha: float) -> list[d
     corresponding test rejects a zero effect (the duality of tests and
     intervals, ibid., section 3.5).
     """
-    if not _is_number(alpha) or not 0 < alpha < 1:
-        raise ValueError(f"`alpha` must be a number in (0, 1); got {alpha!r}")
+    open_unit_interval("alpha", alpha)
     diff_inputs = [to_json_value(results_a), to_json_value(results_b)]
     for name, value in zip(("results_a", "results_b"), diff_inputs):
         if not isinstance(value, dict):

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from report_kit.errors import DataError, DesignError
-from report_kit.validate import MECHANISMS, check_choice
+from report_kit.validate import MECHANISMS, check_choice, open_unit_interval
 
 _NEEDS_BLOCK = frozenset({"blocked", "blocked_cluster", "matched_pairs"})
 _NEEDS_CLUSTER = frozenset({"cluster", "blocked_cluster"})
@@ -39,15 +39,7 @@ def _check_seed(value) -> int:
 
 
 def _check_probability(value, *, name: str = "probability") -> float | None:
-    if value is None:
-        return None
-    try:
-        p = float(value)
-    except (TypeError, ValueError) as err:
-        raise ValueError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}") from err
-    if not 0.0 < p < 1.0:
-        raise ValueError(f"`{name}` must be a number strictly between 0 and 1; got {value!r}")
-    return p
+    return None if value is None else open_unit_interval(name, value)
 
 
 def _check_assignment(z, n: int | None = None) -> np.ndarray:

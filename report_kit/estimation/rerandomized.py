@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special, stats
 
-from report_kit.validate import Record
+from report_kit.validate import Record, open_unit_interval
 
 __all__ = ["RerandomizedInterval", "truncated_normal_component", "rerandomized_interval",
            "study_rerandomized_intervals"]
@@ -111,8 +111,7 @@ def rerandomized_interval(y, z, x, max_distance: float, *, level: float = 0.95, 
     x = x[:, None] if x.ndim == 1 else x
     if y.ndim != 1 or z.shape != y.shape or x.shape[0] != y.size or not np.all(np.isfinite(y)):
         raise ValueError("`y`, `z` and `x` must describe the same units, with finite outcomes")
-    if not 0 < level < 1:
-        raise ValueError(f"`level` must be strictly between 0 and 1; got {level!r}")
+    level = open_unit_interval("level", level)
     n1, n0 = int(z.sum()), int((~z).sum())
     if min(n1, n0) < 2:
         raise ValueError("each arm needs at least two units")

@@ -34,7 +34,7 @@ from report_kit.inference.engine import (
 from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError, ReportKitWarning
 from report_kit.inference.pvalues import DEFAULT_RTOL, null_centre, tail_p_values
-from report_kit.validate import Record
+from report_kit.validate import Record, open_unit_interval
 
 __all__ = ["Interval", "invert_test"]
 
@@ -244,8 +244,7 @@ def invert_test(y, mechanism: Mechanism, *, source: AssignmentSource, level: flo
 
 
 def _check_level(level) -> float:
-    if not isinstance(level, (int, float)) or not 0.0 < float(level) < 1.0:
-        raise ValueError(f"`level` must be a number strictly between 0 and 1; got {level!r}")
+    open_unit_interval("level", level)
     return float(level)
 
 

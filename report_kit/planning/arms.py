@@ -9,6 +9,7 @@ Holm's first step uses for all the contrasts of an outcome. Formulas in
 from __future__ import annotations
 
 from report_kit.planning.core import planned_power
+from report_kit.validate import open_unit_interval
 
 __all__ = ["planned_arm_power"]
 
@@ -42,8 +43,7 @@ def planned_arm_power(*, n_units: float, n_arms: int, contrasts: str = "referenc
         raise ValueError(f"`adjust` must be one of {{'none', 'bonferroni'}}; got {adjust!r}")
     if isinstance(n_units, bool) or not isinstance(n_units, (int, float)) or not n_units > 0:
         raise ValueError(f"`n_units` must be a positive number; got {n_units!r}")
-    if not 0 < alpha < 1:
-        raise ValueError(f"`alpha` must be strictly between 0 and 1; got {alpha!r}")
+    alpha = open_unit_interval("alpha", alpha)
     m = n_arms - 1 if contrasts == "reference" else n_arms * (n_arms - 1) // 2
     level = alpha / m if adjust == "bonferroni" else alpha
     n = n_units / n_arms

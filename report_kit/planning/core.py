@@ -15,7 +15,7 @@ from collections.abc import Callable
 import numpy as np
 from scipy import optimize, stats
 
-from report_kit.validate import closed_unit_interval
+from report_kit.validate import closed_unit_interval, open_unit_interval
 from report_kit.inputs.model import ALTERNATIVES
 
 
@@ -24,14 +24,6 @@ from report_kit.inputs.model import ALTERNATIVES
 # ---------------------------------------------------------------------------
 
 
-def _check_unit_interval(name: str, value) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError) as err:
-        raise TypeError(f"`{name}` must be a number in (0, 1); got {value!r}") from err
-    if not 0 < v < 1:
-        raise ValueError(f"`{name}` must be in (0, 1); got {value!r}")
-    return v
 
 
 def _check_positive(name: str, value, *, allow_none: bool = False) -> float | None:
@@ -164,8 +156,8 @@ def planned_power(*, n_treated: float, n_control: float, sd: float = 1.0,
     n1 = _check_positive("n_treated", n_treated)
     n0 = _check_positive("n_control", n_control)
     sd = _check_positive("sd", sd)
-    power = _check_unit_interval("power", power)
-    alpha = _check_unit_interval("alpha", alpha)
+    power = open_unit_interval("power", power)
+    alpha = open_unit_interval("alpha", alpha)
     _check_alternative(alternative)
     m = _check_positive("cluster_size", cluster_size)
     if m < 1:

@@ -18,11 +18,10 @@ from pathlib import Path
 
 import numpy as np
 
-from report_kit.validate import Record, closed_unit_interval, finite_number
+from report_kit.validate import Record, closed_unit_interval, finite_number, open_unit_interval
 from report_kit.planning.core import (
     _check_positive,
     _check_progress,
-    _check_unit_interval,
     _count_rejections,
     _simulation_summary,
     planned_power,
@@ -244,7 +243,7 @@ def _check_plan(spec: Spec, *, sd, effect, power, icc, cluster_size, n_treated, 
     sd = _check_positive("sd", sd)
     if effect is not None:
         effect = finite_number("effect", effect)
-    power = _check_unit_interval("power", power)
+    power = open_unit_interval("power", power)
     if clustered and icc is None:
         raise ValueError(f"`icc` is required for a {kind} design: the intraclass correlation of the outcome "
                          "within clusters, a number in [0, 1]")

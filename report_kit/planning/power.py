@@ -20,7 +20,6 @@ from report_kit.planning.core import (
     _check_alternative,
     _check_positive,
     _check_progress,
-    _check_unit_interval,
     _count_rejections,
     _simulation_summary,
     design_effect,
@@ -28,6 +27,7 @@ from report_kit.planning.core import (
 )
 from report_kit.errors import DataError
 from report_kit.validate import finite_or_none as _num
+from report_kit.validate import open_unit_interval
 from report_kit.planning.plan import DEFAULT_TEST_DRAWS, SIM_EXACT_LIMIT, PowerPlan, format_plan_text, plan_power
 
 __all__ = [
@@ -66,8 +66,8 @@ def mde(se: float, alpha: float = 0.05, power: float = 0.8, df: float | None = N
     magnitude (for ``"less"``, the size of the smallest detectable decrease).
     """
     se = _check_positive("se", se)
-    alpha = _check_unit_interval("alpha", alpha)
-    power = _check_unit_interval("power", power)
+    alpha = open_unit_interval("alpha", alpha)
+    power = open_unit_interval("power", power)
     df = _check_positive("df", df, allow_none=True)
     _check_alternative(alternative)
     level = 1 - alpha / 2 if alternative == "two-sided" else 1 - alpha
@@ -89,7 +89,7 @@ def _check_simulation(y0, effect, n_sims, alpha, seed):
         raise ValueError("`effect` must be a finite number or a one-dimensional array of unit effects")
     if isinstance(n_sims, bool) or not isinstance(n_sims, (int, np.integer)) or n_sims < 1:
         raise ValueError(f"`n_sims` must be a positive integer; got {n_sims!r}")
-    alpha = _check_unit_interval("alpha", alpha)
+    alpha = open_unit_interval("alpha", alpha)
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
         raise TypeError(f"`seed` must be an integer; got {seed!r}")
     return y0, eff, int(n_sims), alpha, int(seed)
@@ -204,7 +204,7 @@ def study_power(study, estimates: Sequence[Mapping], *, power: float = 0.8,
         detect the *observed* effect is deliberately not reported: it is a
         function of the p-value and adds nothing (Hoenig & Heisey 2001).
     """
-    power = _check_unit_interval("power", power)
+    power = open_unit_interval("power", power)
     alpha = float(study.spec.analysis.alpha)
     rows = [
         _as_run_entry(study, spec, _main_estimate(estimates, spec.column), alpha, power)

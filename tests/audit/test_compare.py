@@ -166,7 +166,7 @@ def test_conclusion_rules_on_their_own():
     kinds = [c["kind"] for c in conclusion_changes(a, b, 0.05)]
     assert kinds == ["significance", "sign"]           # document order; 0 -> +0.1 is a sign change
     assert [c["kind"] for c in conclusion_changes(a, b, 0.06)] == ["sign"]   # both p <= 0.06
-    with pytest.raises(ValueError, match=r"`alpha` must be a number in \(0, 1\); got 1.5"):
+    with pytest.raises(ValueError, match=r"`alpha` must be a number strictly between 0 and 1; got 1.5"):
         conclusion_changes(a, b, 1.5)
     none_p = {"tests": [_test("y", "mean_difference", None)]}
     assert conclusion_changes(a, none_p, 0.05) == []
@@ -262,7 +262,7 @@ def test_table_errors(tmp_path):
 def test_not_a_run_folder(tmp_path, runs):
     with pytest.raises(UsageError, match="RUN_A is not a run folder \\(no results.json inside\\)"):
         compare_runs(tmp_path, runs[1])
-    with pytest.raises(ValueError, match=r"`alpha` must be a number in \(0, 1\); got 0"):
+    with pytest.raises(ValueError, match=r"`alpha` must be a number strictly between 0 and 1; got 0"):
         compare_runs(*runs, alpha=0)
     with pytest.raises(TypeError, match="`diff` must be a RunDiff; got dict"):
         format_diff_text({})

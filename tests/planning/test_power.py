@@ -48,7 +48,7 @@ def test_mde_multiplier_is_about_2_8():
 def test_mde_validation_messages():
     with pytest.raises(ValueError, match=r"`se` must be a positive number; got -1"):
         pw.mde(-1)
-    with pytest.raises(ValueError, match=r"`alpha` must be in \(0, 1\); got 1.5"):
+    with pytest.raises(ValueError, match=r"`alpha` must be a number strictly between 0 and 1; got 1.5"):
         pw.mde(1, alpha=1.5)
     with pytest.raises(ValueError, match=r"`alternative` must be one of \{'two-sided', 'greater', 'less'\}; got 'both'"):
         pw.mde(1, alternative="both")
