@@ -66,17 +66,17 @@ def family_table(rows: pd.DataFrame) -> pd.DataFrame:
     })
 
 
+# Each family's table is followed by its figure, so a figure (which cannot break across pages) is never
+# larger than one family's outcomes and a page does not end half empty before it.
 main = view.main_estimates()
 for family in ("primary", "secondary", "exploratory"):
     rows = main[[view.family(o) == family for o in main["outcome"]]]
     if len(rows):
         show_table(view, family_table(rows), f"estimates_{family}",
                    caption=f"{family.capitalize()} outcomes", csv_frame=rows)
-
-# %%
-if len(main):
-    show_figure(view, effect_plot(main, labeler=view.label, level=level), "effects",
-                caption=f"Estimates with {level}% confidence intervals; the dashed line marks no effect.")
+        show_figure(view, effect_plot(rows, labeler=view.label, level=level), f"effects_{family}",
+                    caption=f"{family.capitalize()} outcomes: estimates with {level}% confidence intervals; "
+                            "the dashed line marks no effect.")
 
 # %%
 comp = res.get("compliance")
