@@ -32,7 +32,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError
@@ -274,6 +274,17 @@ def _given_weights(weights, chunk: np.ndarray, method: str, i: int) -> np.ndarra
 # =========================================================================== the pass
 
 
+
+_CONTROLLER: list[ThreadpoolController] = []
+
+
+def _blas_controller() -> ThreadpoolController:
+    """One controller per process: finding the loaded BLAS libraries reads /proc, so it is done once, not per chunk."""
+    if not _CONTROLLER:
+        _CONTROLLER.append(ThreadpoolController())
+    return _CONTROLLER[0]
+
+
 class _PassWork:
     """``work(task)``: build the task's chunks and evaluate every statistic on them.
 
@@ -290,7 +301,7 @@ class _PassWork:
         self.draws, self.statistics = draws, tuple(statistics)
 
     def __call__(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
-        with threadpool_limits(limits=1, user_api="blas"):
+        with _blas_controller().limit(limits=1, user_api="blas"):
             return self._compute(task)
 
     def _compute(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
