@@ -2,7 +2,7 @@
 
 Owns the order of the multi-arm steps (``analysis.py`` calls :func:`arm_sections`
 when ``design.multi_arm``): the arm table, the contrasts (unadjusted, Lin,
-CACE), factorial effects, contrast tests and intervals, the omnibus tests, per-arm
+CACE, within subgroups), factorial effects, contrast tests and intervals, the omnibus tests, per-arm
 balance, flow and attrition (each with the omnibus randomization test over the
 full multi-arm mechanism), multiplicity and the MDE of each contrast as run.
 Field names: ``docs/results.md`` ("Multi-arm and factorial runs").
@@ -21,6 +21,7 @@ from report_kit.errors import DesignError, ReportKitWarning
 from report_kit.estimation.arms import (
     contrast_pairs,
     estimate_arm_cace,
+    estimate_contrast_subgroups,
     estimate_contrasts,
     estimate_contrasts_adjusted,
 )
@@ -105,8 +106,8 @@ def arm_estimates(study: Study) -> list[dict]:
         y = study.outcome(outcome.column)
         rows += [_estimate_row(outcome.column, effect, c.to_dict()) for c in estimate_contrasts(y, labels, **kw)]
         if X is not None:
-            rows += [_estimate_row(outcome.column, effect, c.to_dict()) for c in _adjusted(outcome.column, y,
-                                                                                           labels, X, kw)]
+            rows += [_estimate_row(outcome.column, effect, c.to_dict())
+                     for c in _adjusted(outcome.column, y, labels, X, kw, covariates)]
         if spec.compliance is not None:
             d = study.frame[spec.compliance.received].to_numpy(dtype=float)
             rows += [_estimate_row(outcome.column, "CACE", c.to_dict())
@@ -123,9 +124,46 @@ def arm_estimates(study: Study) -> list[dict]:
     return rows
 
 
-def _adjusted(column: str, y, labels, X, kw: dict):
+def arm_subgroups(study: Study) -> tuple[list[dict], list[dict]]:
+    """The subgroup rows of ``estimates`` and the ``subgroup_differences`` rows.
+
+    Per subgroup variable, outcome, contrast and level: the contrast within the
+    level (estimand ``subgroup ATE``, ``subgroup`` = ``"col=level"``), and per
+    contrast each level's effect minus the first level's (``subgroup`` and
+    ``subgroup_reference`` name the levels; ``arm``/``reference`` the arms).
+    """
+    rows, differences = [], []
+    spec = study.spec
+    design = spec.design
+    labels = arm_labels(study)
+    kw = dict(arms=design.arms, contrasts=design.contrasts, alpha=spec.analysis.alpha, **_design_kw(study))
+    for column in spec.subgroups:
+        g = study.frame[column].to_numpy(dtype=object)
+        for outcome in spec.outcomes:
+            for item in estimate_contrast_subgroups(study.outcome(outcome.column), labels, g, **kw):
+                result = item.subgroups
+                diffs = {d.level: d for d in result.differences}
+                for level, est, (mean_arm, mean_ref) in zip(result.levels, result.estimates, item.means):
+                    values = {**est.to_dict(), "arm": item.arm, "reference": item.reference, "mean_arm": mean_arm,
+                              "mean_reference": mean_ref}
+                    row = _estimate_row(outcome.column, "subgroup ATE", values)
+                    row["subgroup"] = f"{column}={level}"
+                    rows.append(row)
+                    if level in diffs:
+                        differences.append(_difference_row(outcome.column, column, item, diffs[level]))
+    return rows, differences
+
+
+def _difference_row(outcome: str, column: str, item, diff) -> dict:
+    values = diff.to_dict()
+    return {"outcome": outcome, "arm": item.arm, "reference": item.reference,
+            "subgroup": f"{column}={values.pop('level')}",
+            "subgroup_reference": f"{column}={values.pop('reference')}", **values, "label": "exploratory"}
+
+
+def _adjusted(column: str, y, labels, X, kw: dict, names):
     try:
-        return estimate_contrasts_adjusted(y, labels, X, **kw)
+        return estimate_contrasts_adjusted(y, labels, X, names=names, **kw)
     except DesignError as err:
         warnings.warn(f"outcome '{column}': no covariate-adjusted contrasts ({err})", ReportKitWarning, stacklevel=3)
         return []
@@ -277,12 +315,11 @@ def arm_inference_scope(study: Study) -> dict:
     """The ``inference_scope`` section of a multi-arm run.
 
     As for two arms (:func:`report_kit.inference.scope.inference_scope`), for the
-    contrast tests; ``subgroups`` is None because subgroup analyses are not
-    computed for multi-arm designs, and ``omnibus`` states the null of the
-    ``between_arms`` tests (no arm changes any unit's outcome).
+    contrast tests and the subgroup contrasts (exploratory, when the spec lists
+    subgroups); ``omnibus`` states the null of the ``between_arms`` tests (no
+    arm changes any unit's outcome).
     """
     scope = inference_scope(study)
-    scope["subgroups"] = None
     scope["omnibus"] = {"statistic": "between_arms", "null": "sharp", "valid_for_average_effect": False,
                         "note": ("The omnibus between-arms test concerns the sharp null that no arm changes "
                                  "any unit's outcome; it is not a test of equal average outcomes.")}
@@ -296,11 +333,9 @@ def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | N
     (see :func:`report_kit.inference.engine.run_pass`); results do not depend on it.
     """
     spec = study.spec
-    if spec.subgroups:
-        warnings.warn("subgroup analyses are not computed for multi-arm designs yet; the subgroups listed in "
-                      "design.yaml are left out", ReportKitWarning, stacklevel=2)
     log.info("arm contrasts")
-    estimates = arm_estimates(study)
+    subgroup_rows, subgroup_differences = arm_subgroups(study)
+    estimates = arm_estimates(study) + subgroup_rows
     received = None if spec.compliance is None else spec.compliance.received
     for row, role in zip(estimates, estimate_roles(estimates, take_up_column=received)):
         row["role"] = role
@@ -315,7 +350,7 @@ def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | N
         "design": arm_design(study, source, assignment_check),
         "arms": arm_table(study),
         "estimates": estimates,
-        "subgroup_differences": [],
+        "subgroup_differences": subgroup_differences,
         "compliance": arm_compliance(study),
         "tests": tests,
         "intervals": intervals,

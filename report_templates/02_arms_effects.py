@@ -31,10 +31,11 @@ say("Each contrast compares two arms: the estimated average difference in the ou
 # %%
 METHOD_WORDS = {"neyman": "Difference in means", "blocked_neyman": "Block-weighted", "cr2": "Difference in means, CR2",
                 "horvitz_thompson": "Horvitz–Thompson", "lin_hc2": "Lin adjusted, HC2", "lin_cr2": "Lin adjusted, CR2",
-                "lin_arms": "Lin adjusted (all arms), HC2", "wald_delta": "Wald ratio",
+                "lin_arms": "Lin adjusted (all arms), HC2", "lin_arms_cr2": "Lin adjusted (all arms), CR2",
+                "wald_delta": "Wald ratio",
                 "factorial_neyman": "Factorial contrast of cell means",
                 "blocked_factorial_neyman": "Factorial contrast of cell means within blocks"}
-contrasts = est[est["arm"].notna()]
+contrasts = est[est["arm"].notna() & est["subgroup"].isna()]
 for outcome in view.spec.outcomes:
     rows = contrasts[contrasts["outcome"] == outcome.column]
     if not len(rows):
@@ -80,6 +81,33 @@ if len(factorial):
                                               second_on=tuple(second_on), label=view.label(outcome.column)),
                         f"cell_means_{outcome.column}",
                         caption="Mean outcome in each cell; parallel lines mean the two factors add up.")
+
+# %%
+def contrast_names(frame):
+    return [f"{label_of[a]} vs {label_of[b]}" for a, b in zip(frame["arm"], frame["reference"])]
+
+
+sub = est[est["arm"].notna() & est["subgroup"].notna()]
+diffs = pd.DataFrame(res.get("subgroup_differences") or [])
+if len(sub):
+    say("### Pre-specified subgroups\n\nEach contrast within each level of the pre-specified subgroup "
+        "variables (the unadjusted design-based estimate on the level's units), then the difference between a "
+        "level's contrast and the first level's. These are exploratory: not adjusted for the number of "
+        "subgroups, contrasts and outcomes examined, and less precise than the overall contrasts; a difference "
+        "between subgroups is evidence only when its own interval excludes zero.")
+    show_table(view, pd.DataFrame({
+        "Outcome": [view.label(o) for o in sub["outcome"]], "Contrast": contrast_names(sub),
+        "Subgroup": sub["subgroup"].to_numpy(), "Estimate": sub["estimate"], "Std. error": sub["std_error"],
+        f"{level}% CI low": sub["ci_low"], f"{level}% CI high": sub["ci_high"],
+        "n arm": sub["n_treated"], "n reference": sub["n_control"],
+    }), "subgroups", caption="Contrasts within subgroups", csv_frame=sub)
+if len(diffs):
+    show_table(view, pd.DataFrame({
+        "Outcome": [view.label(o) for o in diffs["outcome"]], "Contrast": contrast_names(diffs),
+        "Subgroups": [f"{a} minus {b}" for a, b in zip(diffs["subgroup"], diffs["subgroup_reference"])],
+        "Difference": diffs["estimate"], "Std. error": diffs["std_error"],
+        f"{level}% CI low": diffs["ci_low"], f"{level}% CI high": diffs["ci_high"],
+    }), "subgroup_differences", caption="Differences between subgroups, per contrast", csv_frame=diffs)
 
 # %% [markdown]
 # ## Randomization tests

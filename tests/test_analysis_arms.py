@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import shutil
 from pathlib import Path
 
@@ -153,16 +154,69 @@ def test_every_multi_arm_mechanism_runs(tmp_path, mechanism):
     assert all(e["std_error"] is not None and e["std_error"] > 0 for e in unadjusted)
 
 
-def test_take_up_per_arm_and_subgroup_note(tmp_path):
+def test_take_up_per_arm(tmp_path):
     project = small_project(tmp_path, "complete", compliance=True)
-    doc = yaml.safe_load((project / "design.yaml").read_text())
-    doc["subgroups"] = ["blk"]
-    (project / "design.yaml").write_text(yaml.safe_dump(doc), encoding="utf-8")
     results = analyse_project(project)
     data = pd.read_csv(project / "data" / "units.csv")
     rates = {r["arm"]: r["rate"] for r in results["compliance"]["rates"]}
     assert rates == pytest.approx(data.groupby("arm")["took"].mean().to_dict())
-    assert any("subgroup analyses are not computed" in n for n in results["notes"])
+
+
+def add_subgroup(project: Path, levels=("own", "rent")) -> Path:
+    """Add an invented 'tenure' column and declare it as the pre-specified subgroup."""
+    data = pd.read_csv(project / "data" / "units.csv")
+    data["tenure"] = np.resize(np.array(levels, dtype=object), len(data))
+    data.to_csv(project / "data" / "units.csv", index=False)
+    doc = yaml.safe_load((project / "design.yaml").read_text())
+    doc["subgroups"] = ["tenure"]
+    doc["outcomes"][0]["label"] = "Use <b>after</b>"
+    (project / "design.yaml").write_text(yaml.safe_dump(doc), encoding="utf-8")
+    return project
+
+
+def test_blocked_three_arms_with_a_subgroup_end_to_end(tmp_path):
+    # A water-letters-like study (3 arms within 2 blocks, one covariate) with a subgroup whose
+    # label carries markup: results rows, identity with the contrasts on the level's units,
+    # and the report's subgroup tables with the user text escaped.
+    from report_kit.estimation.arms import estimate_contrasts
+
+    project = add_subgroup(small_project(tmp_path, "blocked"), levels=("own", "rent & <i>x</i>"))
+    result = CliRunner().invoke(main, ["run", str(project)])
+    assert result.exit_code == 0, result.output
+    (run_dir,) = (project / "runs").iterdir()
+    results = json.loads((run_dir / "results.json").read_text(encoding="utf-8"))
+    assert not any("subgroup" in n for n in results["notes"])
+    assert results["inference_scope"]["subgroups"]["label"] == "exploratory"
+    adjusted = [e for e in results["estimates"] if e["estimator"] == "adjusted"]
+    assert len(adjusted) == 3 and {e["method"] for e in adjusted} == {"lin_arms"}
+    sub = [e for e in results["estimates"] if e["subgroup"] is not None]
+    assert [(e["arm"], e["reference"], e["subgroup"]) for e in sub] == [
+        (a, r, f"tenure={g}") for a, r in (("b", "a"), ("c", "a"), ("c", "b")) for g in ("own", "rent & <i>x</i>")]
+    assert all(e["estimand"] == "subgroup ATE" and e["role"] == "lead" for e in sub)
+    data = pd.read_csv(project / "data" / "units.csv")
+    for e in sub:
+        part = data[data["tenure"] == e["subgroup"].split("=", 1)[1]]
+        rows = estimate_contrasts(part["y"].to_numpy(), part["arm"].to_numpy(dtype=object), arms=["a", "b", "c"],
+                                  contrasts="pairwise", mechanism="blocked", block=part["blk"].to_numpy())
+        (same,) = [r for r in rows if (r.arm, r.reference) == (e["arm"], e["reference"])]
+        assert e["estimate"] == pytest.approx(same.estimate.estimate, rel=1e-12)
+        assert e["std_error"] == pytest.approx(same.estimate.std_error, rel=1e-12)
+        assert e["mean_treated"] == pytest.approx(part.loc[part["arm"] == e["arm"], "y"].mean())
+    diffs = results["subgroup_differences"]
+    assert [(d["arm"], d["subgroup"], d["subgroup_reference"], d["label"]) for d in diffs] == [
+        (a, "tenure=rent & <i>x</i>", "tenure=own", "exploratory") for a in ("b", "c", "c")]
+    est = {(e["arm"], e["reference"], e["subgroup"]): e for e in sub}
+    for d in diffs:
+        first, second = est[(d["arm"], d["reference"], d["subgroup_reference"])], est[(d["arm"], d["reference"],
+                                                                                        d["subgroup"])]
+        assert d["estimate"] == pytest.approx(second["estimate"] - first["estimate"], rel=1e-12)
+        assert d["std_error"] == pytest.approx(math.hypot(first["std_error"], second["std_error"]), rel=1e-12)
+    html = (run_dir / "report.html").read_text(encoding="utf-8")
+    assert "Contrasts within subgroups" in html and "Differences between subgroups, per contrast" in html
+    assert "tenure=rent &amp; &lt;i&gt;x&lt;/i&gt;" in html and "<i>x</i>" not in html
+    assert "Use &lt;b&gt;after&lt;/b&gt;" in html and "Use <b>after</b>" not in html
+    assert len(pd.read_csv(run_dir / "tables" / "subgroups.csv")) == 6
+    assert len(pd.read_csv(run_dir / "tables" / "contrasts_y.csv")) == 6   # 3 unadjusted + 3 adjusted, no subgroups
 
 
 def test_diff_names_the_contrast_that_changed(tmp_path):

@@ -98,23 +98,24 @@ def estimate_adjusted(y, z, X, *, mechanism: str, block=None, cluster=None,
                               f"the {s.pos.size} units with an observed outcome; impute or drop "
                               "them before adjustment")
         Xs = _singleton_indicators_out(mean_impute_with_indicators(Xs, names, user="the adjustment"),
-                                       Xs.shape[1] - int(np.isnan(Xs).all(axis=0).sum()), s.z)
-    _check_units_per_covariate(s, Xs)
+                                       Xs.shape[1] - int(np.isnan(Xs).all(axis=0).sum()), (s.z, ~s.z))
+    _check_units_per_covariate(Xs, ((s.z, "treated"), (~s.z, "control")), s.cluster)
     fit = _lin_fit(s, Xs)
     return _to_estimate(fit, design.alpha, estimand="ATE", estimator="adjusted",
                         n_missing=s.n_missing)
 
 
-def _singleton_indicators_out(X: np.ndarray, n_values: int, z: np.ndarray) -> np.ndarray:
+def _singleton_indicators_out(X: np.ndarray, n_values: int, arms) -> np.ndarray:
     """Drop missingness indicators that flag exactly one unit of an arm.
 
-    In the interacted regression such an indicator fits that unit exactly
-    (leverage 1); the imputed mean stays in its covariate column.
+    ``arms`` holds one boolean membership mask per arm. In the interacted
+    regression such an indicator fits that unit exactly (leverage 1); the
+    imputed mean stays in its covariate column.
     """
     keep = np.ones(X.shape[1], dtype=bool)
     for j in range(n_values, X.shape[1]):
         flagged = X[:, j] > 0
-        if int((flagged & z).sum()) == 1 or int((flagged & ~z).sum()) == 1:
+        if any(int((flagged & member).sum()) == 1 for member in arms):
             keep[j] = False
     if not keep.all():
         _warn(f"{int((~keep).sum())} missingness indicator(s) flag a single unit of an arm and are "
@@ -122,11 +123,12 @@ def _singleton_indicators_out(X: np.ndarray, n_values: int, z: np.ndarray) -> np
     return X[:, keep]
 
 
-def _check_units_per_covariate(s: _Sample, X: np.ndarray) -> None:
+def _check_units_per_covariate(X: np.ndarray, arms, cluster: np.ndarray | None) -> None:
+    """``k + 2`` units (clusters) in each arm; ``arms`` holds ``(mask, label)`` pairs."""
     k = int(np.sum(np.ptp(X, axis=0) > 0)) if X.size else 0
-    kind = "units" if s.cluster is None else "clusters"
-    for arm, label in ((s.z, "treated"), (~s.z, "control")):
-        count = int(arm.sum()) if s.cluster is None else int(np.unique(s.cluster[arm]).size)
+    kind = "units" if cluster is None else "clusters"
+    for arm, label in arms:
+        count = int(arm.sum()) if cluster is None else int(np.unique(cluster[arm]).size)
         if count < k + 2:
             raise DesignError(f"the {label} arm has {count} {kind} with an observed outcome, fewer "
                               f"than the {k + 2} needed to adjust for {k} covariate column(s) "
@@ -149,15 +151,16 @@ def _covariates(X, n: int) -> np.ndarray:
 class _LinLayout:
     """Lin's regression as absorbed groups plus a few dense regressors.
 
-    Fitted model: ``y = alpha_{group} + W beta``; the target is
-    ``theta = sum_g c_g alpha_g + c_W' beta``.
+    Fitted model: ``y = alpha_{group} + W beta``; each target is
+    ``theta = sum_g c_g alpha_g + c_W' beta`` with ``(c_groups, c_w)`` one
+    entry of ``targets`` (one for the two-arm effect, one per contrast with
+    several arms).
     """
 
     groups: np.ndarray           # int codes 0..G-1, one per unit
     W: np.ndarray                # (n, q) dense regressors
-    c_groups: np.ndarray         # (G,) target weights on group intercepts
-    c_w: np.ndarray              # (q,) target weights on beta
-    required: int = 0            # leading columns of W that must stay (the treatment)
+    targets: tuple[tuple[np.ndarray, np.ndarray], ...]   # (c_groups (G,), c_w (q,)) per target
+    required: int = 0            # leading columns of W that must stay (the treatment indicators)
 
 
 def _lin_fit(s: _Sample, X: np.ndarray) -> _Fit:
@@ -183,7 +186,23 @@ def _lin_fit(s: _Sample, X: np.ndarray) -> _Fit:
     if not s.z.any() or s.z.all():
         return _undefined_fit("lin_cr2" if s.cluster is not None else "lin_hc2", s)
     layout = _lin_layout(s, _drop_constant(X))
-    n = s.y.size
+    (fit,) = _layout_fits(s.y, layout, cluster=s.cluster, pos=s.pos,
+                          counts=((int(s.z.sum()), int((~s.z).sum())),),
+                          methods=("lin_hc2", "lin_cr2"))
+    return fit
+
+
+def _layout_fits(y: np.ndarray, layout: _LinLayout, *, cluster: np.ndarray | None, pos: np.ndarray,
+                 counts, methods: tuple[str, str]) -> list[_Fit]:
+    """Fit the regression of ``layout`` once; one :class:`_Fit` per target.
+
+    Each target ``theta = r' y`` gets its own HC2 (or CR2) contributions from
+    the same hat matrix and residuals, so its variance is ``c' V c`` of the
+    full sandwich covariance ``V`` (not a sum of separate pieces). ``counts``
+    holds ``(n_treated, n_control)`` per target, ``methods`` the method names
+    without and with clusters.
+    """
+    n = y.size
     sizes = np.bincount(layout.groups).astype(float)
     w_mean = _group_means(layout.W, layout.groups, sizes)
     kept = _independent_columns(layout.W, layout.W - w_mean[layout.groups], layout.required)
@@ -193,28 +212,32 @@ def _lin_fit(s: _Sample, X: np.ndarray) -> _Fit:
     if n <= n_par:
         raise DesignError(f"the adjusted regression has {n_par} coefficients but only {n} "
                           "units; use fewer covariates")
-    y_mean = _group_means(s.y[:, None], layout.groups, sizes)[:, 0]
+    y_mean = _group_means(y[:, None], layout.groups, sizes)[:, 0]
     qmat, r_mat = np.linalg.qr(w_dm)
     r_inv = linalg.solve_triangular(r_mat, np.eye(kept.size))
-    beta = r_inv @ (qmat.T @ s.y)
-    resid = s.y - y_mean[layout.groups] - w_dm @ beta
-    v = layout.c_w[kept] - layout.c_groups @ w_mean
-    estimate = float(layout.c_groups @ y_mean + v @ beta)
-    r = layout.c_groups[layout.groups] / sizes[layout.groups] + qmat @ (r_inv.T @ v)
+    beta = r_inv @ (qmat.T @ y)
+    resid = y - y_mean[layout.groups] - w_dm @ beta
     group_share = 1.0 / sizes[layout.groups]
-    if s.cluster is None:
-        contrib, keys = _hc2_contributions(group_share + np.sum(qmat ** 2, axis=1), r, resid, s.pos)
-        df, method, rule = float(n - n_par), "lin_hc2", "hc2"
-    else:
-        contrib, keys, df = _cr2_contributions(qmat, group_share, r, resid, s.cluster,
-                                               layout.groups)
-        method, rule = "lin_cr2", "cr2"
-    if df < 1:
-        _warn(f"the adjusted estimate has {df:g} degrees of freedom; no interval is reported")
-    return _Fit(estimate=estimate, contrib=contrib, keys=keys,
-                components=((float(np.sum(contrib ** 2)), df),),
-                n_treated=int(s.z.sum()), n_control=int((~s.z).sum()),
-                method=method, variance_rule=rule, se_ok=True)
+    lev = None if cluster is not None else group_share + np.sum(qmat ** 2, axis=1)
+    fits = []
+    for (c_groups, c_w), (n_treated, n_control) in zip(layout.targets, counts):
+        v = c_w[kept] - c_groups @ w_mean
+        estimate = float(c_groups @ y_mean + v @ beta)
+        r = c_groups[layout.groups] / sizes[layout.groups] + qmat @ (r_inv.T @ v)
+        if cluster is None:
+            contrib, keys = _hc2_contributions(lev, r, resid, pos)
+            df, method, rule = float(n - n_par), methods[0], "hc2"
+        else:
+            contrib, keys, df = _cr2_contributions(qmat, group_share, r, resid, cluster,
+                                                   layout.groups)
+            method, rule = methods[1], "cr2"
+        if df < 1:
+            _warn(f"the adjusted estimate has {df:g} degrees of freedom; no interval is reported")
+        fits.append(_Fit(estimate=estimate, contrib=contrib, keys=keys,
+                         components=((float(np.sum(contrib ** 2)), df),),
+                         n_treated=n_treated, n_control=n_control,
+                         method=method, variance_rule=rule, se_ok=True))
+    return fits
 
 
 def _drop_constant(X: np.ndarray) -> np.ndarray:
@@ -236,7 +259,7 @@ def _lin_layout(s: _Sample, xc: np.ndarray) -> _LinLayout:
         share = counts[np.searchsorted(labels, cell_codes // 2)] / s.y.size
         c_groups = np.where(cell_codes % 2 == 1, 1.0, -1.0) * share
         return _LinLayout(groups=cells, W=np.column_stack([zf * xc, (1.0 - zf) * xc]),
-                          c_groups=c_groups, c_w=np.zeros(2 * xc.shape[1]))
+                          targets=((c_groups, np.zeros(2 * xc.shape[1])),))
     _, blocks = np.unique(block, return_inverse=True)
     shares = np.bincount(blocks, weights=s.z) / np.bincount(blocks)
     if np.ptp(shares) > 1e-12:
@@ -246,7 +269,7 @@ def _lin_layout(s: _Sample, xc: np.ndarray) -> _LinLayout:
     W = np.column_stack([zf, xc, zf * xc])
     c_w = np.zeros(W.shape[1])
     c_w[0] = 1.0
-    return _LinLayout(groups=blocks, W=W, c_groups=np.zeros(int(blocks.max()) + 1), c_w=c_w,
+    return _LinLayout(groups=blocks, W=W, targets=((np.zeros(int(blocks.max()) + 1), c_w),),
                       required=1)
 
 
@@ -286,6 +309,9 @@ def _independent_columns(raw: np.ndarray, demeaned: np.ndarray, required: int) -
                           "adjusted effect is not identified")
     unit = demeaned[:, alive] / norm[alive]
     head = unit[:, :required]
+    if required > 1 and np.linalg.matrix_rank(head) < required:
+        raise DesignError("the arm indicators are collinear with the block indicators; the "
+                          "adjusted contrasts are not identified")
     rest_index = np.flatnonzero(alive)[required:]
     rest = unit[:, required:]
     if required:

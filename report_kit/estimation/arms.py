@@ -2,7 +2,9 @@
 
 Owns: the list of contrasts a design asks for (each arm against the reference,
 or every pair), their unadjusted design-based estimates, the covariate-adjusted
-estimate with all arm indicators (Lin 2013), and the CACE per arm. A contrast
+estimate with all arm indicators (Lin 2013; blocked and cluster designs in
+:mod:`report_kit.estimation.arms_adjusted`), the CACE per arm and each
+contrast within pre-specified subgroups. A contrast
 between arm ``a`` and arm ``r`` is the average effect of ``a`` instead of ``r``,
 ``tau_ar = mean_i (Y_i(a) - Y_i(r))``. Formulas and sources are in
 ``docs/methods/arms.md``. Pure numpy, no I/O.
@@ -17,18 +19,20 @@ from dataclasses import dataclass
 import numpy as np
 
 from report_kit.errors import ReportKitWarning
-from report_kit.estimation.adjustment import estimate_adjusted
-from report_kit.estimation.core import CLUSTERED, MECHANISMS, Estimate, _interval
+from report_kit.estimation.arms_adjusted import lin_all_arms
+from report_kit.estimation.core import BLOCKED, CLUSTERED, MECHANISMS, Estimate, _interval
 from report_kit.estimation.neyman import estimate_effects
 from report_kit.estimation.noncompliance import estimate_noncompliance
+from report_kit.estimation.subgroups import SubgroupResult, _group_codes, estimate_subgroups
 from report_kit.validate import Record
 
-__all__ = ["CONTRASTS", "ArmContrast", "contrast_pairs", "estimate_contrasts",
-           "estimate_contrasts_adjusted", "estimate_arm_cace", "check_arm_labels"]
+__all__ = ["CONTRASTS", "ArmContrast", "ArmSubgroups", "contrast_pairs", "estimate_contrasts",
+           "estimate_contrasts_adjusted", "estimate_contrast_subgroups", "estimate_arm_cace",
+           "check_arm_labels"]
 
 CONTRASTS = ("reference", "pairwise")
 ARM_MECHANISMS = tuple(m for m in MECHANISMS if m != "matched_pairs")
-_SATURATED = ("complete", "bernoulli")  # Lin with all arm indicators in one regression
+_SATURATED = ("complete", "bernoulli")  # the all-arms Lin regression separates by arm
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -143,6 +147,55 @@ def estimate_contrasts(y, arm, *, arms, contrasts: str = "reference", mechanism:
     return out
 
 
+@dataclass(frozen=True, kw_only=True)
+class ArmSubgroups:
+    """The subgroup analysis of one contrast ``arm`` minus ``reference``.
+
+    ``subgroups`` is the two-arm :class:`~report_kit.estimation.subgroups.SubgroupResult`
+    on the units of the two arms (levels, the effect within each level, each
+    level's difference from the first); ``means[i]`` holds the observed
+    outcome means of ``arm`` and ``reference`` within ``subgroups.levels[i]``.
+    """
+
+    arm: str
+    reference: str
+    subgroups: SubgroupResult
+    means: tuple[tuple[float | None, float | None], ...]
+
+
+def estimate_contrast_subgroups(y, arm, g, *, arms, contrasts: str = "reference", mechanism: str, block=None,
+                                cluster=None, alpha: float = 0.05) -> list[ArmSubgroups]:
+    """Each contrast within each level of a pre-specified subgroup variable.
+
+    For ``a`` vs ``r`` the two-arm subgroup analysis
+    (:func:`report_kit.estimation.subgroups.estimate_subgroups`) runs on the
+    units of the two arms, with ``z = 1`` for arm ``a``: within each level the
+    design's primary unadjusted estimate (the first row of
+    :func:`estimate_contrasts` on the level's units), and each level's effect
+    minus the first level's with variance ``V_l + V_0 - 2 C`` (``C`` from the
+    clusters holding units of both levels). Units with a missing label are left
+    out.
+    """
+    _check_mechanism(mechanism)
+    pairs = contrast_pairs(arms, contrasts)
+    labels = check_arm_labels(arm, arms)
+    y = np.asarray(y, dtype=float)
+    g = np.asarray(g, dtype=object)
+    if y.shape != labels.shape or g.shape != labels.shape:
+        raise ValueError(f"`y`, `arm` and `g` must have the same length; got {y.size}, {labels.size} and {g.size}")
+    out = []
+    for a, r in pairs:
+        mask = (labels == a) | (labels == r)
+        z = (labels[mask] == a).astype(int)
+        result = estimate_subgroups(y[mask], z, g[mask], mechanism=mechanism, block=_subset(block, mask),
+                                    cluster=_subset(cluster, mask), alpha=alpha)
+        codes, _ = _group_codes(g[mask], int(mask.sum()))
+        means = tuple(_means(np.where(codes == k, y[mask], np.nan), labels[mask], a, r)
+                      for k in range(len(result.levels)))
+        out.append(ArmSubgroups(arm=a, reference=r, subgroups=result, means=means))
+    return out
+
+
 def estimate_arm_cace(y, arm, d, *, arms, contrasts: str = "reference", mechanism: str, block=None,
                       cluster=None, alpha: float = 0.05) -> list[ArmContrast]:
     """CACE of each contrast (Wald ratio, Angrist, Imbens & Rubin 1996).
@@ -167,8 +220,8 @@ def estimate_arm_cace(y, arm, d, *, arms, contrasts: str = "reference", mechanis
 
 
 def estimate_contrasts_adjusted(y, arm, X, *, arms, contrasts: str = "reference", mechanism: str,
-                                block=None, cluster=None, alpha: float = 0.05) -> list[ArmContrast]:
-    """Covariate-adjusted estimate of each contrast (Lin 2013).
+                                block=None, cluster=None, alpha: float = 0.05, names=None) -> list[ArmContrast]:
+    """Covariate-adjusted estimate of each contrast (Lin 2013), one regression on all arms.
 
     Complete and Bernoulli designs: one OLS of ``y`` on all arm indicators and
     their interactions with the covariates centred at the mean of all units,
@@ -177,9 +230,16 @@ def estimate_contrasts_adjusted(y, arm, X, *, arms, contrasts: str = "reference"
     ``V_a + V_r`` (the regression separates by arm, so the arm intercepts are
     uncorrelated and each ``V_k`` is the HC2 variance of the intercept of the
     regression within arm ``k``; MacKinnon & White 1985). df ``n - K (p + 1)``.
-    Blocked and cluster designs: the two-arm Lin estimator of the design
-    (:func:`~report_kit.estimation.adjustment.estimate_adjusted`, CR2 for
-    clusters) on the units of the two arms compared.
+    Units with a missing covariate are dropped.
+
+    Blocked and cluster designs: the same regression with the design's block
+    terms (centred block indicators interacted with every arm indicator, or
+    additive block effects when a block has fewer than two units or clusters
+    of an arm) and the HC2, or CR2 for clusters, variance of
+    ``alpha_a - alpha_r`` from the full covariance matrix
+    (:func:`report_kit.estimation.arms_adjusted.lin_all_arms`; missing
+    covariates mean-imputed with indicators, as for two arms). ``names``
+    label the covariates in messages.
     """
     _check_mechanism(mechanism)
     pairs = contrast_pairs(arms, contrasts)
@@ -192,7 +252,10 @@ def estimate_contrasts_adjusted(y, arm, X, *, arms, contrasts: str = "reference"
         raise ValueError(f"`y`, `arm` and `X` must have the same number of rows; got {y.size}, "
                          f"{labels.size}, {X.shape[0]}")
     if mechanism not in _SATURATED:
-        return [_pair_adjusted(y, labels, X, a, r, mechanism, block, cluster, alpha) for a, r in pairs]
+        estimates = lin_all_arms(y, labels, X, arms=arms, pairs=pairs, mechanism=mechanism,
+                                 block=block if mechanism in BLOCKED else None,
+                                 cluster=cluster if mechanism in CLUSTERED else None, alpha=alpha, names=names)
+        return [ArmContrast(arm=a, reference=r, estimate=est) for (a, r), est in zip(pairs, estimates)]
     keep = ~np.isnan(y) & ~np.isnan(X).any(axis=1)
     y, labels, X = y[keep], labels[keep], X[keep]
     xc = X - X.mean(axis=0)
@@ -228,11 +291,3 @@ def _arm_intercept(y: np.ndarray, xc: np.ndarray) -> tuple[float | None, float |
     meat = (design * (resid ** 2 / (1 - lev))[:, None]).T @ design
     cov = bread @ meat @ bread
     return float(coef[0]), float(cov[0, 0]), n
-
-
-def _pair_adjusted(y, labels, X, a, r, mechanism, block, cluster, alpha) -> ArmContrast:
-    mask = (labels == a) | (labels == r)
-    z = (labels[mask] == a).astype(int)
-    est = estimate_adjusted(y[mask], z, X[mask], mechanism=mechanism, block=_subset(block, mask),
-                            cluster=_subset(cluster, mask) if mechanism in CLUSTERED else None, alpha=alpha)
-    return ArmContrast(arm=a, reference=r, estimate=est)
