@@ -25,7 +25,7 @@ from report_kit.estimation.arms import (
     estimate_contrasts_adjusted,
 )
 from report_kit.estimation.core import BLOCKED, CLUSTERED
-from report_kit.estimation.factorial import FACTORIAL_MECHANISMS, estimate_factorial
+from report_kit.estimation.factorial import estimate_factorial
 from report_kit.estimation.roles import estimate_roles
 from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
 from report_kit.inference.engine import ChunkMap
@@ -111,15 +111,11 @@ def arm_estimates(study: Study) -> list[dict]:
             d = study.frame[spec.compliance.received].to_numpy(dtype=float)
             rows += [_estimate_row(outcome.column, "CACE", c.to_dict())
                      for c in estimate_arm_cace(y, labels, d, **kw)]
-        if design.factors is not None and design.mechanism in FACTORIAL_MECHANISMS:
+        if design.factors is not None:
             for effect_row in estimate_factorial(y, labels, arms=design.arms, factors=design.factors,
-                                                 block=kw["block"], alpha=spec.analysis.alpha):
+                                                 block=kw["block"], cluster=kw["cluster"], alpha=spec.analysis.alpha):
                 item = effect_row.to_dict()
                 rows.append(_estimate_row(outcome.column, item["estimand"], item, factor=effect_row.factor))
-    if design.factors is not None and design.mechanism not in FACTORIAL_MECHANISMS:
-        warnings.warn(f"factorial main effects and interactions are computed for "
-                      f"{' and '.join(FACTORIAL_MECHANISMS)} designs; this '{design.mechanism}' design reports "
-                      "the arm contrasts only", ReportKitWarning, stacklevel=2)
     return rows
 
 
