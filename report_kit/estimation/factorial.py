@@ -69,17 +69,19 @@ _METHODS = {(False, False): "factorial_neyman", (True, False): "blocked_factoria
 class _Cell:
     """One cell of one block: observed units, mean and the pieces of its variance.
 
-    ``parts`` are the variance contributions of the cell before the effect's
-    weight: per unit ``(y_i - ybar_c) / sqrt(n_c (n_c - 1))`` (Neyman), or per
-    cluster ``E_g f_g`` with ``f_g = 1 / (N_c sqrt(1 - n_g / N_c))`` (CR2);
-    ``None`` when the cell has too few units (clusters) for a variance.
+    ``var`` is the sample variance ``s_c^2`` (Neyman; ``None`` with fewer than
+    two units). With clusters, ``parts`` are the cell's CR2 contributions before
+    the effect's weight, ``E_g f_g`` per cluster with ``f_g = 1 / (N_c sqrt(1 -
+    n_g / N_c))`` (``None`` with fewer than two clusters), ``sizes`` the
+    clusters' units ``n_g`` and ``factor`` the ``f_g``.
     """
 
     n: int
     mean: float | None
+    var: float | None = None
     parts: np.ndarray | None = None
-    sizes: np.ndarray | None = None    # CR2: units of each cluster
-    factor: np.ndarray | None = None   # CR2: f_g of each cluster
+    sizes: np.ndarray | None = None
+    factor: np.ndarray | None = None
 
 
 def estimate_factorial(y, arm, *, arms, factors, block=None, cluster=None,
@@ -190,14 +192,15 @@ def _cell(y: np.ndarray, mask: np.ndarray, cluster_codes: np.ndarray | None) -> 
     if n == 0:
         return _Cell(0, None)
     mean = float(vals.mean())
+    var = float(vals.var(ddof=1)) if n > 1 else None
     if cluster_codes is None:
-        return _Cell(n, mean, (vals - mean) / math.sqrt(n * (n - 1)) if n > 1 else None)
+        return _Cell(n, mean, var)
     codes, inverse = np.unique(cluster_codes[mask], return_inverse=True)
     if codes.size < 2:
-        return _Cell(n, mean)
+        return _Cell(n, mean, var)
     sizes = np.bincount(inverse).astype(float)
     factor = 1.0 / (n * np.sqrt(1.0 - sizes / n))
-    return _Cell(n, mean, np.bincount(inverse, weights=vals - mean) * factor, sizes, factor)
+    return _Cell(n, mean, var, np.bincount(inverse, weights=vals - mean) * factor, sizes, factor)
 
 
 def _effect(name, members, cells, blocks, scale, alpha, method) -> FactorialEffect:
@@ -205,18 +208,23 @@ def _effect(name, members, cells, blocks, scale, alpha, method) -> FactorialEffe
     n_on = sum(stats[a].n for _, stats in blocks for a in cells if sign[a] > 0)
     n_off = sum(stats[a].n for _, stats in blocks for a in cells if sign[a] < 0)
     estimand = "main effect" if len(members) == 1 else "interaction"
+    clustered = method.endswith("cr2")
     est = se = df = None
     if all(stats[a].mean is not None for _, stats in blocks for a in cells):
         est = sum(w * sum(sign[a] * stats[a].mean for a in cells) / scale for w, stats in blocks)
-        if all(stats[a].parts is not None for _, stats in blocks for a in cells):
-            weights = [(w * sign[a] / scale, stats[a]) for w, stats in blocks for a in cells]
-            se = math.sqrt(sum(float(np.sum((lam * cell.parts) ** 2)) for lam, cell in weights))
-            df = _cr2_df(blocks, cells, sign, scale) if method.endswith("cr2") else _satterthwaite(
-                [(float(np.sum((lam * cell.parts) ** 2)), cell.n - 1.0) for lam, cell in weights])
+        if clustered and all(stats[a].parts is not None for _, stats in blocks for a in cells):
+            se = math.sqrt(sum(float(np.sum((w * sign[a] / scale * stats[a].parts) ** 2))
+                               for w, stats in blocks for a in cells))
+            df = _cr2_df(blocks, cells, sign, scale)
+        elif not clustered and all(stats[a].var is not None for _, stats in blocks for a in cells):
+            comps = [(w ** 2 * stats[a].var / stats[a].n / scale ** 2, stats[a].n - 1) for w, stats in blocks
+                     for a in cells]
+            se = math.sqrt(sum(v for v, _ in comps))
+            df = _satterthwaite(comps)
     low, high = _interval(est, se, df, alpha)
     estimate = Estimate(estimand=estimand, estimator="unadjusted", estimate=est, std_error=se, ci_low=low,
                         ci_high=high, df=df, n_treated=n_on, n_control=n_off, method=method,
-                        variance_rule="cr2" if method.endswith("cr2") else "neyman")
+                        variance_rule="cr2" if clustered else "neyman")
     return FactorialEffect(factor=name, estimate=estimate)
 
 
