@@ -39,11 +39,13 @@ _PUBLIC = {
     "ChunkMap": "inference.engine", "serial_chunk_map": "inference.engine",
     "treated_sum_law": "inference.exact", "weighted_block_law": "inference.exact",
     "exact_law_test": "inference.exact_tests",
+    "main_effect_tests": "inference.factorial", "factor_mechanism": "inference.factorial",
     # estimation
     "neyman_difference": "estimation.neyman", "estimate_effects": "estimation.neyman",
     "estimate_adjusted": "estimation.adjustment", "estimate_noncompliance": "estimation.noncompliance",
     "estimate_subgroups": "estimation.subgroups", "rerandomized_interval": "estimation.rerandomized",
     "standardized_effect": "estimation.standardized",
+    "estimate_factorial": "estimation.factorial",
     # checks
     "covariate_balance": "checks.balance", "mahalanobis_balance_test": "checks.balance",
     "participant_flow": "checks.flow",

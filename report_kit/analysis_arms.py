@@ -26,10 +26,11 @@ from report_kit.estimation.arms import (
     estimate_contrasts_adjusted,
 )
 from report_kit.estimation.core import BLOCKED, CLUSTERED
-from report_kit.estimation.factorial import FACTORIAL_MECHANISMS, estimate_factorial
+from report_kit.estimation.factorial import estimate_factorial
 from report_kit.estimation.roles import estimate_roles
 from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
 from report_kit.inference.engine import ChunkMap
+from report_kit.inference.factorial import MAIN_EFFECT, main_effect_tests
 from report_kit.inference.multiplicity import multiplicity_table
 from report_kit.inference.scope import inference_scope
 from report_kit.inputs.model import Study
@@ -40,6 +41,15 @@ log = logging.getLogger(__name__)
 ESTIMATE_KEYS = ("outcome", "estimand", "estimator", "subgroup", "arm", "reference", "factor", "estimate",
                  "std_error", "ci_low", "ci_high", "df", "n_treated", "n_control", "method", "mean_treated",
                  "mean_control")
+
+#: What the factorial main-effect tests claim (``inference_scope.main_effects.note``).
+MAIN_EFFECT_NOTE = (
+    "Each main-effect test concerns the sharp null that the factor changes no unit's outcome, whatever the "
+    "other factors' levels; it re-randomizes that factor only, holding every unit's levels of the other "
+    "factors. These tests are reported unadjusted, outside the multiplicity families: the contrast tests of "
+    "the same arms already make up the families. Interactions have no randomization test: no interaction "
+    "null fixes the outcomes a unit would have in the other cells, so the randomization distribution is not "
+    "known; read the interaction's design-based confidence interval.")
 
 
 def _num(value):
@@ -112,15 +122,11 @@ def arm_estimates(study: Study) -> list[dict]:
             d = study.frame[spec.compliance.received].to_numpy(dtype=float)
             rows += [_estimate_row(outcome.column, "CACE", c.to_dict())
                      for c in estimate_arm_cace(y, labels, d, **kw)]
-        if design.factors is not None and design.mechanism in FACTORIAL_MECHANISMS:
+        if design.factors is not None:
             for effect_row in estimate_factorial(y, labels, arms=design.arms, factors=design.factors,
-                                                 block=kw["block"], alpha=spec.analysis.alpha):
+                                                 block=kw["block"], cluster=kw["cluster"], alpha=spec.analysis.alpha):
                 item = effect_row.to_dict()
                 rows.append(_estimate_row(outcome.column, item["estimand"], item, factor=effect_row.factor))
-    if design.factors is not None and design.mechanism not in FACTORIAL_MECHANISMS:
-        warnings.warn(f"factorial main effects and interactions are computed for "
-                      f"{' and '.join(FACTORIAL_MECHANISMS)} designs; this '{design.mechanism}' design reports "
-                      "the arm contrasts only", ReportKitWarning, stacklevel=2)
     return rows
 
 
@@ -170,7 +176,11 @@ def _adjusted(column: str, y, labels, X, kw: dict, names):
 
 
 def arm_tests(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> tuple[list[dict], list[dict]]:
-    """``tests`` (each contrast, then one omnibus row per outcome) and ``intervals`` rows."""
+    """``tests`` and ``intervals`` rows: each contrast, one omnibus test per outcome, then factorial main effects.
+
+    With ``design.factors`` each outcome's main effects follow (rows with
+    ``factor`` set, ``arm``/``reference`` None; :func:`main_effect_tests`).
+    """
     spec = study.spec
     design, analysis = spec.design, spec.analysis
     labels = arm_labels(study)
@@ -188,6 +198,16 @@ def arm_tests(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None
     names = [o.column for o in spec.outcomes]
     Y = np.column_stack([study.outcome(c) for c in names])
     tests += [r.test_row() for r in omnibus_test(Y, source, outcomes=names, chunk_map=chunk_map)]
+    if design.factors is not None:
+        kw = _design_kw(study)
+        for outcome in spec.outcomes:
+            results = main_effect_tests(
+                study.outcome(outcome.column), labels, arms=design.arms, factors=design.factors,
+                kind=design.mechanism, block=kw["block"], cluster=kw["cluster"], alternative=outcome.alternative,
+                level=1 - analysis.alpha, max_exact=analysis.max_exact, draws=analysis.randomizations,
+                seed=analysis.seed, outcome=outcome.column)
+            tests += [r.test_row() for r in results]
+            intervals += [r.interval_row() for r in results]
     return tests, intervals
 
 
@@ -317,12 +337,17 @@ def arm_inference_scope(study: Study) -> dict:
     As for two arms (:func:`report_kit.inference.scope.inference_scope`), for the
     contrast tests and the subgroup contrasts (exploratory, when the spec lists
     subgroups); ``omnibus`` states the null of the ``between_arms`` tests (no
-    arm changes any unit's outcome).
+    arm changes any unit's outcome). A factorial design adds ``main_effects``:
+    the null of the main-effect tests, that they are not adjusted for
+    multiplicity, and that interactions have no test (:data:`MAIN_EFFECT_NOTE`).
     """
     scope = inference_scope(study)
     scope["omnibus"] = {"statistic": "between_arms", "null": "sharp", "valid_for_average_effect": False,
                         "note": ("The omnibus between-arms test concerns the sharp null that no arm changes "
                                  "any unit's outcome; it is not a test of equal average outcomes.")}
+    if study.spec.design.factors is not None:
+        scope["main_effects"] = {"statistic": MAIN_EFFECT, "null": "sharp", "valid_for_average_effect": False,
+                                 "adjusted": False, "note": MAIN_EFFECT_NOTE}
     return scope
 
 

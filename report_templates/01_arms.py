@@ -28,7 +28,7 @@ show_opening(view)
 # ## Main results
 
 # %%
-tests = {(t["outcome"], t["arm"], t["reference"]): t for t in res["tests"]}
+tests = {(t["outcome"], t["arm"], t["reference"]): t for t in res["tests"] if t.get("factor") is None}
 adjusted = {(m["outcome"], m["arm"], m["reference"]): m["p_adjusted"] for m in res["multiplicity"] if m["lead"]}
 lines = []
 for outcome in spec.outcomes:

@@ -34,7 +34,9 @@ METHOD_WORDS = {"neyman": "Difference in means", "blocked_neyman": "Block-weight
                 "lin_arms": "Lin adjusted (all arms), HC2", "lin_arms_cr2": "Lin adjusted (all arms), CR2",
                 "wald_delta": "Wald ratio",
                 "factorial_neyman": "Factorial contrast of cell means",
-                "blocked_factorial_neyman": "Factorial contrast of cell means within blocks"}
+                "blocked_factorial_neyman": "Factorial contrast of cell means within blocks",
+                "cluster_factorial_cr2": "Factorial contrast of cell means, CR2",
+                "blocked_cluster_factorial_cr2": "Factorial contrast of cell means within blocks, CR2"}
 contrasts = est[est["arm"].notna() & est["subgroup"].isna()]
 for outcome in view.spec.outcomes:
     rows = contrasts[contrasts["outcome"] == outcome.column]
@@ -60,16 +62,39 @@ if len(main):
 # %%
 factorial = est[est["factor"].notna()]
 if len(factorial):
+    clustered = d["mechanism"] in ("cluster", "blocked_cluster")
+    variance = ("CR2 standard errors clustered by cluster with Bell–McCaffrey degrees of freedom, the rule of the "
+                "two-arm cluster estimate" if clustered else "conservative Neyman standard errors")
     say("### Factorial effects\n\nA main effect is the average, over the levels of the other factor, of the "
         "effect of turning the factor on; the interaction measures how far the combined arm differs from the "
         "sum of the two single effects (half the difference of the factor's effect with and without the other "
-        "factor). Estimates and conservative Neyman standard errors follow Dasgupta, Pillai & Rubin (2015).")
+        f"factor). Estimates follow Dasgupta, Pillai & Rubin (2015), with {variance}. Each main effect also has "
+        "a randomization p-value: only that factor is re-randomized, holding every unit's level of the other "
+        "factors, under the sharp null that the factor changes no unit's outcome. These p-values are not "
+        "adjusted for multiplicity (the contrast tests above carry the adjustment). An interaction has no "
+        "such test, because no interaction null fixes a unit's outcomes in the other cells; read its "
+        "confidence interval.")
+    factor_tests = tests[tests["factor"].notna()] if "factor" in tests else tests.iloc[0:0]
+    p_of = {(t["outcome"], t["factor"]): t["p_value"] for _, t in factor_tests.iterrows()}
     show_table(view, pd.DataFrame({
         "Outcome": [view.label(o) for o in factorial["outcome"]],
         "Effect": [f"{f} ({e})" for f, e in zip(factorial["factor"], factorial["estimand"])],
+        "Method": [METHOD_WORDS.get(m, m) for m in factorial["method"]],
         "Estimate": factorial["estimate"], "Std. error": factorial["std_error"],
         f"{level}% CI low": factorial["ci_low"], f"{level}% CI high": factorial["ci_high"],
+        "Randomization p": [p_of.get((o, f)) for o, f in zip(factorial["outcome"], factorial["factor"])],
     }), "factorial", caption="Main effects and interaction", csv_frame=factorial)
+    if len(factor_tests):
+        factor_tests = factor_tests.merge(intervals[intervals["factor"].notna()], on=["outcome", "factor"],
+                                          how="left", suffixes=("", "_interval"))
+        show_table(view, pd.DataFrame({
+            "Outcome": [view.label(o) for o in factor_tests["outcome"]],
+            "Factor": list(factor_tests["factor"]),
+            "Main effect": factor_tests["observed"], "p-value": factor_tests["p_value"],
+            f"{level}% CI low": factor_tests["ci_low"], f"{level}% CI high": factor_tests["ci_high"],
+            "Method": factor_tests["method"].str.replace("_", " "), "Assignments": factor_tests["draws"],
+        }), "main_effect_tests", caption="Randomization tests of the main effects, with test-inversion intervals",
+            csv_frame=factor_tests)
     factors = list((d.get("factors") or {}).items())
     arms_table = pd.DataFrame(res["arms"])
     if len(factors) == 2:
@@ -132,7 +157,7 @@ show_table(view, pd.DataFrame({
     f"{level}% CI low": pair_tests["ci_low"], f"{level}% CI high": pair_tests["ci_high"],
     "Method": pair_tests["method_x"].str.replace("_", " "),
 }), "contrast_tests", caption="Randomization tests and test-inversion intervals per contrast", csv_frame=pair_tests)
-omni = tests[tests["arm"].isna()]
+omni = tests[tests["statistic"] == "between_arms"]
 show_table(view, pd.DataFrame({
     "Outcome": [view.label(o) for o in omni["outcome"]],
     "Between-arm sum of squares": omni["observed"], "p-value": omni["p_value"],

@@ -48,6 +48,14 @@ def test_factorial_results_rows(nudges):
     assert [(e["factor"], e["estimand"]) for e in factorial if e["outcome"] == "renewed"] == [
         ("text", "main effect"), ("call", "main effect"), ("text:call", "interaction")]
     assert all(len(m) == 8 and m["arm"] is not None for m in nudges["multiplicity"])
+    main = [t for t in nudges["tests"] if t.get("factor") is not None]
+    assert [(t["outcome"], t["factor"], t["statistic"]) for t in main] == [
+        ("renewed", "text", "main_effect"), ("renewed", "call", "main_effect"),
+        ("visits_after", "text", "main_effect"), ("visits_after", "call", "main_effect")]
+    assert all(t["arm"] is None and t["reference"] is None and t["method"] == "monte_carlo" for t in main)
+    assert [i["factor"] for i in nudges["intervals"] if i.get("factor")] == ["text", "call", "text", "call"]
+    effects = {(e["outcome"], e["factor"]): e["estimate"] for e in factorial if e["estimator"] == "unadjusted"}
+    assert all(t["observed"] == pytest.approx(effects[(t["outcome"], t["factor"])], rel=1e-12) for t in main)
 
 
 def test_factorial_numbers_by_hand(nudges):
@@ -99,8 +107,13 @@ def test_full_run_shows_arm_sections_with_escaped_labels(tmp_path):
     wide = results["multiplicity_table"]
     assert len(wide) == 6   # 2 outcomes x 3 contrasts
     assert all(fmt_p(row["adjusted"]["bh"]) in html for row in wide)
-    for name in ("arms", "factorial", "contrast_tests", "omnibus_tests", "flow", "multiplicity"):
+    for name in ("arms", "factorial", "main_effect_tests", "contrast_tests", "omnibus_tests", "flow",
+                 "multiplicity"):
         assert (run_dir / "tables" / f"{name}.csv").is_file()
+    assert (pd.read_csv(run_dir / "tables" / "omnibus_tests.csv")["statistic"] == "between_arms").all()
+    factorial = pd.read_csv(run_dir / "tables" / "main_effect_tests.csv")
+    assert list(factorial["factor"]) == ["text", "call", "text", "call"]
+    assert "Randomization tests of the main effects" in html and "no interaction null" in html
     assert (run_dir / "figures" / "cell_means_renewed.png").is_file()
     assert np.isfinite(pd.read_csv(run_dir / "tables" / "factorial.csv")["estimate"]).all()
 

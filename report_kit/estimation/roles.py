@@ -15,9 +15,10 @@ __all__ = ["LEAD_METHODS", "ROLES", "estimate_roles"]
 
 #: Design-based unadjusted estimators that the assignment mechanism implies:
 #: Neyman difference in means, block-weighted, paired, and CR2 for clusters;
-#: for the main effects and interactions of a factorial, the contrast of cell means.
+#: for the main effects and interactions of a factorial, the contrast of cell means
+#: (with the CR2 variance when the cells are assigned to clusters).
 LEAD_METHODS = ("neyman", "blocked_neyman", "paired", "cr2", "factorial_neyman",
-                 "blocked_factorial_neyman")
+                "blocked_factorial_neyman", "cluster_factorial_cr2", "blocked_cluster_factorial_cr2")
 
 #: Every value ``role`` can take ("" for a row with no special role).
 ROLES = ("lead", "adjusted", "check", "take_up", "")
