@@ -77,11 +77,15 @@ def effect_plot(rows: pd.DataFrame, *, labeler: Callable[[str], str] = str, leve
         ax.tick_params(axis="x", labelsize=8)
         ax.set_title(labeler(outcome), fontsize=9, loc="left", fontweight="bold", parse_math=False)  # user text
     axes[-1, 0].set_xlabel(f"{what} with {level}% confidence interval, in each outcome's own units", fontsize=8)
-    handles = [Line2D([], [], color=INK, marker="s", linewidth=2.2, label="unadjusted"),
-               Line2D([], [], color=ACCENT, marker="s", linewidth=2.2, label="covariate-adjusted")]
-    axes[0, 0].legend(handles=handles, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, frameon=False,
-                      fontsize=7.5)
-    fig.tight_layout()
+    adjusted = rows.get("estimator", pd.Series(dtype=object)).eq("adjusted")
+    handles = [Line2D([], [], color=INK, marker="s", linewidth=2.2, label="unadjusted")]
+    if adjusted.any():
+        handles.append(Line2D([], [], color=ACCENT, marker="s", linewidth=2.2, label="covariate-adjusted"))
+    # The legend has a band of its own above the panels, so a long outcome title never runs under it.
+    band = 0.3 / fig.get_figheight()
+    fig.legend(handles=handles, loc="upper right", ncol=len(handles), frameon=False, fontsize=7.5,
+               bbox_to_anchor=(1.0, 1.0))
+    fig.tight_layout(rect=(0, 0, 1, 1 - band))
     return fig
 
 

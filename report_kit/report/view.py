@@ -223,13 +223,23 @@ def p_phrase(p) -> str:
     return f"p {text}" if text.startswith("<") else f"p = {text}"
 
 
+def _noise_floor(column: pd.Series) -> float:
+    """Below this a float cell of the column is shown as 0: 1e-9 of the column's largest magnitude."""
+    values = pd.to_numeric(column, errors="coerce").to_numpy(dtype=float)
+    finite = np.abs(values[np.isfinite(values)])
+    return 1e-9 * float(finite.max()) if finite.size else 0.0
+
+
 def table_html(frame: pd.DataFrame, *, caption: str = "", note: str = "", numeric_digits: int = 3) -> str:
     """A plain HTML table in the report's own style (class ``rk-table``)."""
     head = "".join(f"<th>{html.escape(str(c))}</th>" for c in frame.columns)
+    floor = [_noise_floor(frame.iloc[:, j]) for j in range(frame.shape[1])]
     body = []
     for _, row in frame.iterrows():
         cells = []
-        for value in row:
+        for j, value in enumerate(row):
+            if isinstance(value, float) and abs(value) < floor[j]:
+                value = 0.0   # rounding noise of a search (e.g. an interval end at 0 found as -3e-13)
             text = value if isinstance(value, str) else fmt(value, numeric_digits)
             cls = ' class="num"' if not isinstance(value, str) else ""
             cells.append(f"<td{cls}>{html.escape(str(text))}</td>")

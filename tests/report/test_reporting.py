@@ -83,3 +83,11 @@ def test_unknown_renderer_is_refused_before_any_work():
     with pytest.raises(ValueError, match="`renderer` must be one of"):
         require_renderer("latex")
     require_renderer("builtin")  # the built-in renderer always runs
+
+
+def test_rounding_noise_of_a_search_is_shown_as_zero():
+    """An interval end found at -3e-13 on a 0/1 outcome reads 0.000; a genuinely small p-value keeps its digits."""
+    frame = pd.DataFrame({"low": [-0.05, -2.95e-13, 0.222], "p": [1e-5, 0.5, 0.9]})
+    text = table_html(frame)
+    assert "e-13" not in text and '<td class="num">0.000</td>' in text
+    assert "1e-05" in text   # 1e-5 is far above 1e-9 of the column's largest value
