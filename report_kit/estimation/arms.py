@@ -91,6 +91,13 @@ def _check_mechanism(mechanism: str) -> None:
                          f"got {mechanism!r}")
 
 
+def _two_arm_units(labels: np.ndarray, pairs):
+    """For each contrast ``(a, r)``: the mask of the two arms' units and ``z`` on them (1 = arm ``a``)."""
+    for a, r in pairs:
+        mask = (labels == a) | (labels == r)
+        yield a, r, mask, (labels[mask] == a).astype(int)
+
+
 def _subset(values, mask):
     return None if values is None else np.asarray(values)[mask]
 
@@ -137,9 +144,7 @@ def estimate_contrasts(y, arm, *, arms, contrasts: str = "reference", mechanism:
     if y.shape != labels.shape:
         raise ValueError(f"`y` and `arm` must have the same length; got {y.size} and {labels.size}")
     out = []
-    for a, r in pairs:
-        mask = (labels == a) | (labels == r)
-        z = (labels[mask] == a).astype(int)
+    for a, r, mask, z in _two_arm_units(labels, pairs):
         means = _means(y, labels, a, r)
         for est in estimate_effects(y[mask], z, mechanism=mechanism, block=_subset(block, mask),
                                     cluster=_subset(cluster, mask), alpha=alpha):
@@ -184,9 +189,7 @@ def estimate_contrast_subgroups(y, arm, g, *, arms, contrasts: str = "reference"
     if y.shape != labels.shape or g.shape != labels.shape:
         raise ValueError(f"`y`, `arm` and `g` must have the same length; got {y.size}, {labels.size} and {g.size}")
     out = []
-    for a, r in pairs:
-        mask = (labels == a) | (labels == r)
-        z = (labels[mask] == a).astype(int)
+    for a, r, mask, z in _two_arm_units(labels, pairs):
         result = estimate_subgroups(y[mask], z, g[mask], mechanism=mechanism, block=_subset(block, mask),
                                     cluster=_subset(cluster, mask), alpha=alpha)
         codes, _ = _group_codes(g[mask], int(mask.sum()))
@@ -210,9 +213,7 @@ def estimate_arm_cace(y, arm, d, *, arms, contrasts: str = "reference", mechanis
     labels = check_arm_labels(arm, arms)
     y, d = np.asarray(y, dtype=float), np.asarray(d, dtype=float)
     out = []
-    for a, r in pairs:
-        mask = (labels == a) | (labels == r)
-        z = (labels[mask] == a).astype(int)
+    for a, r, mask, z in _two_arm_units(labels, pairs):
         result = estimate_noncompliance(y[mask], z, d[mask], mechanism=mechanism, block=_subset(block, mask),
                                         cluster=_subset(cluster, mask), alpha=alpha)
         out.append(ArmContrast(arm=a, reference=r, estimate=result.cace))
