@@ -228,17 +228,44 @@ def diff(run_a: Path, run_b: Path, as_json: bool, max_items: int) -> None:
 
 @main.command(short_help="Re-run a run (or archive) from its recorded inputs; exit 3 on a difference.")
 @click.argument("target", type=click.Path(path_type=Path))
-def verify(target: Path) -> None:
+@click.option("--report", "with_report", is_flag=True,
+              help="Also render the report again from results.json and compare report.html and the tables.")
+def verify(target: Path, with_report: bool) -> None:
     """Re-run a run folder (or an archive .zip) from its recorded inputs; exit 3 on any difference."""
     from report_kit.errors import VerificationError
     from report_kit.pipeline import analyse_project
+    from report_kit.audit.report_check import format_report_check
     from report_kit.audit.verify import format_verify_text, verify_run
 
     click.echo(f"verifying {target} (re-running the analysis from the recorded inputs)…", err=True)
     report = verify_run(target, analyse=analyse_project)
-    click.echo(format_verify_text(report))
-    if not report.ok:
+    text = format_verify_text(report)
+    if with_report:
+        body, verdict = text.rstrip("\n").rsplit("\n", 1)
+        check = _check_report_of(target)
+        text = f"{body}\n{format_report_check(check)}\n\n{verdict}"
+        if not check.ok and report.ok:
+            text = text[: -len(verdict)] + "NOT VERIFIED: the report differs from a fresh rendering of results.json"
+        same_report = check.ok
+    else:
+        same_report = True
+    click.echo(text)
+    if not report.ok or not same_report:
         raise VerificationError("verification found differences (listed above)")
+
+
+def _check_report_of(target: Path):
+    """``verify --report``: render the run's report again (from an archive: its extracted run folder)."""
+    import tempfile
+
+    from report_kit.audit.archive import safe_extract
+    from report_kit.audit.report_check import check_report
+
+    click.echo("rendering the report again from results.json…", err=True)
+    if target.is_file():
+        with tempfile.TemporaryDirectory(prefix="report-kit-verify-") as tmp:
+            return check_report(safe_extract(target, Path(tmp) / "archive"))
+    return check_report(target)
 
 
 @main.command(short_help="Zip a run with its inputs, manifest, RO-Crate and checksums.")

@@ -169,8 +169,22 @@ def page_html(title: str, body: str, *, stamp: str) -> str:
     )
 
 
+def run_stamp(run_dir: Path) -> str:
+    """``Run <id> · 02 December 2026, 09:15 UTC``: the time is the run's own (its id starts with it).
+
+    Taken from the run id rather than the clock, so rendering the same run
+    folder again (``verify --report``) gives the same bytes.
+    """
+    run_id = run_id_of(run_dir)
+    try:
+        started = datetime.strptime(run_id[:16], "%Y%m%dT%H%M%SZ").replace(tzinfo=timezone.utc)
+    except ValueError:   # a run folder renamed by hand: say when it was rendered instead
+        started = datetime.now(timezone.utc)
+    return f"Run {run_id} · {started.strftime('%d %B %Y, %H:%M UTC')}"
+
+
 def render_builtin(notebooks: list[Path], run_dir: Path, *, title: str, pdf: bool) -> None:
-    stamp = f"Run {run_id_of(run_dir)} · {datetime.now(timezone.utc).strftime('%d %B %Y, %H:%M UTC')}"
+    stamp = run_stamp(run_dir)
     body, toc = number_sections(body_html(combine(notebooks)))
     page = page_html(title, insert_toc(body, toc), stamp=stamp)
     (run_dir / "report.html").write_text(page, encoding="utf-8")
