@@ -95,7 +95,7 @@ def read_table(project: Path, rel: str, key: str, *, id_col: str | None = None,
     except OSError as err:
         reason = "permission denied" if isinstance(err, PermissionError) else (err.strerror or str(err))
         raise DataError(f"{path}: cannot read the file ({reason}; named by {key} in design.yaml)") from err
-    if not raw.strip():
+    if not raw or raw.isspace():  # not raw.strip(): that copies the whole file
         raise DataError(f"{path}: the file is empty; expected a header line naming the columns, "
                         "then one row per unit")
     lines = None
