@@ -14,18 +14,24 @@ Steps are timed from the run's own log messages (``estimates``, ``randomization
 tests``, ``balance, flow, attrition``, ``multiplicity and power``) and progress
 messages (notebooks, rendering, provenance). Peak memory of each step is
 ``VmHWM`` of ``/proc/self/status`` after resetting it (``/proc/self/clear_refs``)
-at the start of the step; the notebook kernel is a child process, whose peak
-is ``ru_maxrss`` of ``RUSAGE_CHILDREN``.
+at the start of the step. Child processes (the notebook kernel, Dask workers)
+are watched by a thread that reads their ``VmHWM`` twice a second; their peaks
+are printed per process. (``ru_maxrss`` of ``RUSAGE_CHILDREN`` is not used: on
+Linux it counts the parent's memory at the time of the fork.) The project is
+generated in a child process, so that its arrays do not count in the run's.
 """
 
 from __future__ import annotations
 
 import argparse
 import logging
+import multiprocessing
+import os
 import resource
 import shutil
 import sys
 import tempfile
+import threading
 import time
 from pathlib import Path
 
@@ -107,6 +113,75 @@ def _reset_peak() -> None:
         pass
 
 
+def _status_kb(pid: int | str, key: str) -> int | None:
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith(key):
+                return int(line.split()[1])
+    except OSError:
+        pass
+    return None
+
+
+def _descendants(root: int) -> list[int]:
+    parents = {}
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit():
+            try:
+                fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            parents[int(entry.name)] = int(fields[1])
+    found, frontier = [], [root]
+    while frontier:
+        parent = frontier.pop()
+        children = [pid for pid, ppid in parents.items() if ppid == parent]
+        found += children
+        frontier += children
+    return found
+
+
+def _role(pid: int) -> str:
+    try:
+        argv = Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace")
+    except OSError:
+        return "?"
+    if argv == Path("/proc/self/cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace"):
+        return "fork of this process, sharing its pages"
+    if "ipykernel" in argv:
+        return "notebook kernel"
+    if "multiprocessing" in argv:
+        return "Dask worker" if "spawn_main" in argv else "helper (multiprocessing)"
+    return argv[:60]
+
+
+class ChildPeaks(threading.Thread):
+    """Peak resident memory (``VmHWM``) of every descendant process, sampled twice a second."""
+
+    def __init__(self) -> None:
+        super().__init__(daemon=True)
+        self.peaks: dict[int, tuple[str, float]] = {}
+        self._halt = threading.Event()
+
+    def run(self) -> None:
+        while not self._halt.is_set():
+            self.sample()
+            self._halt.wait(0.5)
+
+    def sample(self) -> None:
+        for pid in _descendants(os.getpid()):
+            kb = _status_kb(pid, "VmHWM:")
+            if kb is None:
+                continue
+            role = self.peaks.get(pid, (None, 0.0))[0] or _role(pid)
+            self.peaks[pid] = (role, max(kb / 1024**2, self.peaks.get(pid, (role, 0.0))[1]))
+
+    def stop(self) -> dict[int, tuple[str, float]]:
+        self._halt.set()
+        self.join()
+        return self.peaks
+
+
 class Steps(logging.Handler):
     """Times the run's steps from its log and progress messages; peak memory per step."""
 
@@ -115,6 +190,7 @@ class Steps(logging.Handler):
         self.rows: list[tuple[str, float, float]] = []
         self._name = "load and validate"
         self._start = time.perf_counter()
+        self.baseline = (_status_kb("self", "VmRSS:") or 0) / 1024**2  # the libraries, before the run
         _reset_peak()
 
     def emit(self, record: logging.LogRecord) -> None:
@@ -141,6 +217,8 @@ def run_one(project: Path, workers: int | None, pdf: bool, profile: str | None) 
         if not message.startswith(("design spec", "analysing")):
             steps.mark(message.split(" (")[0])
 
+    children = ChildPeaks()
+    children.start()
     try:
         if profile:
             import cProfile
@@ -152,9 +230,10 @@ def run_one(project: Path, workers: int | None, pdf: bool, profile: str | None) 
             run_project(project, options, progress=progress)
     finally:
         logger.removeHandler(steps)
+        peaks = children.stop()
     steps.mark("end")
-    return {"rows": steps.rows, "total": time.perf_counter() - started,
-            "kernel_peak": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024**2}
+    return {"rows": steps.rows, "total": time.perf_counter() - started, "children": peaks,
+            "baseline": steps.baseline}
 
 
 def report(n: int, m: int, draws: int, figures: dict) -> None:
@@ -168,7 +247,11 @@ def report(n: int, m: int, draws: int, figures: dict) -> None:
     rand = sum(s for name, s, _ in rows if name.startswith("randomization tests"))
     peak = max(p for _, _, p in rows)
     print(f"  {'whole run':<34} {total:9.2f} {peak:8.2f}  (this process)")
-    print(f"  notebook kernel peak (child process): {figures['kernel_peak']:.2f} GB")
+    print(f"  resident memory before the run (libraries): {figures['baseline']:.2f} GB; "
+          f"peak above it: {(peak - figures['baseline']) / (n / 1e6):.3f} GB per million units")
+    for pid, (role, peak) in sorted(figures["children"].items()):
+        if peak > 0.05:
+            print(f"  peak of child process {pid} ({role}): {peak:.2f} GB")
     print(f"  ratio whole run / randomization step: {total / rand:.2f} (target <= 2)")
 
 
@@ -186,7 +269,8 @@ def main() -> None:
     try:
         for n in args.units:
             start = time.perf_counter()
-            project = make_project(folder, n, args.outcomes, args.draws)
+            with multiprocessing.get_context("spawn").Pool(1) as pool:
+                project = pool.apply(make_project, (folder, n, args.outcomes, args.draws))
             print(f"generated {project.name} in {time.perf_counter() - start:.1f} s "
                   f"({(project / 'data' / 'units.csv').stat().st_size / 1e6:.0f} MB of CSV)")
             figures = run_one(project, args.workers, not args.no_pdf, args.profile)

@@ -14,8 +14,9 @@ so results do not depend on who computes which chunk.
 * :func:`dask_chunk_map` - a context manager that starts a local cluster or
   connects to an existing scheduler and yields a chunk map. ``fn`` (with the
   arrays it holds) is sent to every worker **once** per call
-  (:meth:`distributed.Client.scatter` with ``broadcast=True``); each task then
-  carries only its chunk description. Results are collected as they complete
+  (:meth:`distributed.Client.scatter` with ``broadcast=True``; straight to the
+  workers of a local cluster, whose scheduler would otherwise keep a second
+  copy in this process); each task then carries only its chunk description. Results are collected as they complete
   and yielded in task order, so a reduction over them is the same
   floating-point sum as in one process.
 * :func:`counting_chunk_map` - any chunk map (default: one chunk after another
@@ -164,7 +165,9 @@ def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
                 client = stack.enter_context(Client(address, timeout="20s"))
             except (OSError, TimeoutError) as err:
                 raise UsageError(f"cannot reach the Dask scheduler at {address}: {err}") from err
-        yield _DaskChunkMap(client, on_chunk)
+        # A local cluster's scheduler lives in this process: data scattered through it would
+        # stay here as a second copy of the work object, so it goes straight to the workers.
+        yield _DaskChunkMap(client, on_chunk, direct=True if address is None else None)
 
 
 #: Batches of tasks per worker thread and pass: enough to balance the load, few enough that
@@ -186,9 +189,10 @@ def _batches(tasks: list, threads: int) -> list[list]:
 class _DaskChunkMap:
     """The chunk map of one Dask client (see :func:`dask_chunk_map`)."""
 
-    def __init__(self, client, on_chunk: OnChunk | None) -> None:
+    def __init__(self, client, on_chunk: OnChunk | None, direct: bool | None = None) -> None:
         self._client = client
         self._on_chunk = on_chunk
+        self._direct = direct
 
     def __call__(self, fn: Callable[[Any], Any], tasks: Iterable[Any]) -> Iterator[Any]:
         _check_fn(fn)
@@ -199,7 +203,7 @@ class _DaskChunkMap:
 
         client = self._client
         # The work object holds the large arrays: one copy per worker, not one per task.
-        (handle,) = client.scatter([fn], broadcast=True, hash=False)
+        (handle,) = client.scatter([fn], broadcast=True, hash=False, direct=self._direct)
         batches = _batches(tasks, sum(client.nthreads().values()))
         futures = [client.submit(_call_batch, handle, batch, pure=False) for batch in batches]
         index = {f.key: i for i, f in enumerate(futures)}

@@ -484,7 +484,8 @@ def _run(requests: Sequence[_Request], mechanism: Mechanism, source, null_effect
     """
     draws = _draws_of(source)
     z = mechanism.z.astype(np.float64)
-    adjusted = [r.y - null_effect * z[:, None] for r in requests]
+    # y - 0 * z is y itself, bit for bit: no copy of the outcome matrix for the null of no effect
+    adjusted = [r.y if null_effect == 0 else r.y - null_effect * z[:, None] for r in requests]
     statistics = [_KERNELS[r.statistic](y, mechanism, r.direction) for r, y in zip(requests, adjusted)]
     observed = observed_statistics(statistics, z, draws.rows) + observed_statistics(extra, z, 1)
     statistics += list(extra)

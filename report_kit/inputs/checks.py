@@ -70,8 +70,14 @@ class _Locator:
     """Finds the line of a unit in the units table from its id (for rows of the merged frame)."""
 
     def __init__(self, units: Table, id_col: str):
-        self.units = units
-        self._pos = {v: i for i, v in enumerate(units.frame[id_col].tolist())}
+        self.units, self._id_col = units, id_col
+        self._pos: dict | None = None
+
+    def _position(self, ident) -> int | None:
+        # Built on the first message only: a dict of every id is the size of the table many times over.
+        if self._pos is None:
+            self._pos = {v: i for i, v in enumerate(self.units.frame[self._id_col].tolist())}
+        return self._pos.get(_plain(ident))
 
     def rows(self, ids, values=None, column: str | None = None) -> str:
         """``line 2 (id 'a')`` for each id (the first few), with ``column = value`` when given."""
@@ -79,7 +85,7 @@ class _Locator:
         values = None if values is None else list(values)
         shown = []
         for k, ident in enumerate(ids[:_SHOW]):
-            pos = self._pos.get(_plain(ident))
+            pos = self._position(ident)
             where = self.units.line(pos) if pos is not None else "row ?"
             value = "" if values is None else f", {column} = {_show(values[k])}"
             shown.append(f"{where} (id {_show(ident)}{value})")

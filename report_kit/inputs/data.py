@@ -69,7 +69,7 @@ def load_study(spec: Spec) -> Study:
     _check_merge_gaps(problems, spec, frame, units, origin, locate)
     problems.raise_if_any()
     frame = _normalise_labels(frame, [c for c in (spec.design.block, spec.design.cluster, *spec.subgroups) if c])
-    frame = frame.sort_values(id_col, kind="mergesort").reset_index(drop=True)
+    frame = _sorted_by_id(frame, id_col)
     frame = as_randomized = _coerce(spec, frame)
     frame, handling = apply_handling(spec, frame)
     frame = _normalise_labels(frame, list(handled_missing_columns(spec)))
@@ -127,12 +127,19 @@ def load_units_for_assignment(spec: Spec, *, treated_count=None) -> pd.DataFrame
     frame = _normalise_labels(units.frame, labels)
     _check_drawable(problems, spec, frame, units, treated_count)
     problems.raise_if_any()
-    return frame.sort_values(id_col, kind="mergesort").reset_index(drop=True)
+    return _sorted_by_id(frame, id_col)
+
+
+def _sorted_by_id(frame: pd.DataFrame, id_col: str) -> pd.DataFrame:
+    """Rows in id order (stable); a table already in that order is kept as it is, not copied."""
+    if not frame[id_col].is_monotonic_increasing:
+        frame = frame.sort_values(id_col, kind="mergesort")
+    return frame.reset_index(drop=True)
 
 
 def _normalise_labels(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
     """Block, cluster and subgroup labels: trim spaces; a mixture of numbers and text becomes text."""
-    frame = frame.copy()
+    frame = frame.copy(deep=False)  # columns are replaced, never changed in place
     for col in dict.fromkeys(columns):
         series = frame[col]
         if pd.api.types.is_numeric_dtype(series) or pd.api.types.is_bool_dtype(series):
@@ -168,9 +175,8 @@ def _column_origin(problems: _Problems, units: Table, merged: list[Table], id_co
 
 def _merge(problems: _Problems, units: Table, merged: list[Table], id_col: str) -> pd.DataFrame:
     frame = units.frame
-    known = set(frame[id_col].tolist())
     for table in merged:
-        extra = np.flatnonzero(~table.frame[id_col].isin(known).to_numpy())
+        extra = np.flatnonzero(~table.frame[id_col].isin(units.frame[id_col]).to_numpy())
         if extra.size:
             problems.add(f"{table.path}: ids not present in {units.path}: {_rows(table, extra, id_col)}")
         frame = frame.merge(table.frame, on=id_col, how="left", validate="one_to_one")
@@ -178,7 +184,7 @@ def _merge(problems: _Problems, units: Table, merged: list[Table], id_col: str) 
 
 
 def _coerce(spec: Spec, frame: pd.DataFrame) -> pd.DataFrame:
-    frame = frame.copy()
+    frame = frame.copy(deep=False)  # columns are replaced, never changed in place
     if spec.design.arms is None:
         frame[spec.design.treatment] = pd.to_numeric(frame[spec.design.treatment]).astype(int)
     else:

@@ -145,7 +145,7 @@ def normalise_ids(tables: list, id_col: str) -> list:
     target = "int" if kinds <= {"int"} else "float" if kinds <= {"int", "float"} else "text"
     out = []
     for table in tables:
-        frame = table.frame.copy()
+        frame = table.frame.copy(deep=False)  # only the id column is replaced
         frame[id_col] = _converted(table.frame[id_col], target, kinds)
         out.append(dataclasses.replace(table, frame=frame))
     return out

@@ -15,9 +15,12 @@ import hashlib
 import io
 import math
 import warnings
+from array import array
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from report_kit.errors import DataError
@@ -26,27 +29,32 @@ __all__ = ["SUFFIXES", "Table", "read_table", "resolve_inside"]
 
 SUFFIXES = (".csv", ".parquet", ".xlsx", ".dta")
 _SHOW = 5  # offending rows listed per problem
+#: bytes of a CSV file checked at a time (cut at a line end), so no check holds a copy of the whole file
+_WINDOW = 1 << 22
+_BOM = b"\xef\xbb\xbf"
 
 
-@dataclass(frozen=True, kw_only=True)
+@dataclass(frozen=True, kw_only=True, eq=False)
 class Table:
     """One input table as read, with where its rows came from.
 
-    ``lines`` holds, for a CSV file, the line in the file where each row
-    starts (header = line 1); it is empty for the other formats.
+    ``lines`` holds, for a CSV file whose rows do not simply follow the
+    header line by line (blank lines, values spanning lines), the line in the
+    file where each row starts (header = line 1), as a compact integer array;
+    ``None`` when row ``i`` is on line ``i + 2``, and for the other formats.
     """
 
     relpath: str
     path: Path
     frame: pd.DataFrame
     sha256: str
-    lines: tuple[int, ...] = ()
+    lines: np.ndarray | None = None
 
     def line(self, pos: int) -> str:
         """Human locator of a row: line number for text files, row number otherwise."""
         suffix = self.path.suffix.lower()
         if suffix == ".csv":
-            return f"line {self.lines[pos] if self.lines else pos + 2}"
+            return f"line {int(self.lines[pos]) if self.lines is not None else pos + 2}"
         if suffix == ".xlsx":
             return f"sheet row {pos + 2}"
         return f"row {pos + 1}"
@@ -87,10 +95,10 @@ def read_table(project: Path, rel: str, key: str, *, id_col: str | None = None,
     except OSError as err:
         reason = "permission denied" if isinstance(err, PermissionError) else (err.strerror or str(err))
         raise DataError(f"{path}: cannot read the file ({reason}; named by {key} in design.yaml)") from err
-    if not raw.strip():
+    if not raw or raw.isspace():  # not raw.strip(): that copies the whole file
         raise DataError(f"{path}: the file is empty; expected a header line naming the columns, "
                         "then one row per unit")
-    lines: tuple[int, ...] = ()
+    lines = None
     if suffix == ".csv":
         frame, header, lines = _read_csv(path, raw, id_col, missing_values)
     else:
@@ -104,7 +112,22 @@ def read_table(project: Path, rel: str, key: str, *, id_col: str | None = None,
                  sha256=hashlib.sha256(raw).hexdigest(), lines=lines)
 
 
-def _decode_csv(path: Path, raw: bytes) -> str:
+def _windows(raw: bytes, start: int) -> Iterator[tuple[int, int]]:
+    """``(a, b)`` cuts of ``raw[start:]`` of about :data:`_WINDOW` bytes, each ending at a line end (or the end)."""
+    a, size = start, len(raw)
+    while a < size:
+        cut = raw.find(b"\n", min(a + _WINDOW, size))
+        b = size if cut < 0 else cut + 1
+        yield a, b
+        a = b
+
+
+def _check_csv_bytes(path: Path, raw: bytes) -> None:
+    """The file is UTF-8 text (a UTF-8 byte-order mark allowed), or a :class:`DataError` says what it is.
+
+    Decoded window by window (a line end never falls inside a character), so
+    the text of the whole file is never held.
+    """
     if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
         raise DataError(f"{path}: is UTF-16 text; save it as UTF-8 (for example 'CSV UTF-8' in a "
                         "spreadsheet program)")
@@ -115,23 +138,27 @@ def _decode_csv(path: Path, raw: bytes) -> str:
         raise DataError(f"{path}: looks like a Parquet file with a .csv name; rename it to .parquet")
     nul = raw.find(b"\x00")
     if nul >= 0:
-        line = raw[:nul].count(b"\n") + 1
+        line = raw.count(b"\n", 0, nul) + 1
         raise DataError(f"{path}: contains binary data (a NUL byte on line {line}); it is not a CSV text file")
-    try:
-        return raw.decode("utf-8-sig")
-    except UnicodeDecodeError as err:
-        line = raw[:err.start].count(b"\n") + 1
-        raise DataError(f"{path}: is not UTF-8 text (byte 0x{raw[err.start]:02x} on line {line} is not valid "
-                        "UTF-8; the file may be saved as Latin-1 or Windows-1252); save it as UTF-8, for "
-                        "example 'CSV UTF-8' in a spreadsheet program") from err
+    view = memoryview(raw)
+    for a, b in _windows(raw, len(_BOM) if raw.startswith(_BOM) else 0):
+        try:
+            str(view[a:b], "utf-8")
+        except UnicodeDecodeError as err:
+            at = a + err.start
+            line = raw.count(b"\n", 0, at) + 1
+            raise DataError(f"{path}: is not UTF-8 text (byte 0x{raw[at]:02x} on line {line} is not valid "
+                            "UTF-8; the file may be saved as Latin-1 or Windows-1252); save it as UTF-8, for "
+                            "example 'CSV UTF-8' in a spreadsheet program") from err
 
 
-def _csv_records(path: Path, text: str) -> tuple[list[str], list[int]]:
+def _csv_records(path: Path, raw: bytes) -> tuple[list[str], np.ndarray]:
     """The header and the starting line of every data record; ragged rows are an error."""
-    if '"' not in text and "\r" not in text:
-        header, starts, ragged = _plain_csv_records(text)
+    if b'"' not in raw and b"\r" not in raw:
+        header, starts, ragged = _scan_plain(raw)
     else:
-        header, starts, ragged = _quoted_csv_records(path, text)
+        stream = io.TextIOWrapper(io.BytesIO(raw), encoding="utf-8-sig", newline="")
+        header, starts, ragged = _scan_quoted(path, stream)
     if header is None:
         raise DataError(f"{path}: the file is empty; expected a header line naming the columns, "
                         "then one row per unit")
@@ -146,23 +173,64 @@ def _csv_records(path: Path, text: str) -> tuple[list[str], list[int]]:
 
 
 def _plain_csv_records(text: str) -> tuple[list[str] | None, list[int], list[tuple[int, int]]]:
-    """:func:`_quoted_csv_records` for text without quotes or carriage returns: one record per non-empty line."""
-    lines = text.split("\n")
-    numbers = [i for i, line in enumerate(lines, start=1) if line]
-    if not numbers:
-        return None, [], []
-    header = lines[numbers[0] - 1].split(",")
-    width = len(header) - 1
-    starts = numbers[1:]
-    ragged = [(i, lines[i - 1].count(",") + 1) for i in starts if lines[i - 1].count(",") != width]
+    """:func:`_quoted_csv_records` for text without quotes or carriage returns: one record per non-empty line.
+
+    The list form of :func:`_scan_plain` (which works on the bytes of the file).
+    """
+    header, starts, ragged = _scan_plain(text.encode("utf-8"))
+    return header, starts.tolist(), ragged
+
+
+def _scan_plain(raw: bytes) -> tuple[list[str] | None, np.ndarray, list[tuple[int, int]]]:
+    """Header, starting lines (``int64``) and ragged records of UTF-8 bytes without quotes or carriage returns.
+
+    Line ends and commas are found with numpy, window by window: no list of
+    lines and no Python integer per line.
+    """
+    view = memoryview(raw)
+    header: list[str] | None = None
+    width = 0
+    parts: list[np.ndarray] = []
+    ragged: list[tuple[int, int]] = []
+    number = 1  # line number of the first line of the window
+    for a, b in _windows(raw, len(_BOM) if raw.startswith(_BOM) else 0):
+        arr = np.frombuffer(view[a:b], dtype=np.uint8)
+        ends = np.flatnonzero(arr == ord("\n"))
+        starts = np.concatenate(([0], ends + 1))
+        ends = np.append(ends, arr.size)
+        if arr[-1] == ord("\n"):  # the line after the last line end starts in the next window
+            starts, ends = starts[:-1], ends[:-1]
+        numbers = np.arange(number, number + starts.size, dtype=np.int64)
+        number += starts.size
+        filled = ends > starts
+        if header is None:
+            first = np.flatnonzero(filled)
+            if not first.size:
+                continue
+            h = first[0]
+            header = str(view[a + starts[h]:a + ends[h]], "utf-8").split(",")
+            width = len(header) - 1
+            filled[:h + 1] = False
+        commas = np.flatnonzero(arr == ord(","))
+        counts = np.searchsorted(commas, ends) - np.searchsorted(commas, starts)
+        bad = filled & (counts != width)
+        ragged += zip(numbers[bad].tolist(), (counts[bad] + 1).tolist())
+        parts.append(numbers[filled])
+    starts = np.concatenate(parts) if parts else np.empty(0, dtype=np.int64)
     return header, starts, ragged
 
 
 def _quoted_csv_records(path: Path, text: str) -> tuple[list[str] | None, list[int], list[tuple[int, int]]]:
     """The header, the starting line of every data record and the ragged records, by the csv module."""
-    reader = csv.reader(io.StringIO(text, newline=""))
+    header, starts, ragged = _scan_quoted(path, io.StringIO(text, newline=""))
+    return header, starts.tolist(), ragged
+
+
+def _scan_quoted(path: Path, stream) -> tuple[list[str] | None, np.ndarray, list[tuple[int, int]]]:
+    """:func:`_quoted_csv_records` on a text stream; the starting lines as an ``int64`` array."""
+    reader = csv.reader(stream)
     header: list[str] | None = None
-    starts: list[int] = []
+    starts = array("q")
     ragged: list[tuple[int, int]] = []
     previous = 0
     try:
@@ -178,7 +246,14 @@ def _quoted_csv_records(path: Path, text: str) -> tuple[list[str] | None, list[i
                 ragged.append((start, len(record)))
     except csv.Error as err:
         raise DataError(f"{path}: not a well-formed CSV file near line {reader.line_num}: {err}") from err
-    return header, starts, ragged
+    return header, np.frombuffer(starts, dtype=np.int64) if starts else np.empty(0, dtype=np.int64), ragged
+
+
+def _compact_lines(starts: np.ndarray) -> np.ndarray | None:
+    """``None`` when row ``i`` starts on line ``i + 2`` (no blank line, no value over two lines), else the lines."""
+    if starts.size and starts[0] == 2 and starts[-1] == starts.size + 1 and (np.diff(starts) == 1).all():
+        return None
+    return starts.astype(np.uint32) if starts.size and starts[-1] < 2 ** 32 else starts
 
 
 def _missing_markers(header, id_col: str | None, missing_values: tuple[str, ...]) -> dict:
@@ -187,11 +262,41 @@ def _missing_markers(header, id_col: str | None, missing_values: tuple[str, ...]
             for name in header}
 
 
+#: an id that reads as the same whole number whichever way it is parsed: no sign other than a minus,
+#: no leading zero, no surrounding space, at most 18 digits (always inside int64); the same
+#: rule as the whole numbers of :mod:`report_kit.inputs.ids`
+_PLAIN_WHOLE = r"-?(0|[1-9][0-9]{0,17})"
+
+
+def _id_dtype(raw: bytes, name: str) -> type | str:
+    """How to parse the id column: ``int64`` when every id is a plain whole number, else text.
+
+    Ids are read as text so that ``007`` keeps its zeros; but a column of
+    text holds every id as a string, several times the memory of the whole
+    table's numbers. So the id column alone is read first, 262,144 rows at
+    a time; when every id is a plain whole number (:data:`_PLAIN_WHOLE`)
+    parsing it as ``int64`` gives the very numbers that normalising the text
+    gives (:func:`report_kit.inputs.ids.normalise_ids`).
+    """
+    try:
+        chunks = pd.read_csv(io.BytesIO(raw), encoding="utf-8-sig", usecols=[name], dtype={name: str},
+                             keep_default_na=False, na_values={name: [""]}, index_col=False,
+                             skip_blank_lines=True, chunksize=1 << 18)
+        for chunk in chunks:
+            ids = chunk[name]
+            if ids.isna().any() or not ids.str.fullmatch(_PLAIN_WHOLE).all():
+                return str
+    except Exception:  # noqa: BLE001 - the full read reports any problem of the file
+        return str
+    return "int64"
+
+
 def _read_csv(path: Path, raw: bytes, id_col: str | None,
-              missing_values: tuple[str, ...]) -> tuple[pd.DataFrame, list, tuple[int, ...]]:
-    text = _decode_csv(path, raw)
-    header, starts = _csv_records(path, text)
-    dtype = {name: str for name in header if id_col is not None and name.strip() == id_col}
+              missing_values: tuple[str, ...]) -> tuple[pd.DataFrame, list, np.ndarray | None]:
+    _check_csv_bytes(path, raw)
+    header, starts = _csv_records(path, raw)
+    names = [name for name in header if id_col is not None and name.strip() == id_col]
+    dtype = {names[0]: _id_dtype(raw, names[0])} if len(names) == 1 else {name: str for name in names}
     try:
         with warnings.catch_warnings():
             # expected here: mixed types in a column and parser notices (the checks report the values)
@@ -204,7 +309,7 @@ def _read_csv(path: Path, raw: bytes, id_col: str | None,
                                 skip_blank_lines=True, dtype=dtype or None)
     except Exception as err:  # noqa: BLE001 - any parser failure is a data problem
         raise DataError(f"{path}: cannot read the table as CSV: {err}") from err
-    lines = tuple(starts) if len(starts) == len(frame) else ()
+    lines = _compact_lines(starts) if len(starts) == len(frame) else None
     return frame, header, lines
 
 
