@@ -24,13 +24,15 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest
 
+# bench: figures, not tests (about 25 minutes on 2 CPUs; each script prints ratios against a
+# reference measured in the same run). The 10,000,000-unit run is by hand: see docs/performance.md.
 bench: $(STAMP)
 	$(BIN)/python benchmarks/randomization.py
 	$(BIN)/python benchmarks/sampler.py
 	$(BIN)/python benchmarks/engine_pass.py
 	$(BIN)/python benchmarks/floor.py
 	$(BIN)/python benchmarks/exact.py
-	$(BIN)/python benchmarks/scale.py
+	$(BIN)/python benchmarks/scale.py --units 20000 1000000
 	$(BIN)/python benchmarks/workers.py
 
 clean:
