@@ -13,6 +13,7 @@ from __future__ import annotations
 import logging
 import math
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -28,7 +29,7 @@ from report_kit.estimation.arms import (
 from report_kit.estimation.core import BLOCKED, CLUSTERED
 from report_kit.estimation.factorial import estimate_factorial
 from report_kit.estimation.roles import estimate_roles
-from report_kit.inference.arms import arm_multiplicity, contrast_joint_null, contrast_tests, omnibus_test
+from report_kit.inference.arms import ArmPass, arm_multiplicity, contrast_tests, omnibus_test
 from report_kit.inference.engine import ChunkMap
 from report_kit.inference.factorial import MAIN_EFFECT, main_effect_tests
 from report_kit.inference.multiplicity import multiplicity_table
@@ -175,8 +176,10 @@ def _adjusted(column: str, y, labels, X, kw: dict, names):
         return []
 
 
-def arm_tests(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> tuple[list[dict], list[dict]]:
+def arm_tests(study: Study, shared: SharedPass) -> tuple[list[dict], list[dict]]:
     """``tests`` and ``intervals`` rows: each contrast, one omnibus test per outcome, then factorial main effects.
+
+    The omnibus tests read the shared pass over the multi-arm draws (:func:`shared_pass`).
 
     With ``design.factors`` each outcome's main effects follow (rows with
     ``factor`` set, ``arm``/``reference`` None; :func:`main_effect_tests`).
@@ -196,8 +199,8 @@ def arm_tests(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None
         tests += [r.test_row() for r in results]
         intervals += [r.interval_row() for r in results]
     names = [o.column for o in spec.outcomes]
-    Y = np.column_stack([study.outcome(c) for c in names])
-    tests += [r.test_row() for r in omnibus_test(Y, source, outcomes=names, chunk_map=chunk_map)]
+    tests += [r.test_row() for r in omnibus_test(None, shared.source, outcomes=names,
+                                                 drawn=shared.run.omnibus(shared.outcomes))]
     if design.factors is not None:
         kw = _design_kw(study)
         for outcome in spec.outcomes:
@@ -211,29 +214,73 @@ def arm_tests(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None
     return tests, intervals
 
 
-def shared_contrast_nulls(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
-    """Per family whose outcomes all use ``mean_difference``: the contrasts on the shared multi-arm draws."""
+@dataclass(frozen=True)
+class SharedPass:
+    """The one pass over a study's multi-arm draws and the handles of what it holds (:func:`shared_pass`)."""
+
+    source: ArmSource
+    run: ArmPass
+    outcomes: int
+    lost: int | None
+    covariates: int | None
+    families: dict
+
+
+def lost_indicator(study: Study) -> np.ndarray:
+    """1 for a unit missing any outcome, else 0."""
+    lost = np.zeros(len(study.frame))
+    for outcome in study.spec.outcomes:
+        lost = np.maximum(lost, np.isnan(study.outcome(outcome.column)).astype(float))
+    return lost
+
+
+def shared_pass(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> SharedPass:
+    """ONE pass over the multi-arm draws for every statistic that uses the full mechanism.
+
+    The ``between_arms`` statistic of every outcome, of the missing-outcome
+    indicator (differential attrition, when some but not all units miss an
+    outcome) and of every baseline covariate (balance), and the contrasts of
+    each family whose outcomes all use ``mean_difference`` (Westfall–Young):
+    each chunk of draws is generated once and feeds them all
+    (:class:`report_kit.inference.arms.ArmPass`).
+    """
     spec = study.spec
     design = spec.design
+    shared = ArmPass(source)
+    names = [o.column for o in spec.outcomes]
+    outcomes = shared.add_omnibus(np.column_stack([study.outcome(c) for c in names]))
+    lost = lost_indicator(study)
+    lost_handle = shared.add_omnibus(lost) if lost.any() and not lost.all() else None
+    covariates = list(spec.analysis.covariates)
+    cov_handle = shared.add_omnibus(study.frame[covariates].to_numpy(dtype=float)) if covariates else None
     position = {arm: k for k, arm in enumerate(design.arms)}
     pairs = contrast_pairs(design.arms, design.contrasts)
     block = study.block if design.mechanism in BLOCKED else None
-    out = {}
+    families = {}
     for family in dict.fromkeys(o.family for o in spec.outcomes):
         members = [o for o in spec.outcomes if o.family == family]
         if any(o.statistic != "mean_difference" for o in members):
             continue
         Y = np.column_stack([study.outcome(o.column) for o in members])
         columns = [(j, position[a], position[r]) for j in range(len(members)) for a, r in pairs]
-        alternatives = [members[j].alternative for j, _, _ in columns]
-        observed, null = contrast_joint_null(Y, columns, source, alternatives=alternatives, block=block,
-                                             chunk_map=chunk_map)
         keys = [(members[j].column, a, r) for j in range(len(members)) for a, r in pairs]
-        out[family] = (keys, observed, null, source.method)
+        alternatives = [members[j].alternative for j, _, _ in columns]
+        families[family] = (shared.add_contrasts(Y, columns, block=block), keys, alternatives)
+    shared.run(chunk_map)
+    return SharedPass(source=source, run=shared, outcomes=outcomes, lost=lost_handle, covariates=cov_handle,
+                      families=families)
+
+
+def shared_contrast_nulls(shared: SharedPass) -> dict:
+    """Per family whose outcomes all use ``mean_difference``: the contrasts on the shared multi-arm draws."""
+    out = {}
+    for family, (handle, keys, alternatives) in shared.families.items():
+        observed, null = shared.run.contrasts(handle, alternatives)
+        out[family] = (keys, observed, null, shared.source.method)
     return out
 
 
-def arm_flow(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
+def arm_flow(study: Study, shared: SharedPass) -> dict:
     """Participant flow and attrition per arm, with the omnibus test of differential attrition.
 
     The attrition test applies the ``between_arms`` randomization test to the
@@ -249,26 +296,25 @@ def arm_flow(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None)
             seen = int((member & ~np.isnan(y)).sum())
             flow.append({"outcome": outcome.column, "arm": arm, "randomized": int(member.sum()),
                          "outcome_observed": seen, "lost": int(member.sum()) - seen, "analysed": seen})
-    lost = np.zeros(len(labels))
-    for outcome in spec.outcomes:
-        lost = np.maximum(lost, np.isnan(study.outcome(outcome.column)).astype(float))
+    lost = lost_indicator(study)
     rates = [{"arm": arm, "rate": _num(lost[labels == arm].mean())} for arm in spec.design.arms]
     test = None
-    if lost.any() and not lost.all():
-        (result,) = omnibus_test(lost, source, outcomes=["any outcome missing"], chunk_map=chunk_map)
+    if shared.lost is not None:
+        (result,) = omnibus_test(None, shared.source, outcomes=["any outcome missing"],
+                                 drawn=shared.run.omnibus(shared.lost))
         test = {k: result.test.to_dict()[k] for k in ("statistic", "observed", "p_value", "method", "draws",
                                                        "mc_std_error")}
     return {"flow": flow, "attrition": {"rates": rates, "test": test}}
 
 
-def arm_balance(study: Study, source: ArmSource, chunk_map: ChunkMap | None = None) -> dict:
+def arm_balance(study: Study, shared: SharedPass) -> dict:
     """Covariate means per arm and the omnibus randomization test of each covariate."""
     labels = arm_labels(study)
     covariates = list(study.spec.analysis.covariates)
     rows = []
     if covariates:
         X = study.frame[covariates].to_numpy(dtype=float)
-        tests = omnibus_test(X, source, outcomes=covariates, chunk_map=chunk_map)
+        tests = omnibus_test(None, shared.source, outcomes=covariates, drawn=shared.run.omnibus(shared.covariates))
         for j, name in enumerate(covariates):
             means = {}
             for arm in study.spec.design.arms:
@@ -366,11 +412,12 @@ def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | N
         row["role"] = role
     source = arm_source(study)
     log.info("randomization tests (%s, %d assignments)", source.method, source.draws)
-    tests, intervals = arm_tests(study, source, chunk_map)
+    shared = shared_pass(study, source, chunk_map)
+    tests, intervals = arm_tests(study, shared)
     log.info("balance, flow, attrition")
-    flow = arm_flow(study, source, chunk_map)
+    flow = arm_flow(study, shared)
     multiplicity = arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity,
-                                    joint=shared_contrast_nulls(study, source, chunk_map))
+                                    joint=shared_contrast_nulls(shared))
     return {
         "design": arm_design(study, source, assignment_check),
         "arms": arm_table(study),
@@ -379,7 +426,7 @@ def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | N
         "compliance": arm_compliance(study),
         "tests": tests,
         "intervals": intervals,
-        "balance": arm_balance(study, source, chunk_map),
+        "balance": arm_balance(study, shared),
         "flow": flow["flow"],
         "attrition": flow["attrition"],
         "multiplicity": multiplicity,

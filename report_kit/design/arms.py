@@ -105,27 +105,36 @@ class MultiArmMechanism:
                 groups[:, members] = np.asarray([row[s] for row in batch], dtype=np.int8)
             yield groups[:, self.unit_group]
 
-    def sample_chunks(self, draws: int, seed: int) -> Iterator[np.ndarray]:
-        """``draws`` random assignments: in each stratum the observed arm labels in a random order.
+    def chunk_rows(self) -> int:
+        """Draws per chunk: about four million cells, at most 1024 (fixed by the number of units alone)."""
+        return int(max(1, min(1024, _CHUNK_CELLS // max(self.n, 1))))
 
-        Each row draws uniform keys for all randomization units from
-        ``numpy.random.default_rng(seed)``; within a stratum, the unit with the
-        k-th smallest key gets the k-th label of the stratum's sorted labels.
-        Rows do not depend on the chunk size.
+    def sample_block(self, size: int, seed_sequence: np.random.SeedSequence) -> np.ndarray:
+        """``size`` random assignments as ``(size, n)`` ``int8`` arm codes, from one seed sequence.
+
+        In each stratum the observed arm labels of its randomization units are
+        put in a uniformly random order, row by row (``Generator.permuted``, a
+        Fisher–Yates shuffle of each row), with ``numpy.random.default_rng(seed_sequence)``;
+        every assignment with the observed arm sizes per stratum is equally likely.
         """
-        rng = np.random.default_rng(seed)
-        rows = max(1, _CHUNK_CELLS // max(self.n, 1))
-        sorted_arms = [np.sort(self.group_arm[members]) for members in self.strata]
-        for start in range(0, draws, rows):
-            size = min(rows, draws - start)
-            keys = rng.random((size, self.group_arm.size))
-            groups = np.empty((size, self.group_arm.size), dtype=np.int8)
-            for members, labels in zip(self.strata, sorted_arms):
-                order = np.argsort(keys[:, members], axis=1, kind="stable")
-                block = np.empty((size, members.size), dtype=np.int8)
-                np.put_along_axis(block, order, np.broadcast_to(labels, order.shape), axis=1)
-                groups[:, members] = block
-            yield groups[:, self.unit_group]
+        rng = np.random.default_rng(seed_sequence)
+        groups = np.empty((size, self.group_arm.size), dtype=np.int8)
+        for members in self.strata:
+            block = np.tile(np.sort(self.group_arm[members]).astype(np.int8), (size, 1))
+            groups[:, members] = rng.permuted(block, axis=1, out=block)
+        return groups[:, self.unit_group]
+
+    def sample_chunks(self, draws: int, seed: int) -> Iterator[np.ndarray]:
+        """``draws`` random assignments in chunks of :meth:`chunk_rows`.
+
+        Chunk ``i`` is :meth:`sample_block` with child ``i`` of
+        ``SeedSequence(seed)`` (``SeedSequence(seed, spawn_key=(i,))``), as in
+        the two-arm engine, so any chunk can be made on its own, in any process,
+        without the ones before it.
+        """
+        rows = self.chunk_rows()
+        for i, start in enumerate(range(0, draws, rows)):
+            yield self.sample_block(min(rows, draws - start), np.random.SeedSequence(seed, spawn_key=(i,)))
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)

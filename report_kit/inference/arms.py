@@ -25,13 +25,13 @@ import numpy as np
 from report_kit.design.arms import ArmSource, MultiArmMechanism
 from report_kit.design.mechanism import mechanism_from_arrays
 from report_kit.errors import ReportKitWarning
-from report_kit.inference.engine import ChunkMap, StoredDraws, chunk_rows, drawn_statistics, run_pass
+from report_kit.inference.engine import ChunkMap, StoredDraws, _Draws, chunk_rows, observed_statistics, run_pass
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics, null_centre
 from report_kit.inference.multiplicity import benjamini_hochberg, holm, westfall_young
 from report_kit.inference.randomization import TestResult, invert_test, randomization_test
 
-__all__ = ["OMNIBUS", "ArmTest", "arm_draws", "arm_multiplicity", "between_arms", "contrast_joint_null",
-           "contrast_tests", "omnibus_null", "omnibus_test"]
+__all__ = ["OMNIBUS", "ArmDraws", "ArmPass", "ArmTest", "arm_draws", "arm_multiplicity", "between_arms", "contrast_joint_null",
+           "contrast_tests", "omnibus_null", "omnibus_statistic", "omnibus_test"]
 
 OMNIBUS = "between_arms"
 
@@ -75,6 +75,8 @@ def between_arms(y, assignments, n_arms: int) -> np.ndarray:
     if a.shape[1] != y.size:
         raise ValueError(f"`assignments` must have {y.size} columns; got {a.shape[1]}")
     seen = ~np.isnan(y)
+    if y.size >= _BINCOUNT_UNITS:
+        return _between_arms_by_row(y, seen, a, int(n_arms))
     yo, a = y[seen], a[:, seen]
     total = yo.sum()
     stat = np.full(a.shape[0], -total * total / max(yo.size, 1))
@@ -87,49 +89,176 @@ def between_arms(y, assignments, n_arms: int) -> np.ndarray:
     return stat
 
 
-def arm_draws(source: ArmSource) -> StoredDraws:
-    """The multi-arm assignments of ``source`` as the engine's draws (arm codes, chunks of :func:`chunk_rows`).
+#: From this many units on, :func:`between_arms` sums each row's arms with ``bincount`` (no
+#: row-by-unit temporaries); below it, one vectorised product per arm over all rows is faster.
+_BINCOUNT_UNITS = 5000
 
-    Every multi-arm procedure passes over these with
+
+def _between_arms_by_row(y: np.ndarray, seen: np.ndarray, a: np.ndarray, n_arms: int) -> np.ndarray:
+    """:func:`between_arms` row by row: arm sums and observed counts by ``bincount`` (large designs)."""
+    yo = np.where(seen, y, 0.0)
+    weight = seen.astype(float)
+    total = y[seen].sum()
+    stat = np.full(a.shape[0], -total * total / max(int(seen.sum()), 1))
+    for r in range(a.shape[0]):
+        codes = a[r].astype(np.intp)
+        sums = np.bincount(codes, weights=yo, minlength=n_arms)[:n_arms]
+        sizes = np.bincount(codes, weights=weight, minlength=n_arms)[:n_arms]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            stat[r] += np.where(sizes > 0, sums * sums / np.maximum(sizes, 1), 0.0).sum()
+    return stat
+
+
+class ArmDraws(_Draws):
+    """Monte Carlo multi-arm assignments, generated chunk by chunk on demand (never all held at once).
+
+    Chunk ``i`` is ``mechanism.sample_block(rows, SeedSequence(seed, spawn_key=(i,)))``
+    with ``rows = mechanism.chunk_rows()``: the chunks of
+    :meth:`report_kit.design.arms.MultiArmMechanism.sample_chunks`, made by
+    whichever process runs the chunk.
+    """
+
+    def __init__(self, source: ArmSource):
+        self.mechanism: MultiArmMechanism = source.mechanism
+        self.method, self.draws, self.seed = source.method, int(source.draws), int(source.seed)
+        self.n = self.mechanism.n
+        self.rows = self.mechanism.chunk_rows()
+
+    def chunk(self, i: int) -> tuple[np.ndarray, np.ndarray | None]:
+        start = i * self.rows
+        size = min(self.draws, start + self.rows) - start
+        return self.mechanism.sample_block(size, np.random.SeedSequence(self.seed, spawn_key=(i,))), None
+
+
+def arm_draws(source: ArmSource) -> _Draws:
+    """The multi-arm assignments of ``source`` as the engine's draws.
+
+    Monte Carlo: :class:`ArmDraws`, generated per chunk when a pass needs it
+    (memory does not grow with the number of draws). Exact: every assignment
+    (at most ``analysis.max_exact`` of them) listed once and kept, in chunks of
+    :func:`chunk_rows`. Every multi-arm procedure passes over these with
     :func:`report_kit.inference.engine.run_pass`, so the chunk seam
     (``chunk_map``) and the counting rules of :mod:`report_kit.inference.pvalues`
-    are the engine's; the rows are re-cut into chunks of a size fixed by the
-    number of units, so results do not depend on how they were generated.
+    are the engine's.
     """
     mech: MultiArmMechanism = source.mechanism
+    if source.method != "exact":
+        return ArmDraws(source)
     z = np.concatenate([np.asarray(c, dtype=np.uint8) for c in source.chunks()])
     rows = chunk_rows(mech.n)
     return StoredDraws(source.method, mech.n, rows, [(z[s:s + rows], None) for s in range(0, z.shape[0], rows)])
 
 
-def omnibus_null(Y, source: ArmSource, *, chunk_map: ChunkMap | None = None) -> DrawnStatistics:
-    """Observed ``(m,)`` and null ``(B, m)`` ``between_arms`` statistics of the columns of ``Y`` on ``source``.
-
-    One pass of the engine (:func:`report_kit.inference.engine.drawn_statistics`)
-    over :func:`arm_draws`; larger is more extreme.
-    """
+def omnibus_statistic(Y, n_arms: int):
+    """The engine statistic ``block -> (rows, m)``: :func:`between_arms` of each column of ``Y``."""
     Y = np.asarray(Y, dtype=float)
     if Y.ndim == 1:
         Y = Y[:, None]
-    mech: MultiArmMechanism = source.mechanism
 
     def statistic(block: np.ndarray) -> np.ndarray:
-        return np.column_stack([between_arms(Y[:, j], block, mech.n_arms) for j in range(Y.shape[1])])
+        return np.column_stack([between_arms(Y[:, j], block, n_arms) for j in range(Y.shape[1])])
 
-    (drawn,) = drawn_statistics(arm_draws(source), [statistic], mech.arm, chunk_map=chunk_map)
-    return drawn
+    return statistic
+
+
+class ArmPass:
+    """Every statistic a multi-arm study needs, on ONE pass over its draws (each chunk generated once).
+
+    Register with :meth:`add_omnibus` (the between-arm sums of squares of the
+    columns of a matrix: outcomes, covariates, a missing-outcome indicator) and
+    :meth:`add_contrasts` (contrast differences for Westfall–Young), call
+    :meth:`run` once, then read each result back with its handle. The pass is
+    :func:`report_kit.inference.engine.run_pass` over :func:`arm_draws`, so its
+    chunk seam and counting rules are the engine's; results do not depend on
+    which statistics share the pass.
+    """
+
+    def __init__(self, source: ArmSource):
+        self.source = source
+        self._statistics: list = []
+        self._observed: list[np.ndarray] = []
+        self._nulls: list[np.ndarray] | None = None
+        self._weights: np.ndarray | None = None
+
+    def _add(self, statistic) -> int:
+        if self._nulls is not None:
+            raise ValueError("this pass has run; register every statistic before `run`")
+        self._statistics.append(statistic)
+        (observed,) = observed_statistics([statistic], np.asarray(self.source.mechanism.arm, dtype=float), 1)
+        self._observed.append(observed)
+        return len(self._statistics) - 1
+
+    def add_omnibus(self, Y) -> int:
+        """Register :func:`between_arms` of each column of ``Y``; returns the handle for :meth:`omnibus`."""
+        return self._add(omnibus_statistic(Y, self.source.mechanism.n_arms))
+
+    def add_contrasts(self, Y, pairs, *, block=None) -> int:
+        """Register the contrast differences of :func:`contrast_joint_null`; returns the handle for :meth:`contrasts`."""
+        return self._add(_contrast_statistic(np.asarray(Y, dtype=float), pairs, self.source.mechanism, block))
+
+    def run(self, chunk_map: ChunkMap | None = None) -> ArmPass:
+        """The one pass over the draws (once; returns ``self``)."""
+        if self._nulls is None:
+            if self._statistics:
+                self._nulls, self._weights = run_pass(arm_draws(self.source), self._statistics,
+                                                      chunk_map=chunk_map)
+            else:
+                self._nulls = []
+        return self
+
+    def _null(self, handle: int) -> np.ndarray:
+        if self._nulls is None:
+            raise ValueError("call `run` before reading a result")
+        return self._nulls[handle]
+
+    def omnibus(self, handle: int) -> DrawnStatistics:
+        """Observed ``(m,)`` and null ``(B, m)`` between-arm statistics (larger is more extreme)."""
+        return DrawnStatistics(observed=self._observed[handle], null=self._null(handle), method=self.source.method,
+                               weights=self._weights)
+
+    def contrasts(self, handle: int, alternatives) -> tuple[np.ndarray, np.ndarray]:
+        """Observed ``(m,)`` and null ``(B, m)`` contrast statistics, oriented so that larger is more extreme.
+
+        ``greater`` keeps a column, ``less`` negates it, ``two-sided`` takes the
+        distance from the null centre of the engine
+        (:func:`report_kit.inference.pvalues.null_centre`).
+        """
+        observed_all, drawn = self._observed[handle], self._null(handle)
+        observed, null = [], []
+        for j, alt in enumerate(alternatives):
+            t, draws = observed_all[j], drawn[:, j]
+            if alt == "less":
+                t, draws = -t, -draws
+            elif alt == "two-sided":
+                centre = null_centre(t, draws[np.isfinite(draws)], None, self.source.method)
+                t, draws = abs(t - centre), np.abs(draws - centre)
+            observed.append(t)
+            null.append(draws)
+        return np.asarray(observed), np.column_stack(null)
+
+
+def omnibus_null(Y, source: ArmSource, *, chunk_map: ChunkMap | None = None) -> DrawnStatistics:
+    """Observed ``(m,)`` and null ``(B, m)`` ``between_arms`` statistics of the columns of ``Y`` on ``source``.
+
+    A pass of its own; a study shares one pass among all its statistics with :class:`ArmPass`.
+    """
+    shared = ArmPass(source)
+    handle = shared.add_omnibus(Y)
+    return shared.run(chunk_map).omnibus(handle)
 
 
 def omnibus_test(Y, source: ArmSource, *, outcomes, rtol: float = DEFAULT_RTOL,
-                 chunk_map: ChunkMap | None = None) -> list[ArmTest]:
+                 chunk_map: ChunkMap | None = None, drawn: DrawnStatistics | None = None) -> list[ArmTest]:
     """Randomization test of the sharp null that no arm changes any outcome, per column of ``Y``.
 
     Upper-tailed on :func:`between_arms` under the multi-arm mechanism of
     ``source``; the p-value rule (exact share, or Phipson & Smyth 2010 for
     draws), the tie rule and the Monte Carlo standard error are the engine's
-    (:func:`report_kit.inference.pvalues.tail_p_values`).
+    (:func:`report_kit.inference.pvalues.tail_p_values`). ``drawn``: the
+    statistics from a shared :class:`ArmPass` (``ArmPass.omnibus``) instead of a
+    pass of its own (``Y`` is then not used and may be None).
     """
-    dist = omnibus_null(Y, source, chunk_map=chunk_map)
+    dist = drawn if drawn is not None else omnibus_null(Y, source, chunk_map=chunk_map)
     p, se, defined = dist.p_values(rtol)
     out = []
     for j, name in enumerate(outcomes):
@@ -237,21 +366,8 @@ def _contrast_statistics(y: np.ndarray, assignments: np.ndarray, a: int, r: int,
     return total
 
 
-def contrast_joint_null(Y, pairs, source: ArmSource, *, alternatives, block=None,
-                        chunk_map: ChunkMap | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Observed ``(m,)`` and null ``(B, m)`` contrast statistics on the shared multi-arm draws, oriented.
-
-    Column ``j`` is the difference in means (block-weighted, with weights the
-    blocks' shares of the two arms' units) of contrast ``pairs[j] = (column,
-    arm code, reference code)`` of ``Y``, under every assignment of ``source``
-    (the sharp null that no arm changes any outcome). Oriented so that larger
-    is more extreme: ``greater`` keeps it, ``less`` negates it, ``two-sided``
-    takes the distance from the null centre of the engine
-    (:func:`report_kit.inference.pvalues.null_centre`). Input of Westfall–Young.
-    The draws come from one pass of :func:`report_kit.inference.engine.run_pass`.
-    """
-    Y = np.asarray(Y, dtype=float)
-    mech = source.mechanism
+def _contrast_statistic(Y: np.ndarray, pairs, mech: MultiArmMechanism, block):
+    """The engine statistic of :func:`contrast_joint_null`: one column per ``(column, arm code, reference code)``."""
     codes = None if block is None else np.unique(np.asarray(block), return_inverse=True)[1].ravel()
     weights = []
     for _, a, r in pairs:
@@ -265,16 +381,20 @@ def contrast_joint_null(Y, pairs, source: ArmSource, *, alternatives, block=None
         return np.column_stack([_contrast_statistics(Y[:, col], block_z, a, r, codes, w)
                                 for (col, a, r), w in zip(pairs, weights)])
 
-    (drawn,), _ = run_pass(arm_draws(source), [statistic], chunk_map=chunk_map)
-    observed_all = statistic(mech.arm[None, :].astype(float))[0]
-    observed, null = [], []
-    for j, alt in enumerate(alternatives):
-        t, draws = observed_all[j], drawn[:, j]
-        if alt == "less":
-            t, draws = -t, -draws
-        elif alt == "two-sided":
-            centre = null_centre(t, draws[np.isfinite(draws)], None, source.method)
-            t, draws = abs(t - centre), np.abs(draws - centre)
-        observed.append(t)
-        null.append(draws)
-    return np.asarray(observed), np.column_stack(null)
+    return statistic
+
+
+def contrast_joint_null(Y, pairs, source: ArmSource, *, alternatives, block=None,
+                        chunk_map: ChunkMap | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Observed ``(m,)`` and null ``(B, m)`` contrast statistics on the shared multi-arm draws, oriented.
+
+    Column ``j`` is the difference in means (block-weighted, with weights the
+    blocks' shares of the two arms' units) of contrast ``pairs[j] = (column,
+    arm code, reference code)`` of ``Y``, under every assignment of ``source``
+    (the sharp null that no arm changes any outcome). Oriented so that larger
+    is more extreme (:meth:`ArmPass.contrasts`). Input of Westfall–Young. A
+    pass of its own; a study shares one with :class:`ArmPass`.
+    """
+    shared = ArmPass(source)
+    handle = shared.add_contrasts(Y, pairs, block=block)
+    return shared.run(chunk_map).contrasts(handle, alternatives)

@@ -154,7 +154,6 @@ def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
         raise UsageError("--workers and --scheduler need Dask: pip install 'report-kit[dask]'") from err
     with contextlib.ExitStack() as stack:
         if address is None:
-            stack.enter_context(_workers_start_like_this_process())
             # dashboard_address ":0": any free port; the default 8787 may be held by another
             # cluster on this machine, and Dask then warns (an error under our test settings).
             cluster = stack.enter_context(LocalCluster(
@@ -169,27 +168,6 @@ def dask_chunk_map(address: str | None = None, workers: int | None = None, *,
         # A local cluster's scheduler lives in this process: data scattered through it would
         # stay here as a second copy of the work object, so it goes straight to the workers.
         yield _DaskChunkMap(client, on_chunk, direct=True if address is None else None)
-
-
-#: Environment variables that fix a BLAS library's thread count when it loads. Dask's nanny sets
-#: them to 1 in every worker it starts; OpenBLAS then takes other code paths than in a process
-#: that loaded it with its default, and matrix products differ in the last bits. Workers of a
-#: local cluster keep this process's values instead (the engine limits BLAS to one thread per
-#: chunk at run time either way), so their null statistics are bit for bit this process's.
-BLAS_THREAD_VARIABLES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
-
-
-def _workers_start_like_this_process():
-    """A Dask configuration under which the nanny leaves the BLAS thread variables as they are here."""
-    import dask
-
-    environ = dict(dask.config.get("distributed.nanny.pre-spawn-environ", default={}) or {})
-    for name in BLAS_THREAD_VARIABLES:
-        environ.pop(name, None)
-        if name in os.environ:
-            environ[name] = os.environ[name]
-    # dask.config.set assigns the whole mapping at this key, so the names removed above are not set.
-    return dask.config.set({"distributed.nanny.pre-spawn-environ": environ})
 
 
 #: Batches of tasks per worker thread and pass: enough to balance the load, few enough that

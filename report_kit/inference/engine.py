@@ -32,11 +32,10 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from threadpoolctl import ThreadpoolController
 
 from report_kit.design.mechanism import AssignmentSource, Mechanism
 from report_kit.errors import DataError
-from report_kit.inference.kernels import _KERNELS, _analytic_centre
+from report_kit.inference.kernels import _KERNELS, _analytic_centre, one_blas_thread
 from report_kit.inference.pvalues import DEFAULT_RTOL, DrawnStatistics, null_centre, tail_p_values, tie_tolerance
 from report_kit.validate import ALTERNATIVES, METHODS, STATISTICS, Record, check_choice, finite_number
 from report_kit.validate import finite_or_none as _num
@@ -275,16 +274,6 @@ def _given_weights(weights, chunk: np.ndarray, method: str, i: int) -> np.ndarra
 
 
 
-_CONTROLLER: list[ThreadpoolController] = []
-
-
-def _blas_controller() -> ThreadpoolController:
-    """One controller per process: finding the loaded BLAS libraries reads /proc, so it is done once, not per chunk."""
-    if not _CONTROLLER:
-        _CONTROLLER.append(ThreadpoolController())
-    return _CONTROLLER[0]
-
-
 class _PassWork:
     """``work(task)``: build the task's chunks and evaluate every statistic on them.
 
@@ -301,7 +290,7 @@ class _PassWork:
         self.draws, self.statistics = draws, tuple(statistics)
 
     def __call__(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
-        with _blas_controller().limit(limits=1, user_api="blas"):
+        with one_blas_thread():
             return self._compute(task)
 
     def _compute(self, task: ChunkTask) -> tuple[tuple[np.ndarray, ...], np.ndarray | None]:
@@ -329,7 +318,8 @@ def observed_statistics(statistics: Sequence[Statistic], z: np.ndarray, rows: in
     """
     block = np.zeros((rows, z.size))
     block[0] = z
-    return [np.asarray(s(block)[0], dtype=np.float64) for s in statistics]
+    with one_blas_thread():
+        return [np.asarray(s(block)[0], dtype=np.float64) for s in statistics]
 
 
 def run_pass(draws: _Draws, statistics: Sequence[Statistic], *, chunk_map: ChunkMap | None = None,

@@ -11,15 +11,53 @@ form. Used by :mod:`report_kit.inference.engine`; definitions also in
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import contextlib
+import threading
+from collections.abc import Callable, Iterator
 
 import numpy as np
 from scipy import sparse
 from scipy.stats import rankdata
+from threadpoolctl import ThreadpoolController
 
 from report_kit.design.mechanism import Mechanism
 
 Kernel = Callable[[np.ndarray], np.ndarray]
+
+
+# =========================================================================== BLAS on one thread
+
+_BLAS_LOCK = threading.Lock()
+_BLAS_STATE: dict = {"controller": None, "users": 0, "limiter": None}
+
+
+@contextlib.contextmanager
+def one_blas_thread() -> Iterator[None]:
+    """Run the body with BLAS on one thread; the process's own setting comes back when the last user leaves.
+
+    Every matrix product of the engine (the draws' sums, the kernels' totals)
+    runs inside it, so it gets the same bits in any process whatever BLAS
+    thread count the process started with (a product of a large matrix on two
+    BLAS threads sums in another order). Threads of one process share the
+    limit: the first to enter sets it, the last to leave restores it, so
+    concurrent chunks (a Dask cluster of threads) never leave the process at a
+    changed setting. The controller that finds the loaded BLAS libraries
+    (reading /proc) is made once per process.
+    """
+    with _BLAS_LOCK:
+        if _BLAS_STATE["controller"] is None:
+            _BLAS_STATE["controller"] = ThreadpoolController()
+        if _BLAS_STATE["users"] == 0:
+            _BLAS_STATE["limiter"] = _BLAS_STATE["controller"].limit(limits=1, user_api="blas")
+        _BLAS_STATE["users"] += 1
+    try:
+        yield
+    finally:
+        with _BLAS_LOCK:
+            _BLAS_STATE["users"] -= 1
+            if _BLAS_STATE["users"] == 0:
+                _BLAS_STATE["limiter"].restore_original_limits()
+                _BLAS_STATE["limiter"] = None
 
 
 # =========================================================================== statistics
@@ -42,7 +80,8 @@ class _BlockSums:
             rows = np.repeat(np.arange(n), c)
             cols = (mechanism.unit_block[:, None] * c + np.arange(c)[None, :]).ravel()
             self.matrix = sparse.csr_array((x.ravel(), (rows, cols)), shape=(n, self.blocks * c))
-        self.totals = self(np.ones((1, x.shape[0])))[0]
+        with one_blas_thread():
+            self.totals = self(np.ones((1, x.shape[0])))[0]
 
     def __call__(self, zf: np.ndarray) -> np.ndarray:
         out = zf @ self.matrix

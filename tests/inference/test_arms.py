@@ -31,6 +31,25 @@ def test_between_arms_matches_f_oneway():
     assert between_arms(y, arm, 4)[0] == pytest.approx(ssb, rel=1e-10)
 
 
+def test_between_arms_of_a_large_design_matches_f_oneway_row_by_row():
+    # Reference: scipy.stats.f_oneway on each row's arms, observed units only (the large-design path
+    # sums each row's arms with bincount; the small-design path is checked above).
+    rng = np.random.default_rng(12)
+    n = 7000
+    y = rng.normal(size=n)
+    y[rng.random(n) < 0.05] = np.nan
+    rows = np.stack([rng.permutation(np.arange(n) % 3) for _ in range(3)])
+    got = between_arms(y, rows, 3)
+    for r, row in enumerate(rows):
+        seen = ~np.isnan(y)
+        groups = [y[seen & (row == k)] for k in range(3)]
+        f = stats.f_oneway(*groups).statistic
+        yo = y[seen]
+        sst = ((yo - yo.mean()) ** 2).sum()
+        ssb = f * 2 * sst / ((yo.size - 3) + f * 2)
+        assert got[r] == pytest.approx(ssb, rel=1e-10)
+
+
 def test_between_arms_on_ranks_is_kruskal_h():
     # Reference: scipy.stats.kruskal; without ties H = 12 / (N (N+1)) * sum n_k (Rbar_k - Rbar)^2.
     y, arm = data(seed=4, sizes=(6, 5, 7))
@@ -202,3 +221,56 @@ def test_log10_count_and_count_text():
     exact = math.factorial(90) // math.factorial(30) ** 3
     assert big.log10_count() == pytest.approx(math.log10(exact)) and big.count_text() is None
     assert ArmSource.choose(big, max_exact=10**6, draws=50, seed=1).method == "monte_carlo"
+
+
+def test_multi_arm_draws_keep_arm_sizes_and_are_uniform():
+    # Reference: scipy.stats.chisquare against the uniform law on all 6!/(2!2!2!) = 90 assignments
+    # (Monte Carlo draws of the full mechanism must make every assignment equally likely).
+    from report_kit.inference.arms import ArmDraws
+
+    mech = multi_arm_mechanism("complete", np.array([0, 0, 1, 1, 2, 2]), n_arms=3)
+    source = ArmSource.choose(mech, max_exact=0, draws=18000, seed=42)
+    draws = ArmDraws(source)
+    rows = np.vstack([draws.chunk(i)[0] for i in range(draws.n_chunks)])
+    assert rows.shape == (18000, 6)
+    assert (np.sort(rows, axis=1) == [0, 0, 1, 1, 2, 2]).all()            # arm sizes kept in every draw
+    _, counts = np.unique(rows, axis=0, return_counts=True)
+    assert counts.size == 90
+    assert stats.chisquare(counts).pvalue > 1e-3
+    # any chunk can be made on its own, in any order, and equals the source's own chunks
+    assert np.array_equal(draws.chunk(3)[0], list(source.chunks())[3])
+
+
+def test_blocked_multi_arm_draws_stay_within_blocks():
+    from report_kit.inference.arms import ArmDraws
+
+    arm = np.array([0, 1, 2, 0, 1, 2, 2, 0, 1])
+    block = np.array(["a", "a", "a", "b", "b", "b", "c", "c", "c"])
+    mech = multi_arm_mechanism("blocked", arm, n_arms=3, block=block)
+    draws = ArmDraws(ArmSource.choose(mech, max_exact=0, draws=500, seed=1))
+    rows = np.vstack([draws.chunk(i)[0] for i in range(draws.n_chunks)])
+    for b in "abc":
+        assert (np.sort(rows[:, block == b], axis=1) == [0, 1, 2]).all()
+
+
+def test_one_shared_pass_equals_separate_passes():
+    # The statistics that share a pass get exactly what a pass of their own gives.
+    from report_kit.inference.arms import ArmPass, contrast_joint_null, omnibus_null
+
+    y, arm = data(seed=9, sizes=(9, 8, 10))
+    mech = multi_arm_mechanism("complete", arm, n_arms=3)
+    source = ArmSource.choose(mech, max_exact=0, draws=700, seed=5)
+    x = np.random.default_rng(2).normal(size=y.size)
+    shared = ArmPass(source)
+    h_y, h_x = shared.add_omnibus(y), shared.add_omnibus(x)
+    h_c = shared.add_contrasts(y[:, None], [(0, 1, 0), (0, 2, 0)])
+    shared.run()
+    for handle, column in ((h_y, y), (h_x, x)):
+        alone = omnibus_null(column, source)
+        assert np.array_equal(shared.omnibus(handle).null, alone.null)
+        assert np.array_equal(shared.omnibus(handle).observed, alone.observed)
+    obs, null = contrast_joint_null(y[:, None], [(0, 1, 0), (0, 2, 0)], source, alternatives=["two-sided"] * 2)
+    got_obs, got_null = shared.contrasts(h_c, ["two-sided"] * 2)
+    assert np.array_equal(obs, got_obs) and np.array_equal(null, got_null)
+    with pytest.raises(ValueError, match="register every statistic before"):
+        shared.add_omnibus(x)
