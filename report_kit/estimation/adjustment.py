@@ -36,6 +36,13 @@ from report_kit.validate import mean_impute_with_indicators
 
 __all__ = ["MISSING_COVARIATES", "estimate_adjusted"]
 
+#: Above this many regressor cells (units x dense regressors; 2,000,000 is 16 MB of
+#: float64) the HC2 fit runs over row blocks of ``_BLOCK_ROWS`` units
+#: (:func:`_blockwise_hc2_fits`), so that it never holds n x q temporaries; at or below it the whole-matrix fit
+#: keeps its results to the last bit. Cluster designs (CR2) always use the whole matrix.
+_BLOCKWISE_CELLS = 2_000_000
+_BLOCK_ROWS = 65_536
+
 
 # ---------------------------------------------------------------------------
 # Public: covariate adjustment (Lin 2013)
@@ -100,7 +107,7 @@ def estimate_adjusted(y, z, X, *, mechanism: str, block=None, cluster=None,
         Xs = _singleton_indicators_out(mean_impute_with_indicators(Xs, names, user="the adjustment"),
                                        Xs.shape[1] - int(np.isnan(Xs).all(axis=0).sum()), (s.z, ~s.z))
     _check_units_per_covariate(Xs, ((s.z, "treated"), (~s.z, "control")), s.cluster)
-    fit = _lin_fit(s, Xs)
+    fit = _lin_fit(s, Xs)   # Xs is a copy (fancy indexing); the fit centres it in place
     return _to_estimate(fit, design.alpha, estimand="ATE", estimator="adjusted",
                         n_missing=s.n_missing)
 
@@ -148,6 +155,32 @@ def _covariates(X, n: int) -> np.ndarray:
 
 
 @dataclass(frozen=True, kw_only=True)
+class _Regressors:
+    """Lin's dense regressors, built on demand for a slice of rows (``[:]`` for all).
+
+    Interacted: ``[z xc, (1 - z) xc]``; additive: ``[z, xc, z xc]``. Holding
+    ``z`` and ``xc`` instead of the matrix keeps a large fit from storing all
+    ``n x q`` regressors; ``W[:]`` equals the matrix built in one go.
+    """
+
+    z: np.ndarray                # bool, (n,)
+    xc: np.ndarray               # centred covariates, (n, k)
+    interacted: bool
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        k = self.xc.shape[1]
+        return self.z.size, (2 * k if self.interacted else 2 * k + 1)
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        zf = self.z[rows].astype(float)[:, None]
+        x = self.xc[rows]
+        if self.interacted:
+            return np.column_stack([zf * x, (1.0 - zf) * x])
+        return np.column_stack([zf, x, zf * x])
+
+
+@dataclass(frozen=True, kw_only=True)
 class _LinLayout:
     """Lin's regression as absorbed groups plus a few dense regressors.
 
@@ -158,7 +191,7 @@ class _LinLayout:
     """
 
     groups: np.ndarray           # int codes 0..G-1, one per unit
-    W: np.ndarray                # (n, q) dense regressors
+    W: np.ndarray | _Regressors  # (n, q) dense regressors (``W[rows]`` gives a row block)
     targets: tuple[tuple[np.ndarray, np.ndarray], ...]   # (c_groups (G,), c_w (q,)) per target
     required: int = 0            # leading columns of W that must stay (the treatment indicators)
 
@@ -185,7 +218,8 @@ def _lin_fit(s: _Sample, X: np.ndarray) -> _Fit:
     """
     if not s.z.any() or s.z.all():
         return _undefined_fit("lin_cr2" if s.cluster is not None else "lin_hc2", s)
-    layout = _lin_layout(s, _drop_constant(X))
+    # X is the caller's copy; a design large enough for the block-wise fit centres it in place
+    layout = _lin_layout(s, _drop_constant(X, in_place=2 * X.size > _BLOCKWISE_CELLS))
     (fit,) = _layout_fits(s.y, layout, cluster=s.cluster, pos=s.pos,
                           counts=((int(s.z.sum()), int((~s.z).sum())),),
                           methods=("lin_hc2", "lin_cr2"))
@@ -203,15 +237,17 @@ def _layout_fits(y: np.ndarray, layout: _LinLayout, *, cluster: np.ndarray | Non
     without and with clusters.
     """
     n = y.size
+    if cluster is None and n * layout.W.shape[1] > _BLOCKWISE_CELLS:
+        return _blockwise_hc2_fits(y, layout, pos=pos, counts=counts, method=methods[0])
+    W = layout.W[:]
     sizes = np.bincount(layout.groups).astype(float)
-    w_mean = _group_means(layout.W, layout.groups, sizes)
-    kept = _independent_columns(layout.W, layout.W - w_mean[layout.groups], layout.required)
+    w_mean = _group_means(W, layout.groups, sizes)
+    kept = _independent_columns(W, W - w_mean[layout.groups], layout.required)
     w_mean = w_mean[:, kept]
-    w_dm = layout.W[:, kept] - w_mean[layout.groups]
+    w_dm = W[:, kept] - w_mean[layout.groups]
+    del W
     n_par = sizes.size + kept.size
-    if n <= n_par:
-        raise DesignError(f"the adjusted regression has {n_par} coefficients but only {n} "
-                          "units; use fewer covariates")
+    _check_parameters(n, n_par)
     y_mean = _group_means(y[:, None], layout.groups, sizes)[:, 0]
     qmat, r_mat = np.linalg.qr(w_dm)
     r_inv = linalg.solve_triangular(r_mat, np.eye(kept.size))
@@ -240,37 +276,151 @@ def _layout_fits(y: np.ndarray, layout: _LinLayout, *, cluster: np.ndarray | Non
     return fits
 
 
-def _drop_constant(X: np.ndarray) -> np.ndarray:
+def _blockwise_hc2_fits(y: np.ndarray, layout: _LinLayout, *, pos: np.ndarray, counts,
+                        method: str) -> list[_Fit]:
+    """:func:`_layout_fits` without clusters, over row blocks: no n x q temporaries.
+
+    The same regression and HC2 contributions in three passes over blocks of
+    ``_BLOCK_ROWS`` rows: (1) group means of ``W`` and ``y``; (2) the R factor
+    of the demeaned ``[W~ y~]`` by a tall-skinny QR (TSQR: the R of the
+    stacked ``[R_previous; block]``, Demmel et al. 2012), whose last column
+    holds ``Q'y``, so the coefficients come from triangular solves as in a
+    whole-matrix QR; the regressors kept (:func:`_independent_columns`) are
+    chosen on R, which has the columns' inner products of W~; (3) per block,
+    ``Q = W~ R^-1``, leverages ``h_i = 1/n_group + ||q_i||^2``, residuals and
+    contributions, written into one n-vector per target.
+    """
+    n, q = y.size, layout.W.shape[1]
+    groups = layout.groups
+    sizes = np.bincount(groups).astype(float)
+    w_mean, y_mean, raw_norm = _blockwise_means(y, layout.W, groups, sizes)
+    r_aug = np.zeros((0, q + 1))
+    for rows in _row_blocks(n):
+        g = groups[rows]
+        block = np.empty((g.size, q + 1))
+        np.subtract(layout.W[rows], w_mean[g], out=block[:, :q])
+        np.subtract(y[rows], y_mean[g], out=block[:, q])
+        r_aug = np.linalg.qr(np.vstack([r_aug, block]), mode="r")
+    kept = _independent_columns(raw_norm[None, :], r_aug[:, :q], layout.required)
+    w_mean = w_mean[:, kept]
+    _check_parameters(n, sizes.size + kept.size)
+    r_kept = np.linalg.qr(r_aug[:, np.append(kept, q)], mode="r")
+    r_mat, qy = r_kept[:kept.size, :kept.size], r_kept[:kept.size, kept.size]
+    r_inv = linalg.solve_triangular(r_mat, np.eye(kept.size))
+    beta = r_inv @ qy
+    vs = [c_w[kept] - c_groups @ w_mean for c_groups, c_w in layout.targets]
+    directions = np.column_stack([r_inv @ (r_inv.T @ v) for v in vs])   # (k, targets)
+    unit_weight = np.column_stack([c_groups / sizes for c_groups, _ in layout.targets])
+    contrib = np.empty((len(vs), n))
+    at_one = 0
+    for rows in _row_blocks(n):
+        g = groups[rows]
+        w_dm = layout.W[rows][:, kept] - w_mean[g]
+        lev = 1.0 / sizes[g] + np.sum((w_dm @ r_inv) ** 2, axis=1)
+        resid = y[rows] - y_mean[g] - w_dm @ beta
+        one = lev > 1.0 - 1e-10
+        at_one += int(one.sum())
+        scale = resid / np.sqrt(np.where(one, 1.0, 1.0 - lev))
+        contrib[:, rows] = ((unit_weight[g] + w_dm @ directions) * scale[:, None]).T
+    if at_one:
+        raise DesignError(_leverage_one_message(at_one))
+    keys = _keys(_UNIT, pos)
+    df = float(n - sizes.size - kept.size)
+    fits = []
+    for (c_groups, _), v, c, (n_treated, n_control) in zip(layout.targets, vs, contrib, counts):
+        fits.append(_Fit(estimate=float(c_groups @ y_mean + v @ beta), contrib=c, keys=keys,
+                         components=((float(c @ c), df),), n_treated=n_treated,
+                         n_control=n_control, method=method, variance_rule="hc2", se_ok=True))
+    if df < 1:
+        _warn(f"the adjusted estimate has {df:g} degrees of freedom; no interval is reported")
+    return fits
+
+
+def _blockwise_means(y, W, groups, sizes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Group means of ``W`` (G, q) and ``y`` (G,), and the columns' norms of ``W``, by row blocks."""
+    q = W.shape[1]
+    w_sum = np.zeros((sizes.size, q))
+    raw_sq = np.zeros(q)
+    for rows in _row_blocks(y.size):
+        g, wb = groups[rows], W[rows]
+        for j in range(q):
+            w_sum[:, j] += np.bincount(g, weights=wb[:, j], minlength=sizes.size)
+        raw_sq += np.einsum("ij,ij->j", wb, wb)
+    y_mean = np.bincount(groups, weights=y, minlength=sizes.size) / sizes
+    return w_sum / sizes[:, None], y_mean, np.sqrt(raw_sq)
+
+
+def _row_blocks(n: int):
+    return (slice(start, min(start + _BLOCK_ROWS, n)) for start in range(0, n, _BLOCK_ROWS))
+
+
+def _leverage_one_message(count: int) -> str:
+    return (f"{count} unit(s) have leverage 1 in the adjusted regression (their residual is 0 "
+            "by construction), so its HC2 standard error would be too small")
+
+
+def _check_parameters(n: int, n_par: int) -> None:
+    if n <= n_par:
+        raise DesignError(f"the adjusted regression has {n_par} coefficients but only {n} "
+                          "units; use fewer covariates")
+
+
+def _drop_constant(X: np.ndarray, *, in_place: bool = False) -> np.ndarray:
+    """Covariates without the constant ones, centred; ``in_place`` may overwrite ``X``.
+
+    Without ``in_place`` the copy ``X[:, ~constant]`` is column-major, which
+    sets the order of the sums in the means; so ``in_place`` (no copy when no
+    column is constant) is for large designs only, which do not promise the
+    last bits of the whole-matrix fit anyway.
+    """
     constant = np.ptp(X, axis=0) == 0
     if constant.any():
         _warn(f"{int(constant.sum())} covariate(s) are constant among the units used and are "
               "left out of the adjustment")
-    X = X[:, ~constant]
-    return X - X.mean(axis=0)
+    if not in_place or constant.any():
+        X = X[:, ~constant]
+    X -= X.mean(axis=0)
+    return X
 
 
 def _lin_layout(s: _Sample, xc: np.ndarray) -> _LinLayout:
     """Interacted cells when every block has >= 2 units (clusters) per arm, else additive."""
-    zf = s.z.astype(float)[:, None]
-    block = np.zeros(s.y.size, dtype=np.int64) if s.block is None else s.block
+    n = s.y.size
     if _blocks_splittable(s):
-        cell_codes, cells = np.unique(block * 2 + s.z, return_inverse=True)
-        labels, counts = np.unique(block, return_counts=True)
-        share = counts[np.searchsorted(labels, cell_codes // 2)] / s.y.size
+        key = s.z.astype(np.int64) if s.block is None else s.block * 2 + s.z
+        cell_codes, cells = _dense_codes(key)
+        del key
+        if s.block is None:
+            labels, counts = np.zeros(1, dtype=np.int64), np.array([n])
+        else:
+            labels, counts = np.unique(s.block, return_counts=True)
+        share = counts[np.searchsorted(labels, cell_codes // 2)] / n
         c_groups = np.where(cell_codes % 2 == 1, 1.0, -1.0) * share
-        return _LinLayout(groups=cells, W=np.column_stack([zf * xc, (1.0 - zf) * xc]),
+        return _LinLayout(groups=cells, W=_Regressors(z=s.z, xc=xc, interacted=True),
                           targets=((c_groups, np.zeros(2 * xc.shape[1])),))
-    _, blocks = np.unique(block, return_inverse=True)
+    _, blocks = _dense_codes(np.zeros(n, dtype=np.int64) if s.block is None else s.block)
     shares = np.bincount(blocks, weights=s.z) / np.bincount(blocks)
     if np.ptp(shares) > 1e-12:
         _warn("some blocks have fewer than two units (clusters) in an arm, so block indicators "
               "enter additively; as the share of treated units varies across blocks, the "
               "adjusted estimate weights blocks by precision rather than size")
-    W = np.column_stack([zf, xc, zf * xc])
+    W = _Regressors(z=s.z, xc=xc, interacted=False)
     c_w = np.zeros(W.shape[1])
     c_w[0] = 1.0
     return _LinLayout(groups=blocks, W=W, targets=((np.zeros(int(blocks.max()) + 1), c_w),),
                       required=1)
+
+
+def _dense_codes(key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique(key, return_inverse=True)`` for non-negative int keys, in O(n).
+
+    The codes come in the narrowest unsigned type that holds them (a byte per
+    unit for up to 256 groups), so a large sample does not carry 8 bytes per unit.
+    """
+    present = np.bincount(key) > 0
+    values = np.flatnonzero(present)
+    rank = (np.cumsum(present) - 1).astype(np.min_scalar_type(max(values.size - 1, 0)))
+    return values, rank[key]
 
 
 def _blocks_splittable(s: _Sample) -> bool:
@@ -332,9 +482,7 @@ def _independent_columns(raw: np.ndarray, demeaned: np.ndarray, required: int) -
 def _hc2_contributions(lev, r, resid, pos) -> tuple[np.ndarray, np.ndarray]:
     one = lev > 1.0 - 1e-10
     if one.any():
-        raise DesignError(f"{int(one.sum())} unit(s) have leverage 1 in the adjusted regression "
-                          "(their residual is 0 by construction), so its HC2 standard error "
-                          "would be too small")
+        raise DesignError(_leverage_one_message(int(one.sum())))
     contrib = r * resid / np.sqrt(1.0 - lev)
     return contrib, _keys(_UNIT, pos)
 

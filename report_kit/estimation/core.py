@@ -249,7 +249,9 @@ class _Fit:
 
 
 def _keys(kind: int, codes) -> np.ndarray:
-    return np.asarray(codes, dtype=np.int64) * 4 + kind
+    keys = np.asarray(codes, dtype=np.int64) * 4
+    keys += kind
+    return keys
 
 
 def _neyman_piece(y, z, cluster, pos, label) -> _Piece:
@@ -260,13 +262,17 @@ def _neyman_piece(y, z, cluster, pos, label) -> _Piece:
     Welch–Satterthwaite component with ``n_a - 1`` df.
     """
     n1, n0 = int(z.sum()), int((~z).sum())
-    est = float(y[z].mean() - y[~z].mean())
+    y1, y0 = y[z], y[~z]
+    est = float(y1.mean() - y0.mean())
     if n1 < 2 or n0 < 2:
         return _small_piece(label, y.size, est, n1, n0)
     contrib = np.empty(y.size)
-    contrib[z] = (y[z] - y[z].mean()) / math.sqrt(n1 * (n1 - 1))
-    contrib[~z] = -(y[~z] - y[~z].mean()) / math.sqrt(n0 * (n0 - 1))
-    comps = ((float(np.sum(contrib[z] ** 2)), n1 - 1.0), (float(np.sum(contrib[~z] ** 2)), n0 - 1.0))
+    y1 -= y1.mean()
+    y1 /= math.sqrt(n1 * (n1 - 1))
+    y0 -= y0.mean()
+    y0 /= -math.sqrt(n0 * (n0 - 1))
+    contrib[z], contrib[~z] = y1, y0
+    comps = ((float(np.sum(y1 ** 2)), n1 - 1.0), (float(np.sum(y0 ** 2)), n0 - 1.0))
     return _Piece(label=label, weight=float(y.size), estimate=est, contrib=contrib,
                   keys=_keys(_UNIT, pos), components=comps, small=False, n_treated=n1, n_control=n0)
 
@@ -395,9 +401,12 @@ def _pieces(s: _Sample, rule: str) -> list[_Piece]:
     cannot contribute and is left out with a warning.
     """
     builder = _PIECE_BUILDERS[rule]
-    labels = np.zeros(s.y.size, dtype=np.int64) if s.block is None else s.block
+    if s.block is None:   # one piece of all units, in their order (no index copies)
+        if s.z.all() or not s.z.any():
+            return []
+        return [builder(s.y, s.z, s.cluster, s.pos, 0)]
     pieces, empty = [], []
-    for label, m in _groups(labels):
+    for label, m in _groups(s.block):
         zb = s.z[m]
         if zb.all() or not zb.any():
             empty.append(label)
@@ -443,7 +452,8 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
               "all blocks")
     small_set = set(small)
     large = [i for i in range(len(pieces)) if i not in small_set]
-    contrib = [w[i] * pieces[i].contrib for i in large]
+    # a weight of exactly 1 (one block) leaves the contributions as they are: no copy
+    contrib = [pieces[i].contrib if w[i] == 1.0 else w[i] * pieces[i].contrib for i in large]
     keys = [pieces[i].keys for i in large]
     if large and all(pieces[i].bm is not None for i in large):
         # CR2 blocks: one component, Bell–McCaffrey df of the weighted sum of the blocks
@@ -461,7 +471,7 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
     variance_rule = "paired" if not large else (rule + "+paired" if small else rule)
     if blocked and not large and method == "blocked_neyman":
         method = "paired"
-    fit = _Fit(estimate=est, contrib=np.concatenate(contrib), keys=np.concatenate(keys),
+    fit = _Fit(estimate=est, contrib=_joined(contrib), keys=_joined(keys),
                components=tuple(comps), n_treated=n1, n_control=n0, method=method,
                variance_rule=variance_rule, se_ok=True)
     if warn_zero and fit.variance == 0.0:
@@ -469,6 +479,10 @@ def _combine(pieces: list[_Piece], *, rule: str, method: str, blocked: bool,
               "the small-block effects are all equal); the standard error is 0 and the "
               "interval has zero width")
     return fit
+
+
+def _joined(parts: list[np.ndarray]) -> np.ndarray:
+    return parts[0] if len(parts) == 1 else np.concatenate(parts)
 
 
 def _small_block_coefficients(w: np.ndarray) -> np.ndarray | None:

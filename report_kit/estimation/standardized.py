@@ -161,11 +161,14 @@ def with_arm_summaries(study, rows: list[dict]) -> list[dict]:
     for row in rows:
         row = {**row, **dict.fromkeys(FUNDER_KEYS)}
         if row["estimand"] != "CACE":
-            mask = _subgroup_mask(study.frame, row["subgroup"])
-            y = study.frame[row["outcome"]].to_numpy(dtype=float)[mask]
-            std = standardized_effect(row["estimate"], y, z[mask], method=spec.analysis.std_effect)
+            y = study.frame[row["outcome"]].to_numpy(dtype=float)
+            zs, bs = z, block
+            if row["subgroup"] is not None:   # all units otherwise: no copies
+                mask = _subgroup_mask(study.frame, row["subgroup"])
+                y, zs, bs = y[mask], z[mask], None if block is None else block[mask]
+            std = standardized_effect(row["estimate"], y, zs, method=spec.analysis.std_effect)
             row.update(mean_treated=std.mean_treated, mean_control=std.mean_control, std_effect=std.std_effect,
                        std_effect_method=std.std_effect_method,
-                       blocks_left_out=None if block is None else blocks_left_out(y, z[mask], block[mask]))
+                       blocks_left_out=None if bs is None else blocks_left_out(y, zs, bs))
         out.append(row)
     return out
