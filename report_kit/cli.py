@@ -11,6 +11,7 @@ import json
 import os
 import signal
 import sys
+import time
 from pathlib import Path
 
 import click
@@ -43,13 +44,22 @@ def _fail(err: Exception, code: int) -> None:
 
 
 class _ChunkBar:
-    """A rich progress bar of the chunks of randomization draws done (on stderr; quiet off a terminal)."""
+    """A rich progress bar of the chunks of randomization draws done (on stderr).
+
+    Off a terminal (a log file, a CI job) a long pass prints a plain line at
+    every tenth of the chunks instead, once it has run for
+    :data:`PLAIN_AFTER_SECONDS` (short passes stay quiet).
+    """
+
+    PLAIN_AFTER_SECONDS = 10.0
 
     def __init__(self) -> None:
         self._progress = None
         self._task = None
         self._done = 0
         self._off = False
+        self._started = None
+        self._tenth = 0
 
     def __enter__(self) -> _ChunkBar:
         return self
@@ -63,11 +73,13 @@ class _ChunkBar:
         from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
         if self._off:
+            self._plain(done, total)
             return
         if self._progress is None:
             console = Console(stderr=True)
             if not console.is_terminal:
                 self._off = True
+                self._plain(done, total)
                 return
             self._progress = Progress(TextColumn("  · randomization draws"), BarColumn(), MofNCompleteColumn(),
                                       TimeElapsedColumn(), console=console, transient=True)
@@ -76,6 +88,18 @@ class _ChunkBar:
             self._task = self._progress.add_task("chunks", total=total)
         self._done = done
         self._progress.update(self._task, completed=done, total=total)
+
+    def _plain(self, done: int, total: int) -> None:
+        """A line per tenth of the chunks of a long pass: ``  · randomization draws: 30% (120 of 400 chunks, 95 s)``."""
+        now = time.monotonic()
+        if self._started is None or done < self._done:   # a new pass
+            self._started, self._tenth = now, 0
+        self._done = done
+        tenth = (10 * done) // max(total, 1)
+        if tenth > self._tenth and now - self._started >= self.PLAIN_AFTER_SECONDS:
+            self._tenth = tenth
+            click.echo(f"  · randomization draws: {10 * tenth}% ({done} of {total} chunks, "
+                       f"{now - self._started:.0f} s)", err=True)
 
 
 class Group(click.Group):

@@ -146,3 +146,19 @@ def test_quarto_missing_is_a_usage_error(project_copy, monkeypatch):
     result = invoke("run", project, "--renderer", "quarto")
     # Refused before any work: no run folder, not even the runs/ folder.
     assert result.exit_code == 2 and "quarto" in result.output and not (project / "runs").exists()
+
+
+def test_progress_off_a_terminal_is_a_line_per_tenth_of_a_long_pass(capsys, monkeypatch):
+    from report_kit import cli
+
+    bar = cli._ChunkBar()
+    for done in range(1, 41):          # a quick pass: quiet
+        bar.update(done, 40)
+    assert capsys.readouterr().err == ""
+    monkeypatch.setattr(cli._ChunkBar, "PLAIN_AFTER_SECONDS", 0.0)
+    bar = cli._ChunkBar()
+    for done in range(1, 41):          # a long one: ten lines, 10% to 100%
+        bar.update(done, 40)
+    lines = capsys.readouterr().err.splitlines()
+    assert len(lines) == 10 and lines[0].startswith("  · randomization draws: 10% (4 of 40 chunks")
+    assert lines[-1].startswith("  · randomization draws: 100% (40 of 40 chunks")
