@@ -14,6 +14,7 @@ import asyncio
 import contextlib
 import json
 import logging
+import itertools
 import os
 import shutil
 import sys
@@ -220,6 +221,9 @@ def _section_of(executed: Path) -> str:
 WARM_IMPORTS = ("pandas", "report_kit.report.view", "report_kit.report.figures", "report_kit.report.figures_checks")
 
 
+_KERNEL_IDS = itertools.count()
+
+
 def _kernel_manager_class(warm: tuple[str, ...] = ()):
     """A kernel manager that starts ``ipykernel`` in this interpreter, whatever kernelspecs exist.
 
@@ -237,6 +241,16 @@ def _kernel_manager_class(warm: tuple[str, ...] = ()):
     argv += [f"--IPKernelApp.exec_lines=import {name}" for name in warm]
 
     class ThisInterpreterKernelManager(AsyncKernelManager):
+        def __init__(self, **kwargs):
+            # On POSIX the kernel talks over Unix sockets (files <ip>-<port> in the temporary folder,
+            # owner-writable only, removed when the kernel shuts down) rather than TCP ports on
+            # 127.0.0.1, and does not log its warning about unencrypted TCP into run.log.
+            if os.name == "posix":
+                kwargs.setdefault("transport", "ipc")
+                kwargs.setdefault("ip", os.path.join(tempfile.gettempdir(),
+                                                     f"report-kit-kernel-{os.getpid()}-{next(_KERNEL_IDS)}"))
+            super().__init__(**kwargs)
+
         @property
         def kernel_spec(self):
             return KernelSpec(argv=argv, display_name="Python 3", language="python")

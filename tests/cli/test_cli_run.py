@@ -162,3 +162,13 @@ def test_progress_off_a_terminal_is_a_line_per_tenth_of_a_long_pass(capsys, monk
     lines = capsys.readouterr().err.splitlines()
     assert len(lines) == 10 and lines[0].startswith("  · randomization draws: 10% (4 of 40 chunks")
     assert lines[-1].startswith("  · randomization draws: 100% (40 of 40 chunks")
+
+
+def test_the_report_kernel_leaves_no_warning_or_socket_behind(example_runs):
+    import os
+    import tempfile
+
+    _, run_dir, _ = example_runs["quiet-hours"]   # run in this process (CliRunner)
+    log_text = (run_dir / "run.log").read_text(encoding="utf-8")
+    assert "without encryption" not in log_text and "WARNING" not in log_text
+    assert not list(Path(tempfile.gettempdir()).glob(f"report-kit-kernel-{os.getpid()}-*"))
