@@ -9,6 +9,7 @@ ratio of the whole run to its randomization step (target: at most 2).
     .venv/bin/python benchmarks/scale.py --units 1000000    # the 1M figures (3 outcomes)
     .venv/bin/python benchmarks/scale.py --units 10000000 --outcomes 1 --workers 2
     .venv/bin/python benchmarks/scale.py --units 1000000 --profile /tmp/scale.prof   # cProfile of the run
+    .venv/bin/python benchmarks/scale.py --units 1000000 --arms 3 --outcomes 1 --workers 2   # a three-arm trial
 
 Steps are timed from the run's own log messages (``estimates``, ``randomization
 tests``, ``balance, flow, attrition``, ``multiplicity and power``) and progress
@@ -45,14 +46,14 @@ from report_kit.pipeline import RunOptions, run_project  # noqa: E402
 SPEC = """\
 # Invented benchmark scenario: a reminder message randomized over {n} members of a made-up club.
 spec_version: 1
-title: "Benchmark: {n} units, complete randomization"
+title: "Benchmark: {n} units, complete randomization{arms_title}"
 data:
   units: data/units.csv
   id: unit_id
 design:
   mechanism: complete
   treatment: assigned
-analysis:
+{arms_line}analysis:
   alpha: 0.05
   covariates: [age, baseline]
   adjust: true
@@ -70,16 +71,25 @@ OUTCOME = """\
 """
 
 
-def make_project(folder: Path, n: int, m: int, draws: int, seed: int = 20261202) -> Path:
-    """An invented complete-design project: n units, m outcomes (2% missing), two covariates."""
+def make_project(folder: Path, n: int, m: int, draws: int, seed: int = 20261202, arms: int = 2) -> Path:
+    """An invented complete-design project: n units, m outcomes (2% missing), two covariates.
+
+    ``arms`` > 2: the treatment column holds the labels ``arm0`` (the reference) to
+    ``arm{arms-1}`` in equal numbers, declared in ``design.arms``.
+    """
     rng = np.random.default_rng(seed)
     project = folder / f"bench-{n}"
     (project / "data").mkdir(parents=True)
-    z = np.zeros(n, dtype=np.int8)
-    z[rng.permutation(n)[: n // 2]] = 1
+    if arms > 2:
+        z = rng.permutation(np.arange(n) % arms).astype(np.int8)
+        assigned = np.array([f"arm{k}" for k in range(arms)], dtype=object)[z]
+    else:
+        z = np.zeros(n, dtype=np.int8)
+        z[rng.permutation(n)[: n // 2]] = 1
+        assigned = z
     columns = {
         "unit_id": np.arange(1, n + 1),
-        "assigned": z,
+        "assigned": assigned,
         "age": rng.integers(18, 80, size=n),
         "baseline": np.round(rng.normal(50, 10, size=n), 2),
     }
@@ -89,7 +99,9 @@ def make_project(folder: Path, n: int, m: int, draws: int, seed: int = 20261202)
         columns[f"y{j}"] = y
     _write_csv(project / "data" / "units.csv", columns)
     outcomes = "".join(OUTCOME.format(j=j, family="primary" if j == 1 else "secondary") for j in range(1, m + 1))
-    (project / "design.yaml").write_text(SPEC.format(n=n, draws=draws, outcomes=outcomes))
+    arms_line = "" if arms <= 2 else "  arms: [" + ", ".join(f"arm{k}" for k in range(arms)) + "]\n"
+    (project / "design.yaml").write_text(SPEC.format(n=n, draws=draws, outcomes=outcomes, arms_line=arms_line,
+                                                     arms_title="" if arms <= 2 else f", {arms} arms"))
     return project
 
 
@@ -236,9 +248,9 @@ def run_one(project: Path, workers: int | None, pdf: bool, profile: str | None) 
             "baseline": steps.baseline}
 
 
-def report(n: int, m: int, draws: int, figures: dict) -> None:
+def report(n: int, m: int, draws: int, figures: dict, arms: int = 2) -> None:
     rows, total = figures["rows"], figures["total"]
-    print(f"\n{n:,} units x {m} outcome(s) x {draws:,} draws, complete design")
+    print(f"\n{n:,} units x {m} outcome(s) x {draws:,} draws, complete design, {arms} arms")
     print(f"  {'step':<34} {'seconds':>9} {'peak GB':>8}")
     for name, seconds, peak in rows:
         print(f"  {name.split(':')[0]:<34} {seconds:9.2f} {peak:8.2f}")
@@ -261,6 +273,7 @@ def main() -> None:
     parser.add_argument("--outcomes", type=int, default=3)
     parser.add_argument("--draws", type=int, default=10_000)
     parser.add_argument("--workers", type=int, default=None)
+    parser.add_argument("--arms", type=int, default=2, help="arms of the generated trial (3 or more: multi-arm)")
     parser.add_argument("--no-pdf", action="store_true")
     parser.add_argument("--profile", help="write a cProfile of the (last) run to this file")
     parser.add_argument("--keep", action="store_true", help="keep the generated projects (prints where)")
@@ -270,11 +283,11 @@ def main() -> None:
         for n in args.units:
             start = time.perf_counter()
             with multiprocessing.get_context("spawn").Pool(1) as pool:
-                project = pool.apply(make_project, (folder, n, args.outcomes, args.draws))
+                project = pool.apply(make_project, (folder, n, args.outcomes, args.draws, 20261202, args.arms))
             print(f"generated {project.name} in {time.perf_counter() - start:.1f} s "
                   f"({(project / 'data' / 'units.csv').stat().st_size / 1e6:.0f} MB of CSV)")
             figures = run_one(project, args.workers, not args.no_pdf, args.profile)
-            report(n, args.outcomes, args.draws, figures)
+            report(n, args.outcomes, args.draws, figures, args.arms)
     finally:
         if args.keep:
             print(f"projects kept in {folder}")
