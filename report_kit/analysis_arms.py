@@ -176,7 +176,7 @@ def _adjusted(column: str, y, labels, X, kw: dict, names):
         return []
 
 
-def arm_tests(study: Study, shared: SharedPass) -> tuple[list[dict], list[dict]]:
+def arm_tests(study: Study, shared: SharedPass, chunk_map: ChunkMap | None = None) -> tuple[list[dict], list[dict]]:
     """``tests`` and ``intervals`` rows: each contrast, one omnibus test per outcome, then factorial main effects.
 
     The omnibus tests read the shared pass over the multi-arm draws (:func:`shared_pass`).
@@ -195,7 +195,7 @@ def arm_tests(study: Study, shared: SharedPass) -> tuple[list[dict], list[dict]]
             y, labels, pairs, kind=design.mechanism, block=study.block, cluster=study.cluster,
             statistic=outcome.statistic, alternative=outcome.alternative, level=1 - analysis.alpha,
             max_exact=analysis.max_exact, draws=analysis.randomizations, seed=analysis.seed,
-            outcome=outcome.column)
+            outcome=outcome.column, chunk_map=chunk_map)
         tests += [r.test_row() for r in results]
         intervals += [r.interval_row() for r in results]
     names = [o.column for o in spec.outcomes]
@@ -413,7 +413,7 @@ def arm_sections(study: Study, assignment_check: str, *, chunk_map: ChunkMap | N
     source = arm_source(study)
     log.info("randomization tests (%s, %d assignments)", source.method, source.draws)
     shared = shared_pass(study, source, chunk_map)
-    tests, intervals = arm_tests(study, shared)
+    tests, intervals = arm_tests(study, shared, chunk_map)
     log.info("balance, flow, attrition")
     flow = arm_flow(study, shared)
     multiplicity = arm_multiplicity(tests, spec.outcomes, lead=spec.analysis.multiplicity,

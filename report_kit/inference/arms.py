@@ -271,13 +271,15 @@ def omnibus_test(Y, source: ArmSource, *, outcomes, rtol: float = DEFAULT_RTOL,
 
 def contrast_tests(y, arm, pairs, *, kind: str, block=None, cluster=None, statistic: str = "mean_difference",
                    alternative: str = "two-sided", level: float = 0.95, max_exact: int = 200000,
-                   draws: int = 10000, seed: int = 5150, outcome: str = "y") -> list[ArmTest]:
+                   draws: int = 10000, seed: int = 5150, outcome: str = "y",
+                   chunk_map: ChunkMap | None = None) -> list[ArmTest]:
     """Randomization test and test-inversion interval of each ``(arm, reference)`` pair.
 
     Only the units of the two arms compared are re-randomized: the two-arm
     mechanism of ``kind`` on those units (conditioning on the number in ``arm``
     per block, or per cluster count), so the other units keep their arms and the
     two arms their sizes. Sharp null ``Y_i(arm) = Y_i(reference) + tau0``.
+    ``chunk_map`` runs the chunks of the passes (results do not depend on it).
     """
     labels = np.asarray([str(v) for v in arm], dtype=object)
     y = np.asarray(y, dtype=float)
@@ -289,8 +291,9 @@ def contrast_tests(y, arm, pairs, *, kind: str, block=None, cluster=None, statis
                                      cluster=None if cluster is None else np.asarray(cluster)[mask])
         source = mech.assignments(max_exact=max_exact, draws=draws, seed=seed)
         (test,) = randomization_test(y[mask], mech, source=source, statistic=statistic,
-                                     alternative=alternative, outcomes=[outcome])
-        interval = invert_test(y[mask], mech, source=source, level=level, outcome=outcome).to_dict()
+                                     alternative=alternative, outcomes=[outcome], chunk_map=chunk_map)
+        interval = invert_test(y[mask], mech, source=source, level=level, outcome=outcome,
+                               chunk_map=chunk_map).to_dict()
         out.append(ArmTest(arm=a, reference=r, test=test, interval=interval))
     return out
 

@@ -21,6 +21,7 @@ import numpy as np
 from report_kit.inference.engine import (
     ALTERNATIVES,
     STATISTICS,
+    ChunkMap,
     MechanismDraws,
     NullDistribution,
     _check_choice,
@@ -205,7 +206,7 @@ def _edge(true_below: Callable[[float], bool], start: float, scale: float) -> fl
 
 def invert_test(y, mechanism: Mechanism, *, source: AssignmentSource, level: float = 0.95,
                 statistic: str = "mean_difference", alternative: str = "two-sided", outcome: str = "y",
-                rtol: float = DEFAULT_RTOL) -> Interval:
+                rtol: float = DEFAULT_RTOL, chunk_map: ChunkMap | None = None) -> Interval:
     """Confidence interval for a constant additive effect by inverting randomization tests.
 
     The interval is the set of ``tau0`` whose sharp null ``Y_i(1) = Y_i(0) +
@@ -223,6 +224,8 @@ def invert_test(y, mechanism: Mechanism, *, source: AssignmentSource, level: flo
     For ``mean_difference`` the p-value of any ``tau0`` is computed from one
     pass over the draws (linearity); ``rank_sum`` and ``studentized`` recompute
     the statistic for each ``tau0``. ``ks`` has no sign and is not supported.
+    ``chunk_map`` runs the chunks of the ``mean_difference`` pass (e.g. on Dask
+    workers); results do not depend on it.
     """
     statistic = _check_choice("statistic", statistic, STATISTICS[:3])
     alternative = _check_choice("alternative", alternative, ALTERNATIVES)
@@ -234,7 +237,7 @@ def invert_test(y, mechanism: Mechanism, *, source: AssignmentSource, level: flo
     rtol = _check_rtol(rtol)
     if statistic == "mean_difference":
         dist = _run([_Request("mean_difference", None, _with_assignment_column(y, mechanism))],
-                    mechanism, source, 0.0)[0]
+                    mechanism, source, 0.0, chunk_map=chunk_map)[0]
         inv = _LinearInversion(dist, rtol, mechanism.fixed_arms_within_blocks)
         return _interval(inv, inv.hodges_lehmann(), inv.scale(), alternative, level, outcome)
     gen = _GenericInversion(y, mechanism, source, statistic, rtol)

@@ -151,7 +151,7 @@ def _results(dist: NullDistribution, names, alternatives, rtol) -> list[TestResu
 
 def randomization_test(y, mechanism: Mechanism, *, source: AssignmentSource, statistic: str = "mean_difference",
                        alternative="two-sided", null_effect: float = 0.0, outcomes=None,
-                       rtol: float = DEFAULT_RTOL) -> list[TestResult]:
+                       rtol: float = DEFAULT_RTOL, chunk_map: ChunkMap | None = None) -> list[TestResult]:
     """Fisher randomization test of the sharp null ``Y_i(1) = Y_i(0) + tau0`` for each outcome.
 
     p-values (see :meth:`NullDistribution.p_values`): exact when the source
@@ -175,6 +175,8 @@ def randomization_test(y, mechanism: Mechanism, *, source: AssignmentSource, sta
     outcomes : sequence of str, optional
         Names for the ``outcome`` field (default ``y0, y1, ...``).
     rtol : float, default 1e-12
+    chunk_map : ChunkMap, optional
+        Runs the chunks of the pass (e.g. on Dask workers); results do not depend on it.
 
     Returns
     -------
@@ -191,7 +193,8 @@ def randomization_test(y, mechanism: Mechanism, *, source: AssignmentSource, sta
     tau = _check_null_effect(null_effect)
     rtol = _check_rtol(rtol)
     groups = _groups(statistic, alts)
-    dists = _run([_Request(statistic, d, y[:, idx]) for d, idx in groups], mechanism, source, tau)
+    dists = _run([_Request(statistic, d, y[:, idx]) for d, idx in groups], mechanism, source, tau,
+                 chunk_map=chunk_map)
     by_column: dict[int, TestResult] = {}
     for (direction, idx), dist in zip(groups, dists):
         res = _results(dist, [names[j] for j in idx], [alts[j] for j in idx], rtol)
