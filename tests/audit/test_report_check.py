@@ -66,3 +66,13 @@ def test_the_stamp_is_the_runs_own_time():
     assert run_stamp(Path("runs/.partial-20261202T091509Z-6765b253")) == \
         "Run 20261202T091509Z-6765b253 · 02 December 2026, 09:15 UTC"
     assert run_stamp(Path("runs/20250101T235959Z-00000000")).endswith("01 January 2025, 23:59 UTC")
+
+
+def test_verify_report_of_an_archive(example_runs, tmp_path):
+    run = _copy_run(example_runs, tmp_path)
+    zip_path = tmp_path / "run.zip"
+    done = CliRunner().invoke(main, ["archive", str(run), "-o", str(zip_path)])
+    assert done.exit_code == 0, done.output
+    done = CliRunner().invoke(main, ["verify", str(zip_path), "--report"])
+    assert done.exit_code == 0, done.output
+    assert "are identical" in done.output and done.output.strip().splitlines()[-1] == "VERIFIED"
