@@ -132,9 +132,14 @@ class MultiArmMechanism:
         the two-arm engine, so any chunk can be made on its own, in any process,
         without the ones before it.
         """
+        for i in range(-(-draws // self.chunk_rows())):
+            yield self.sample_chunk(i, draws, seed)
+
+    def sample_chunk(self, i: int, draws: int, seed: int) -> np.ndarray:
+        """Chunk ``i`` of :meth:`sample_chunks` on its own (any process, any order)."""
         rows = self.chunk_rows()
-        for i, start in enumerate(range(0, draws, rows)):
-            yield self.sample_block(min(rows, draws - start), np.random.SeedSequence(seed, spawn_key=(i,)))
+        size = min(rows, draws - i * rows)
+        return self.sample_block(size, np.random.SeedSequence(seed, spawn_key=(i,)))
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)

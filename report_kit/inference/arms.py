@@ -112,9 +112,8 @@ def _between_arms_by_row(y: np.ndarray, seen: np.ndarray, a: np.ndarray, n_arms:
 class ArmDraws(_Draws):
     """Monte Carlo multi-arm assignments, generated chunk by chunk on demand (never all held at once).
 
-    Chunk ``i`` is ``mechanism.sample_block(rows, SeedSequence(seed, spawn_key=(i,)))``
-    with ``rows = mechanism.chunk_rows()``: the chunks of
-    :meth:`report_kit.design.arms.MultiArmMechanism.sample_chunks`, made by
+    Chunk ``i`` is :meth:`report_kit.design.arms.MultiArmMechanism.sample_chunk`
+    (``sample_block(rows, SeedSequence(seed, spawn_key=(i,)))``), made by
     whichever process runs the chunk.
     """
 
@@ -125,9 +124,7 @@ class ArmDraws(_Draws):
         self.rows = self.mechanism.chunk_rows()
 
     def chunk(self, i: int) -> tuple[np.ndarray, np.ndarray | None]:
-        start = i * self.rows
-        size = min(self.draws, start + self.rows) - start
-        return self.mechanism.sample_block(size, np.random.SeedSequence(self.seed, spawn_key=(i,))), None
+        return self.mechanism.sample_chunk(i, self.draws, self.seed), None
 
 
 def arm_draws(source: ArmSource) -> _Draws:
