@@ -23,7 +23,8 @@ from report_kit.estimation.adjustment import (
     _LinLayout,
     _singleton_indicators_out,
 )
-from report_kit.estimation.core import BLOCKED, CLUSTERED, Estimate, _groups, _labels, _to_estimate, _warn
+from report_kit.estimation.core import (BLOCKED, CLUSTERED, Estimate, _check_alpha, _groups, _labels, _to_estimate,
+                                         _warn)
 from report_kit.validate import mean_impute_with_indicators
 
 __all__ = ["LIN_ARMS_MECHANISMS", "lin_all_arms"]
@@ -120,8 +121,7 @@ def lin_all_arms(y, arm, X, *, arms, pairs, mechanism: str, block=None, cluster=
 def _validate(y, arm, X, arms, mechanism, block, cluster, alpha):
     if mechanism not in LIN_ARMS_MECHANISMS:
         raise ValueError(f"`mechanism` must be one of {set(LIN_ARMS_MECHANISMS)}; got {mechanism!r}")
-    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
-        raise ValueError(f"`alpha` must be a number strictly between 0 and 1; got {alpha!r}")
+    _check_alpha(alpha)
     if len(arms) < 2 or len(set(arms)) != len(arms):
         raise ValueError(f"`arms` must list at least two distinct arm labels; got {arms}")
     if isinstance(arm, (str, bytes)) or not hasattr(arm, "__len__"):

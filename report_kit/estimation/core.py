@@ -109,11 +109,16 @@ class _Sample:
     n_missing: int
 
 
+def _check_alpha(alpha) -> None:
+    """ValueError unless ``alpha`` is a real number (not bool) strictly between 0 and 1 (every estimator's rule)."""
+    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
+        raise ValueError(f"`alpha` must be a number strictly between 0 and 1; got {alpha!r}")
+
+
 def _validate(y, z, mechanism, block, cluster, alpha) -> tuple[np.ndarray, _Design]:
     if mechanism not in MECHANISMS:
         raise ValueError(f"`mechanism` must be one of {set(MECHANISMS)}; got {mechanism!r}")
-    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
-        raise ValueError(f"`alpha` must be a number strictly between 0 and 1; got {alpha!r}")
+    _check_alpha(alpha)
     z = _binary(z, "z", allow_missing=False)
     y = _vector(y, "y", z.size)
     block_codes = _labels(block, "block", mechanism, BLOCKED, z.size)

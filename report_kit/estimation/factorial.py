@@ -18,7 +18,7 @@ import numpy as np
 
 from report_kit.errors import DesignError, ReportKitWarning
 from report_kit.estimation.arms import check_arm_labels
-from report_kit.estimation.core import Estimate, _bm_df, _bm_terms, _interval, _satterthwaite
+from report_kit.estimation.core import Estimate, _bm_df, _bm_terms, _check_alpha, _interval, _satterthwaite
 from report_kit.validate import Record
 
 __all__ = ["FactorialEffect", "factorial_terms", "estimate_factorial"]
@@ -132,8 +132,7 @@ def estimate_factorial(y, arm, *, arms, factors, block=None, cluster=None,
     weighted sum, whose ``G'G`` is block-diagonal (method
     ``blocked_cluster_factorial_cr2``).
     """
-    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
-        raise ValueError(f"`alpha` must be a number strictly between 0 and 1; got {alpha!r}")
+    _check_alpha(alpha)
     labels = check_arm_labels(arm, arms)
     cells = _check_factors(factors, arms)
     y = np.asarray(y, dtype=float)
