@@ -24,7 +24,7 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest
 
-# bench: figures, not tests (about 25 minutes on 2 CPUs; each script prints ratios against a
+# bench: figures, not tests (about 35 minutes on 2 CPUs; each script prints ratios against a
 # reference measured in the same run). The 10,000,000-unit run is by hand: see docs/performance.md.
 bench: $(STAMP)
 	$(BIN)/python benchmarks/randomization.py
@@ -33,6 +33,7 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/floor.py
 	$(BIN)/python benchmarks/exact.py
 	$(BIN)/python benchmarks/scale.py --units 20000 1000000
+	$(BIN)/python benchmarks/scale.py --units 1000000 --arms 3 --outcomes 1 --workers 2
 	$(BIN)/python benchmarks/workers.py
 
 clean:
