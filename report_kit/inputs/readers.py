@@ -172,15 +172,6 @@ def _csv_records(path: Path, raw: bytes) -> tuple[list[str], np.ndarray]:
     return header, starts
 
 
-def _plain_csv_records(text: str) -> tuple[list[str] | None, list[int], list[tuple[int, int]]]:
-    """:func:`_quoted_csv_records` for text without quotes or carriage returns: one record per non-empty line.
-
-    The list form of :func:`_scan_plain` (which works on the bytes of the file).
-    """
-    header, starts, ragged = _scan_plain(text.encode("utf-8"))
-    return header, starts.tolist(), ragged
-
-
 def _scan_plain(raw: bytes) -> tuple[list[str] | None, np.ndarray, list[tuple[int, int]]]:
     """Header, starting lines (``int64``) and ragged records of UTF-8 bytes without quotes or carriage returns.
 
@@ -220,14 +211,11 @@ def _scan_plain(raw: bytes) -> tuple[list[str] | None, np.ndarray, list[tuple[in
     return header, starts, ragged
 
 
-def _quoted_csv_records(path: Path, text: str) -> tuple[list[str] | None, list[int], list[tuple[int, int]]]:
-    """The header, the starting line of every data record and the ragged records, by the csv module."""
-    header, starts, ragged = _scan_quoted(path, io.StringIO(text, newline=""))
-    return header, starts.tolist(), ragged
-
-
 def _scan_quoted(path: Path, stream) -> tuple[list[str] | None, np.ndarray, list[tuple[int, int]]]:
-    """:func:`_quoted_csv_records` on a text stream; the starting lines as an ``int64`` array."""
+    """Header, starting line (``int64``) of every data record and ragged records of a text stream, by the csv module.
+
+    The path for files with quotes or carriage returns, and the reference :func:`_scan_plain` is tested against.
+    """
     reader = csv.reader(stream)
     header: list[str] | None = None
     starts = array("q")

@@ -90,3 +90,11 @@ def test_plain_whole_numbers_are_parsed_as_int64_and_zeros_kept_as_text():
     assert readers._id_dtype(b"id\n1\n-20\n0\n", "id") == "int64"
     for text in (b"id\n007\n", b"id\n 7\n", b"id\n+7\n", b"id\n1234567890123456789\n", b"id\n7.0\n"):
         assert readers._id_dtype(text, "id") is str
+
+
+def test_line_numbers_written_out():
+    # Expected values written by hand: header on line 2 after a blank line, a blank line 4, a ragged line 6.
+    text = "\nid,x\n1,2\n\n3,4\n5\n"
+    header, starts, ragged = readers._scan_plain(text.encode("utf-8"))
+    assert header == ["id", "x"] and starts.tolist() == [3, 5, 6] and ragged == [(6, 1)]
+    assert csv_module_records(text) == (header, starts.tolist(), ragged)
